@@ -1,0 +1,32 @@
+"""sigmad's estimators: pure numpy state objects, no I/O, clocks or threads.
+
+Every estimator has the same shape of API: ``update(x, weights=None,
+times=None)`` on batches, ``merge(other)``, ``decay_to(t)``,
+``to_dict()``/``from_dict()`` and named read-outs.
+"""
+
+from .errors import (
+    EstimatorError,
+    IncompatibleError,
+    NonFiniteError,
+    ShapeError,
+    TimeError,
+    WeightError,
+)
+from .forgetting import HalfLife
+from .moments import CORRECTIONS, Moments
+from .validation import check_batch, clean_batch
+
+__all__ = [
+    "CORRECTIONS",
+    "EstimatorError",
+    "HalfLife",
+    "IncompatibleError",
+    "Moments",
+    "NonFiniteError",
+    "ShapeError",
+    "TimeError",
+    "WeightError",
+    "check_batch",
+    "clean_batch",
+]

@@ -1,0 +1,54 @@
+"""Exceptions raised by the estimators; each names the field and the value at fault."""
+
+from __future__ import annotations
+
+
+class EstimatorError(ValueError):
+    """Base class: a value handed to an estimator is not acceptable.
+
+    Attributes
+    ----------
+    field : str
+        The argument or field at fault ("x", "weights", "times", "half_life", ...).
+    value : object
+        The offending value (a scalar or a short description of an array).
+    reason : str
+        A short machine-readable reason, the same words the daemon counts rejections by.
+    """
+
+    reason = "invalid"
+
+    def __init__(self, field: str, value: object, message: str) -> None:
+        super().__init__(f"{field}: {message} (got {value!r})")
+        self.field = field
+        self.value = value
+
+
+class ShapeError(EstimatorError):
+    """An array has the wrong number of dimensions, rows or columns."""
+
+    reason = "shape"
+
+
+class NonFiniteError(EstimatorError):
+    """A value is NaN or infinite."""
+
+    reason = "not_finite"
+
+
+class WeightError(EstimatorError):
+    """A weight is not finite and > 0."""
+
+    reason = "bad_weight"
+
+
+class TimeError(EstimatorError):
+    """An event time is not finite."""
+
+    reason = "bad_time"
+
+
+class IncompatibleError(EstimatorError):
+    """Two states cannot be merged, or a saved state does not fit this estimator."""
+
+    reason = "incompatible"

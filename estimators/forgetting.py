@@ -1,0 +1,135 @@
+"""Exponential forgetting by a half-life, in event-time seconds or in observations.
+
+An observation of weight w and event time t counts, at time ``now``, as
+``w * 2**(-(now - t) / h)``. All estimators share this clock so that their
+decayed weight sums agree and can be pooled.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+
+from .errors import EstimatorError, TimeError
+
+Unit = Literal["seconds", "observations"]
+
+
+@dataclass(frozen=True, slots=True)
+class HalfLife:
+    """A half-life: after ``length`` seconds (or observations) a weight counts half.
+
+    Parameters
+    ----------
+    length : float
+        Finite and > 0.
+    unit : {"seconds", "observations"}
+        "seconds" ages rows by their event times; "observations" by their
+        position in the stream (the newest row has age 0).
+
+    Notes
+    -----
+    The weights of a steady stream form a geometric series, so the mean age of
+    the weights is ``h / ln 2`` (about 1.44 h) and the effective window, the
+    total weight per unit rate, is also ``h / ln 2``.
+
+    Examples
+    --------
+    >>> HalfLife(10.0).factor(10.0)
+    0.5
+    >>> HalfLife(5000, "observations").mean_age
+    7213.475204444817
+    """
+
+    length: float
+    unit: Unit = "seconds"
+
+    def __post_init__(self) -> None:
+        if not (isinstance(self.length, (int, float)) and math.isfinite(self.length)
+                and self.length > 0):
+            raise EstimatorError("half_life", self.length, "must be a finite number > 0")
+        if self.unit not in ("seconds", "observations"):
+            raise EstimatorError("half_life.unit", self.unit,
+                                 'must be "seconds" or "observations"')
+
+    @property
+    def by_count(self) -> bool:
+        return self.unit == "observations"
+
+    @property
+    def mean_age(self) -> float:
+        """Mean age of the weights of a steady stream, h / ln 2."""
+        return self.length / math.log(2.0)
+
+    def factor(self, age: float) -> float:
+        """Weight multiplier for something ``age`` old: 2**(-age/h)."""
+        return 2.0 ** (-age / self.length)
+
+    def to_dict(self) -> dict:
+        return {"length": float(self.length), "unit": self.unit}
+
+    @classmethod
+    def from_dict(cls, d: dict | None) -> HalfLife | None:
+        return None if d is None else cls(float(d["length"]), d["unit"])
+
+
+def check_times(times: object, n: int) -> np.ndarray | None:
+    """Return event times as a float64 vector of n, or None; raise on bad ones."""
+    if times is None:
+        return None
+    t = np.asarray(times, dtype=np.float64)
+    if t.ndim == 0:
+        t = np.full(n, float(t))
+    if t.shape != (n,):
+        raise TimeError("times", f"shape {t.shape}", f"must hold one time per row ({n})")
+    if not np.isfinite(t).all():
+        bad = t[~np.isfinite(t)][0]
+        raise TimeError("times", float(bad), "must be finite")
+    return t
+
+
+def advance(half_life: HalfLife | None, clock: float | None, n: int,
+            times: np.ndarray | None) -> tuple[float | None, float, np.ndarray | None]:
+    """Work out how a batch of n rows meets a state whose clock reads ``clock``.
+
+    Returns ``(new_clock, state_factor, row_factors)``: the state's weights are
+    multiplied by ``state_factor`` and row i's weight by ``row_factors[i]``
+    (None means all ones). Rows older than the state's clock are weighted by
+    their own age; newer ones move the clock forward. Rows without times are
+    stamped with the state's clock (event-time forgetting) and with their
+    position (count forgetting). O(n).
+    """
+    if half_life is None:
+        if times is None:
+            return clock, 1.0, None
+        latest = float(times.max())
+        return (latest if clock is None else max(clock, latest)), 1.0, None
+    h = half_life.length
+    if half_life.by_count:
+        start = 0.0 if clock is None else clock
+        ages = np.arange(n - 1, -1, -1, dtype=np.float64)
+        return start + n, 2.0 ** (-n / h), np.exp2(-ages / h)
+    if times is None:
+        return clock, 1.0, None
+    latest = float(times.max())
+    new_clock = latest if clock is None else max(clock, latest)
+    state_factor = 1.0 if clock is None else 2.0 ** (-(new_clock - clock) / h)
+    return new_clock, state_factor, np.exp2(-(new_clock - times) / h)
+
+
+def catch_up(half_life: HalfLife | None, clock: float | None,
+             t: float) -> tuple[float | None, float]:
+    """The factor that ages a state from ``clock`` to event time ``t`` (never backwards).
+
+    Count-based forgetting does not move with wall time: factor 1.
+    """
+    if not math.isfinite(t):
+        raise TimeError("t", t, "must be finite")
+    if half_life is None or half_life.by_count:
+        return clock, 1.0
+    if clock is None or t <= clock:
+        return (t if clock is None else clock), 1.0
+    return t, 2.0 ** (-(t - clock) / half_life.length)

@@ -1,0 +1,302 @@
+"""Online weighted mean vector and covariance matrix with exponential forgetting."""
+
+from __future__ import annotations
+
+import math
+from statistics import NormalDist
+from typing import Literal
+
+import numpy as np
+
+from .errors import IncompatibleError
+from .forgetting import HalfLife, advance, catch_up
+from .validation import as_rows, check_batch
+
+Correction = Literal["none", "frequency", "reliability"]
+CORRECTIONS: tuple[str, ...] = ("none", "frequency", "reliability")
+_STD_NORMAL = NormalDist()
+
+
+class Moments:
+    """Weighted, exponentially forgotten mean and covariance of d-dimensional rows.
+
+    Parameters
+    ----------
+    dim : int
+        Number of fields per observation (d >= 1).
+    half_life : HalfLife or None
+        Forgetting; None keeps every observation at full weight.
+
+    Notes
+    -----
+    The state is the weight sum W = sum(w), the sum of squared weights
+    W2 = sum(w**2), the mean mu and the centred scatter matrix
+    C = sum(w (x - mu)(x - mu)^T), all over decayed weights. A batch is reduced
+    to its own (W_b, mu_b, C_b) in two centred passes and folded in with the
+    pairwise update
+
+        delta = mu_b - mu
+        mu   <- mu + delta * W_b / (W + W_b)
+        C    <- C + C_b + delta delta^T * W W_b / (W + W_b)
+
+    which for a batch of one is West's weighted form of Welford's update.
+    Forgetting multiplies W and C by f = 2**(-dt/h) and W2 by f**2, so the
+    Kish effective sample size W**2/W2 and the corrections stay right.
+
+    Covariance corrections divide C by:
+
+    - "none": W (maximum likelihood),
+    - "frequency": W - 1 (weights are repeat counts),
+    - "reliability": W - W2/W (weights express trust; n - 1 for unit weights).
+
+    Update, merge and every read-out cost O(n d**2) for a batch of n, O(d**2)
+    otherwise.
+
+    References
+    ----------
+    Welford, B. P. (1962). Note on a method for calculating corrected sums of
+    squares and products. Technometrics 4(3), 419-420.
+    West, D. H. D. (1979). Updating mean and variance estimates: an improved
+    method. Communications of the ACM 22(9), 532-535.
+    Chan, T. F., Golub, G. H., LeVeque, R. J. (1983). Algorithms for computing
+    the sample variance: analysis and recommendations. The American
+    Statistician 37(3), 242-247.
+    Kish, L. (1965). Survey Sampling. Wiley.
+
+    Examples
+    --------
+    >>> m = Moments()
+    >>> m.update([2.0, 4.0, 4.0, 4.0, 5.0, 5.0, 7.0, 9.0])
+    >>> float(m.mean[0]), float(m.stddev("none")[0])
+    (5.0, 2.0)
+    >>> m.effective_samples
+    8.0
+    """
+
+    __slots__ = ("dim", "half_life", "clock", "count", "W", "W2", "_mean", "_scatter")
+    kind = "moments"
+    version = 1
+
+    def __init__(self, dim: int = 1, half_life: HalfLife | None = None) -> None:
+        if not isinstance(dim, int) or dim < 1:
+            raise IncompatibleError("dim", dim, "must be an integer >= 1")
+        self.dim = dim
+        self.half_life = half_life
+        self.clock: float | None = None   # event time (or observation count) of the state
+        self.count = 0                     # observations accepted, undecayed
+        self.W = 0.0
+        self.W2 = 0.0
+        self._mean = np.zeros(dim)
+        self._scatter = np.zeros((dim, dim))
+
+    # ------------------------------------------------------------------ updates
+    def update(self, x: object, weights: object = None, times: object = None) -> None:
+        """Fold in a batch of n rows (n, or n x d); a single observation is a batch of one.
+
+        Raises a subclass of EstimatorError naming the value for a wrong shape,
+        NaN/inf, a weight that is not finite and > 0, or a non-finite time; a
+        rejected batch changes nothing. O(n d**2).
+        """
+        b = check_batch(x, self.dim, weights, times)
+        self._fold(b.x, b.weights, b.times)
+
+    def _fold(self, x: np.ndarray, w: np.ndarray | None, t: np.ndarray | None) -> None:
+        """Fold in rows already checked (the daemon's path)."""
+        n = x.shape[0]
+        if n == 0:
+            return
+        clock, f, rf = advance(self.half_life, self.clock, n, t)
+        if f != 1.0:
+            self._scale(f)
+        self.clock = clock
+        self.count += n
+        v = w if rf is None else (rf if w is None else w * rf)
+        if v is None:
+            wb, w2b = float(n), float(n)
+            mb = x.mean(axis=0)
+            xc = x - mb
+            cb = xc.T @ xc
+        else:
+            wb = float(v.sum())
+            if not wb > 0.0:      # every row has decayed to nothing
+                return
+            w2b = float(v @ v)
+            mb = (v @ x) / wb
+            xc = x - mb
+            cb = (xc.T * v) @ xc
+        self._combine(wb, w2b, mb, cb)
+
+    def _combine(self, wb: float, w2b: float, mb: np.ndarray, cb: np.ndarray) -> None:
+        wa = self.W
+        total = wa + wb
+        if wa == 0.0:
+            self._mean = np.array(mb, dtype=np.float64)
+            self._scatter = np.array(cb, dtype=np.float64)
+        else:
+            delta = mb - self._mean
+            self._mean = self._mean + delta * (wb / total)
+            self._scatter = self._scatter + cb + np.outer(delta, delta) * (wa * wb / total)
+        self.W = total
+        self.W2 = self.W2 + w2b
+
+    def _scale(self, f: float) -> None:
+        self.W *= f
+        self.W2 *= f * f
+        self._scatter = self._scatter * f
+        if not self.W > 0.0:      # decayed past what float64 holds: the state is empty
+            self.W = self.W2 = 0.0
+            self._scatter = np.zeros((self.dim, self.dim))
+
+    def decay_to(self, t: float) -> Moments:
+        """Age the state to event time t (never backwards); returns self.
+
+        With count-based forgetting or none, time alone changes nothing. O(d**2).
+        """
+        self.clock, f = catch_up(self.half_life, self.clock, float(t))
+        if f != 1.0:
+            self._scale(f)
+        return self
+
+    def merge(self, other: Moments) -> Moments:
+        """Fold another state in, exactly as if this one had seen both streams; returns self.
+
+        Both states are first aged to the later clock. With count-based
+        forgetting each is taken as of its own latest observation and the
+        clocks add. O(d**2).
+        """
+        if not isinstance(other, Moments) or other.dim != self.dim \
+                or other.half_life != self.half_life:
+            raise IncompatibleError("other", getattr(other, "dim", other),
+                                    "must be Moments of the same dimension and half-life")
+        o = other.copy()
+        if self.half_life is not None and self.half_life.by_count:
+            self.clock = (self.clock or 0.0) + (o.clock or 0.0)
+        elif o.clock is not None:
+            self.decay_to(o.clock)
+            o.decay_to(self.clock)
+        self.count += o.count
+        if o.W > 0.0:
+            self._combine(o.W, o.W2, o._mean, o._scatter)
+        return self
+
+    def copy(self) -> Moments:
+        new = Moments.__new__(Moments)
+        for name in self.__slots__:
+            setattr(new, name, getattr(self, name))
+        new._mean = self._mean.copy()
+        new._scatter = self._scatter.copy()
+        return new
+
+    # ---------------------------------------------------------------- read-outs
+    @property
+    def weight_sum(self) -> float:
+        """Decayed sum of weights W (the pooling weight)."""
+        return self.W
+
+    @property
+    def effective_samples(self) -> float:
+        """Kish effective sample size W**2 / W2 (0 for an empty state)."""
+        return self.W * self.W / self.W2 if self.W2 > 0.0 else 0.0
+
+    @property
+    def mean(self) -> np.ndarray:
+        """Weighted mean vector (d,); NaN while empty."""
+        return self._mean.copy() if self.W > 0.0 else np.full(self.dim, np.nan)
+
+    def scatter_divisor(self, correction: Correction = "reliability") -> float:
+        """What the centred scatter is divided by under a correction (NaN when undefined)."""
+        if correction == "none":
+            div = self.W
+        elif correction == "frequency":
+            div = self.W - 1.0
+        elif correction == "reliability":
+            div = self.W - self.W2 / self.W if self.W > 0.0 else 0.0
+        else:
+            raise IncompatibleError("correction", correction,
+                                    'must be "none", "frequency" or "reliability"')
+        return div if div > 0.0 else math.nan
+
+    def covariance(self, correction: Correction = "reliability") -> np.ndarray:
+        """Covariance matrix (d, d) under a correction; NaN while it is undefined."""
+        return self._scatter / self.scatter_divisor(correction)
+
+    def variance(self, correction: Correction = "reliability") -> np.ndarray:
+        """Per-field variances (d,): the diagonal of ``covariance``."""
+        return np.diagonal(self._scatter) / self.scatter_divisor(correction)
+
+    def stddev(self, correction: Correction = "reliability") -> np.ndarray:
+        """Per-field standard deviations (d,)."""
+        return np.sqrt(self.variance(correction))
+
+    def correlation(self) -> np.ndarray:
+        """Pearson correlation matrix (d, d); the correction cancels. NaN where a
+        field has no spread."""
+        s = np.sqrt(np.diagonal(self._scatter))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = self._scatter / np.outer(s, s)
+        return np.clip(r, -1.0, 1.0)
+
+    def standard_error(self, correction: Correction = "reliability") -> np.ndarray:
+        """Standard error of the mean per field, sqrt(variance / effective samples)."""
+        n = self.effective_samples
+        return np.sqrt(self.variance(correction) / n) if n > 0 else np.full(self.dim, np.nan)
+
+    def quantile(self, q: float, correction: Correction = "reliability") -> np.ndarray:
+        """Per-field q-quantile under the normal model: mean + stddev * Phi^-1(q)."""
+        if not 0.0 < q < 1.0:
+            raise IncompatibleError("q", q, "must lie strictly between 0 and 1")
+        return self.mean + self.stddev(correction) * _STD_NORMAL.inv_cdf(q)
+
+    def mahalanobis(self, x: object, correction: Correction = "reliability") -> np.ndarray:
+        """Distance of rows x (n, d) from the mean in units of the covariance: |z| for
+        d = 1. NaN while the covariance is undefined or singular. O(n d**2 + d**3)."""
+        a = as_rows(x, self.dim)
+        if not self.W > 0.0:
+            return np.full(a.shape[0], np.nan)
+        cov = self.covariance(correction)
+        diff = a - self._mean
+        if self.dim == 1:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                return np.abs(diff[:, 0]) / math.sqrt(cov[0, 0]) if cov[0, 0] > 0 \
+                    else np.full(a.shape[0], np.nan)
+        try:
+            chol = np.linalg.cholesky(cov)
+        except np.linalg.LinAlgError:
+            return np.full(a.shape[0], np.nan)
+        z = np.linalg.solve(chol, diff.T)
+        return np.sqrt((z * z).sum(axis=0))
+
+    # ------------------------------------------------------------- persistence
+    def to_dict(self) -> dict:
+        """Plain, versioned, msgpack-able form; ``from_dict(to_dict())`` is exact."""
+        return {
+            "kind": self.kind, "version": self.version, "dim": self.dim,
+            "half_life": None if self.half_life is None else self.half_life.to_dict(),
+            "clock": self.clock, "count": self.count, "W": self.W, "W2": self.W2,
+            "mean": self._mean.tolist(), "scatter": self._scatter.tolist(),
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict) -> Moments:
+        """Rebuild a state from ``to_dict``; raises IncompatibleError on a foreign form."""
+        if not isinstance(d, dict) or d.get("kind") != cls.kind:
+            raise IncompatibleError("kind", d.get("kind") if isinstance(d, dict) else d,
+                                    f'must be "{cls.kind}"')
+        if d.get("version") != cls.version:
+            raise IncompatibleError("version", d.get("version"),
+                                    f"must be {cls.version}")
+        try:
+            m = cls(int(d["dim"]), HalfLife.from_dict(d["half_life"]))
+            m.clock = None if d["clock"] is None else float(d["clock"])
+            m.count = int(d["count"])
+            m.W, m.W2 = float(d["W"]), float(d["W2"])
+            m._mean = np.asarray(d["mean"], dtype=np.float64).reshape(m.dim)
+            m._scatter = np.asarray(d["scatter"], dtype=np.float64).reshape(m.dim, m.dim)
+        except (KeyError, TypeError, ValueError) as exc:
+            raise IncompatibleError("moments", type(exc).__name__, f"malformed state: {exc}") \
+                from None
+        return m
+
+    def __repr__(self) -> str:
+        return (f"Moments(dim={self.dim}, W={self.W:.6g}, n_eff={self.effective_samples:.6g}, "
+                f"mean={np.array2string(self.mean, precision=6)})")

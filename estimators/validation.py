@@ -1,0 +1,100 @@
+"""Checking batches before they touch a state.
+
+``check_batch`` raises on the first problem (for library callers: a rejected
+batch changes nothing). ``clean_batch`` drops bad rows one by one and counts
+them by reason (for the daemon, which must keep the good rows of a bad batch).
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import numpy as np
+
+from .errors import NonFiniteError, ShapeError, TimeError, WeightError
+from .forgetting import check_times
+
+
+class Batch(NamedTuple):
+    x: np.ndarray            # (n, d) float64
+    weights: np.ndarray | None  # (n,) float64, finite and > 0, or None for all ones
+    times: np.ndarray | None    # (n,) float64, finite, or None
+
+
+def as_rows(x: object, dim: int, field: str = "x") -> np.ndarray:
+    """Coerce x to an (n, dim) float64 array: a scalar or a vector of n is a column
+    when dim == 1; a vector of dim is one row when dim > 1."""
+    try:
+        a = np.asarray(x, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise ShapeError(field, type(x).__name__, f"is not numeric ({exc})") from None
+    if a.ndim == 0:
+        if dim != 1:
+            raise ShapeError(field, float(a), f"a scalar fits only dimension 1, not {dim}")
+        return a.reshape(1, 1)
+    if a.ndim == 1:
+        if dim == 1:
+            return a.reshape(-1, 1)
+        if a.shape[0] == dim:
+            return a.reshape(1, dim)
+        raise ShapeError(field, f"shape {a.shape}", f"needs {dim} columns")
+    if a.ndim == 2 and a.shape[1] == dim:
+        return a
+    raise ShapeError(field, f"shape {a.shape}", f"must be (n, {dim})")
+
+
+def as_weights(weights: object, n: int) -> np.ndarray | None:
+    if weights is None:
+        return None
+    w = np.asarray(weights, dtype=np.float64)
+    if w.ndim == 0:
+        w = np.full(n, float(w))
+    if w.shape != (n,):
+        raise ShapeError("weights", f"shape {w.shape}", f"must hold one weight per row ({n})")
+    return w
+
+
+def check_batch(x: object, dim: int, weights: object = None, times: object = None) -> Batch:
+    """Validate a whole batch; raise a specific error naming the first bad value. O(n d)."""
+    a = as_rows(x, dim)
+    n = a.shape[0]
+    finite = np.isfinite(a)
+    if not finite.all():
+        row, col = np.argwhere(~finite)[0]
+        raise NonFiniteError("x", float(a[row, col]), f"row {row}, column {col} must be finite")
+    w = as_weights(weights, n)
+    if w is not None:
+        ok = np.isfinite(w) & (w > 0)
+        if not ok.all():
+            i = int(np.argmin(ok))
+            raise WeightError("weights", float(w[i]), f"row {i} must be finite and > 0")
+    return Batch(a, w, check_times(times, n))
+
+
+def clean_batch(x: object, dim: int, weights: object = None,
+                times: object = None) -> tuple[Batch, dict[str, int]]:
+    """Drop the bad rows of a batch instead of rejecting it.
+
+    Returns the good rows and a count of dropped rows by reason
+    ("not_finite", "bad_weight", "bad_time"); each row is counted once, under
+    the first reason that applies. Shape errors still raise: they concern the
+    whole batch. O(n d).
+    """
+    a = as_rows(x, dim)
+    n = a.shape[0]
+    w = as_weights(weights, n)
+    t = None if times is None else np.asarray(times, dtype=np.float64)
+    if t is not None:
+        if t.ndim == 0:
+            t = np.full(n, float(t))
+        if t.shape != (n,):
+            raise TimeError("times", f"shape {t.shape}", f"must hold one time per row ({n})")
+    bad_x = ~np.isfinite(a).all(axis=1)
+    bad_w = np.zeros(n, bool) if w is None else ~(np.isfinite(w) & (w > 0)) & ~bad_x
+    bad_t = np.zeros(n, bool) if t is None else ~np.isfinite(t) & ~bad_x & ~bad_w
+    counts = {reason: int(mask.sum()) for reason, mask in
+              (("not_finite", bad_x), ("bad_weight", bad_w), ("bad_time", bad_t)) if mask.any()}
+    if not counts:
+        return Batch(a, w, t), counts
+    keep = ~(bad_x | bad_w | bad_t)
+    return Batch(a[keep], None if w is None else w[keep], None if t is None else t[keep]), counts
