@@ -194,6 +194,11 @@ class Moments:
         return self.W
 
     @property
+    def weight_sq_sum(self) -> float:
+        """Decayed sum of squared weights W2."""
+        return self.W2
+
+    @property
     def effective_samples(self) -> float:
         """Kish effective sample size W**2 / W2 (0 for an empty state)."""
         return self.W * self.W / self.W2 if self.W2 > 0.0 else 0.0

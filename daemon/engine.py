@@ -1,0 +1,342 @@
+"""The engine: routes decoded messages to series and folds micro-batches into estimators.
+
+One thread owns an Engine and everything in it; nothing else mutates estimator
+state, so the hot path takes no locks. Readers get immutable ``Snapshot``s.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections import Counter
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from estimators import Mixture, Moments, Regression, clean_batch
+
+from .config import Config, StreamConfig
+from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
+from .wire import WireError, decode
+
+log = logging.getLogger("sigmad.engine")
+
+_ROUTE_CACHE_LIMIT = 65_536
+
+
+def _floats(a) -> tuple[float, ...]:
+    return tuple(float(v) for v in np.asarray(a, dtype=np.float64).ravel())
+
+
+@dataclass(slots=True)
+class Series:
+    """One live series: its estimators, counters and the rows waiting for a flush."""
+
+    stream: StreamState
+    labels: tuple[str, ...]
+    moments: Moments
+    regression: Regression | None
+    mixture: Mixture | None
+    outliers: list[int]
+    observations: int = 0
+    version: int = 0
+    last_update: float = 0.0
+    pending: list = field(default_factory=list)   # (values, weights|None, times|None)
+
+    @property
+    def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
+        return self.stream.name, tuple(zip(self.stream.cfg.topic.labels, self.labels,
+                                           strict=True))
+
+
+class StreamState:
+    """A configured stream and its live series."""
+
+    def __init__(self, cfg: StreamConfig) -> None:
+        self.cfg = cfg
+        self.name = cfg.name
+        self.fields = tuple(cfg.fields)
+        self.dim = len(self.fields)
+        self.series: dict[tuple[str, ...], Series] = {}
+        self.thresholds = np.asarray(cfg.outlier_sigmas, dtype=np.float64)
+        self.time_based = cfg.half_life is not None and not cfg.half_life.by_count
+        reg = cfg.regression
+        self.reg_x = None if reg is None else [self.fields.index(f) for f in reg.x]
+        self.reg_y = None if reg is None else self.fields.index(reg.y)
+        self.log_mixture = cfg.mixture is not None and cfg.mixture.log
+
+    def new_series(self, labels: tuple[str, ...]) -> Series:
+        cfg = self.cfg
+        reg = None
+        if cfg.regression is not None:
+            reg = Regression(len(cfg.regression.x), intercept=cfg.regression.intercept,
+                             half_life=cfg.half_life)
+        mix = None
+        if cfg.mixture is not None:
+            m = cfg.mixture
+            mix = Mixture(m.components, dim=self.dim, covariance=m.covariance, log=m.log,
+                          half_life=cfg.half_life, warmup=m.warmup, seed=m.seed)
+        return Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
+                      [0] * len(cfg.outlier_sigmas))
+
+
+class Engine:
+    """Routes, validates and folds observations; builds snapshots.
+
+    Parameters
+    ----------
+    config : Config
+        The validated configuration.
+    """
+
+    def __init__(self, config: Config) -> None:
+        self.config = config
+        self.streams = [StreamState(s) for s in config.streams]
+        self._routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
+        self._dirty: dict[int, Series] = {}
+        self._views: dict = {}
+        self.rejected: Counter[str] = Counter()
+        self.messages: Counter[str] = Counter()
+        self.gaps: Counter[str] = Counter()
+        self._last_seq: dict[str, int] = {}
+        self.flushes = 0
+        self.pending_rows = 0
+        self._log_budget = config.daemon.log_rejected
+        self._log_window = 0.0
+        self.snapshot = Snapshot(taken_at=0.0)
+
+    # ------------------------------------------------------------- ingest
+    def route(self, topic: bytes) -> tuple[StreamState, tuple[str, ...]] | None:
+        """The stream and label values for a topic (first matching stream wins)."""
+        try:
+            return self._routes[topic]
+        except KeyError:
+            pass
+        found = None
+        try:
+            text = topic.decode("utf-8")
+        except UnicodeDecodeError:
+            text = None
+        if text is not None:
+            for st in self.streams:
+                labels = st.cfg.topic.match(text)
+                if labels is not None:
+                    found = (st, labels)
+                    break
+        if len(self._routes) >= _ROUTE_CACHE_LIMIT:
+            self._routes.clear()
+        self._routes[topic] = found
+        return found
+
+    def reject(self, reason: str, count: int = 1, topic: bytes = b"", detail: str = "",
+               now: float = 0.0) -> None:
+        self.rejected[reason] += count
+        if now - self._log_window >= 60.0:
+            self._log_window, self._log_budget = now, self.config.daemon.log_rejected
+        if self._log_budget > 0:
+            self._log_budget -= 1
+            log.warning("rejected %d observation(s) on topic %r: %s%s", count,
+                        topic[:200].decode("utf-8", "replace"), reason,
+                        f" ({detail})" if detail else "")
+
+    def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "") -> int:
+        """Decode one message and queue its rows for the next flush.
+
+        Returns the number of rows queued (0 when the message was rejected). Never
+        raises on bad input: every rejection is counted by reason.
+        """
+        self.messages[endpoint] += 1
+        route = self.route(topic)
+        if route is None:
+            self.reject("no_stream", topic=topic, now=now)
+            return 0
+        st, labels = route
+        dcfg = self.config.daemon
+        try:
+            dec = decode(body, st.fields, max_bytes=dcfg.max_message_bytes,
+                         max_rows=dcfg.max_batch_rows)
+        except WireError as exc:
+            self.reject(exc.reason, topic=topic, detail=exc.detail, now=now)
+            return 0
+        values, weights, times = dec.values, dec.weights, dec.times
+        n = values.shape[0]
+        if dec.source is not None and dec.seq is not None:
+            self._count_gap(dec.source, dec.seq)
+        series = st.series.get(labels)
+        if series is None:
+            if len(st.series) >= st.cfg.max_series:
+                self.reject("series_limit", n, topic=topic, now=now)
+                return 0
+            series = st.series[labels] = st.new_series(labels)
+        if times is not None:
+            skew = np.abs(times - now) > dcfg.max_clock_skew
+            if skew.any():
+                self.reject("clock_skew", int(skew.sum()), topic=topic, now=now)
+                keep = ~skew
+                values, times = values[keep], times[keep]
+                weights = None if weights is None else weights[keep]
+                n = values.shape[0]
+                if n == 0:
+                    return 0
+        elif st.time_based:
+            times = np.full(n, now)
+        series.pending.append((values, weights, times))
+        self.pending_rows += n
+        series.last_update = now
+        self._dirty[id(series)] = series
+        return n
+
+    def _count_gap(self, source: str, seq: int) -> None:
+        last = self._last_seq.get(source)
+        if last is not None and seq > last + 1:
+            self.gaps[source] += seq - last - 1
+        if len(self._last_seq) < 100_000 or source in self._last_seq:
+            self._last_seq[source] = seq
+
+    # -------------------------------------------------------------- flush
+    def flush(self, now: float) -> Snapshot:
+        """Fold every pending micro-batch into its series and publish a new snapshot."""
+        dirty, self._dirty = self._dirty, {}
+        self.pending_rows = 0
+        views = self._views
+        changed = False
+        for series in dirty.values():
+            if self._fold(series, now):
+                views = views if changed else dict(views)
+                changed = True
+                views[series.key] = self._view(series)
+        if changed or self.snapshot.taken_at == 0.0:
+            self._views = views
+        self.flushes += 1
+        self.snapshot = self._make_snapshot(now)
+        return self.snapshot
+
+    def _fold(self, series: Series, now: float) -> bool:
+        chunks, series.pending = series.pending, []
+        st = series.stream
+        if len(chunks) == 1:
+            x, w, t = chunks[0]
+        else:
+            x = np.concatenate([c[0] for c in chunks])
+            w = None
+            if any(c[1] is not None for c in chunks):
+                w = np.concatenate([np.ones(len(c[0])) if c[1] is None else c[1]
+                                    for c in chunks])
+            t = None if chunks[0][2] is None else np.concatenate([c[2] for c in chunks])
+        batch, dropped = clean_batch(x, st.dim, w, t)
+        for reason, count in dropped.items():
+            self.reject(reason, count, now=now)
+        x, w, t = batch
+        if st.log_mixture and x.shape[0]:
+            positive = (x > 0.0).all(axis=1)
+            if not positive.all():
+                self.reject("not_positive", int((~positive).sum()), now=now)
+                x = x[positive]
+                w = None if w is None else w[positive]
+                t = None if t is None else t[positive]
+        n = x.shape[0]
+        if n == 0:
+            return False
+        m = series.moments
+        if st.thresholds.size and m.count >= st.cfg.outlier_warmup:
+            dist = self._distance(series, x)
+            exceed = (dist[:, None] > st.thresholds).sum(axis=0)
+            for i, c in enumerate(exceed):
+                series.outliers[i] += int(c)
+        m._fold(x, w, t)
+        if series.regression is not None:
+            series.regression.update(x[:, st.reg_x], x[:, st.reg_y], weights=w, times=t)
+        if series.mixture is not None:
+            series.mixture.update(x, weights=w, times=t)
+        series.observations += n
+        series.version += 1
+        series.last_update = now
+        return True
+
+    def _distance(self, series: Series, x: np.ndarray) -> np.ndarray:
+        """Outlier distance under the state before the update (NaN never exceeds)."""
+        st = series.stream
+        if series.regression is not None and series.regression.ok:
+            r = series.regression.standardized_residual(x[:, st.reg_x], x[:, st.reg_y])
+            return np.abs(r)
+        return series.moments.mahalanobis(x, st.cfg.correction)
+
+    # ------------------------------------------------------------ read side
+    def _view(self, s: Series) -> SeriesView:
+        st = s.stream
+        cfg = st.cfg
+        m = s.moments
+        corr = cfg.correction
+        cov = m.covariance(corr)
+        rho = m.correlation()
+        d = st.dim
+        pairs = [(i, j) for i in range(d) for j in range(i + 1, d)]
+        quantiles = []
+        for q in cfg.quantiles:
+            if s.mixture is not None and s.mixture.warm:
+                vals = [s.mixture.quantile(q, field=i) for i in range(d)]
+            else:
+                vals = m.quantile(q, corr)
+            quantiles.extend((i, q, float(vals[i])) for i in range(d))
+        mixture = None
+        if s.mixture is not None:
+            mx = s.mixture
+            mixture = MixtureView(
+                warm=bool(mx.warm), weights=_floats(mx.weights) if mx.warm else (),
+                means=tuple(_floats(r) for r in mx.means) if mx.warm else (),
+                stddevs=tuple(_floats(r) for r in mx.stddevs) if mx.warm else (),
+                average_loglik=float(mx.average_loglik), reseeds=int(mx.reseeds),
+                log=bool(cfg.mixture.log))
+        regression = None
+        if s.regression is not None:
+            rg = s.regression
+            terms = tuple(cfg.regression.x)
+            coef, se = _floats(rg.coefficients), _floats(rg.stderr)
+            if cfg.regression.intercept:
+                terms += ("intercept",)
+                coef += (float(rg.intercept),)
+                se += (float(rg.intercept_stderr),)
+            regression = RegressionView(
+                ok=bool(rg.ok), terms=terms, coefficients=coef, stderr=se,
+                residual_stddev=float(rg.residual_stddev), residual_dof=float(rg.residual_dof),
+                r_squared=float(rg.r_squared))
+        return SeriesView(
+            stream=st.name, labels=s.key[1], fields=st.fields, version=s.version,
+            observations=s.observations, last_update=s.last_update, clock=m.clock,
+            half_life=cfg.half_life, weight_sum=m.weight_sum, weight_sq_sum=m.weight_sq_sum,
+            effective_samples=m.effective_samples, mean=_floats(m.mean),
+            variance=_floats(m.variance(corr)), stddev=_floats(m.stddev(corr)),
+            covariance=tuple((i, j, float(cov[i, j])) for i, j in pairs),
+            correlation=tuple((i, j, float(rho[i, j])) for i, j in pairs),
+            quantiles=tuple(quantiles),
+            outliers=tuple(zip(cfg.outlier_sigmas, s.outliers, strict=True)),
+            mixture=mixture, regression=regression)
+
+    def _make_snapshot(self, now: float) -> Snapshot:
+        health = Health(messages=tuple(sorted(self.messages.items())),
+                        rejected=tuple(sorted(self.rejected.items())),
+                        sequence_gaps=tuple(sorted(self.gaps.items())),
+                        flushes=self.flushes)
+        return Snapshot(taken_at=now, series=self._views,
+                        series_per_stream=tuple((st.name, len(st.series))
+                                                for st in self.streams),
+                        health=health)
+
+    def expire_idle(self, now: float) -> int:
+        """Drop series idle for longer than their stream's idle_expiry; returns how many."""
+        gone = set()
+        for st in self.streams:
+            limit = st.cfg.idle_expiry
+            if limit is None:
+                continue
+            stale = [k for k, s in st.series.items()
+                     if now - s.last_update > limit and not s.pending]
+            for labels in stale:
+                gone.add(st.series.pop(labels).key)
+        if gone:
+            self._views = {k: v for k, v in self._views.items() if k not in gone}
+            self.snapshot = self._make_snapshot(now)
+        return len(gone)
+
+    def all_series(self):
+        for st in self.streams:
+            yield from st.series.values()

@@ -1,0 +1,93 @@
+"""The immutable read model: what readers (HTTP, checkpoints, publishers) see.
+
+The engine thread builds a new ``Snapshot`` after each flush and swaps it in by
+reference; a reader holds whichever one it picked up, so it never sees a
+half-applied update and never takes a lock.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from estimators import HalfLife
+from estimators.forgetting import catch_up
+
+
+@dataclass(frozen=True, slots=True)
+class MixtureView:
+    warm: bool
+    weights: tuple[float, ...]
+    means: tuple[tuple[float, ...], ...]      # (K, d), in the fitted space
+    stddevs: tuple[tuple[float, ...], ...]    # (K, d), in the fitted space
+    average_loglik: float
+    reseeds: int
+    log: bool
+
+
+@dataclass(frozen=True, slots=True)
+class RegressionView:
+    ok: bool
+    terms: tuple[str, ...]                    # x field names, then "intercept" when fitted
+    coefficients: tuple[float, ...]
+    stderr: tuple[float, ...]
+    residual_stddev: float
+    residual_dof: float
+    r_squared: float
+
+
+@dataclass(frozen=True, slots=True)
+class SeriesView:
+    stream: str
+    labels: tuple[tuple[str, str], ...]       # template labels, in template order
+    fields: tuple[str, ...]
+    version: int                              # bumps on every update of the series
+    observations: int
+    last_update: float                        # wall-clock seconds of the last accepted row
+    clock: float | None                       # the estimators' event-time clock
+    half_life: HalfLife | None
+    weight_sum: float                         # as of ``clock``; see ``weights_at``
+    weight_sq_sum: float
+    effective_samples: float
+    mean: tuple[float, ...]
+    variance: tuple[float, ...]
+    stddev: tuple[float, ...]
+    covariance: tuple[tuple[int, int, float], ...]   # i < j
+    correlation: tuple[tuple[int, int, float], ...]  # i < j
+    quantiles: tuple[tuple[int, float, float], ...]  # (field index, q, value)
+    outliers: tuple[tuple[float, int], ...]          # (threshold, count)
+    mixture: MixtureView | None = None
+    regression: RegressionView | None = None
+
+    @property
+    def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
+        return self.stream, self.labels
+
+    def weights_at(self, t: float) -> tuple[float, float]:
+        """(W, W2) aged to event time t, never backwards. The mean, the variances and
+        the effective sample size do not change under pure decay."""
+        _, f = catch_up(self.half_life, self.clock, t)
+        return self.weight_sum * f, self.weight_sq_sum * f * f
+
+
+@dataclass(frozen=True, slots=True)
+class Health:
+    """The daemon's own counters, copied at snapshot time."""
+
+    messages: tuple[tuple[str, int], ...] = ()          # per source endpoint
+    rejected: tuple[tuple[str, int], ...] = ()          # per reason
+    sequence_gaps: tuple[tuple[str, int], ...] = ()     # per producer
+    flushes: int = 0
+
+
+@dataclass(frozen=True, slots=True)
+class Snapshot:
+    taken_at: float                                     # wall-clock seconds
+    series: dict = field(default_factory=dict)          # key -> SeriesView (never mutated)
+    series_per_stream: tuple[tuple[str, int], ...] = ()
+    health: Health = field(default_factory=Health)
+
+    def by_stream(self) -> dict[str, list[SeriesView]]:
+        out: dict[str, list[SeriesView]] = {}
+        for view in self.series.values():
+            out.setdefault(view.stream, []).append(view)
+        return out
