@@ -466,3 +466,13 @@ def test_merge_pools_shards_like_statsmodels_on_the_union():
     res = sm.OLS(y, sm.add_constant(X)).fit()      # reference: statsmodels OLS
     np.testing.assert_allclose(terms(a)[0], res.params, rtol=1e-9)
     np.testing.assert_allclose(terms(a)[1], res.bse, rtol=1e-9)
+
+
+def test_condition_is_numpy_cond_of_the_column_scaled_design():
+    X, y = longley_data()
+    w = np.random.default_rng(5).uniform(0.5, 2.0, len(y))
+    r = Regression(6)
+    r.update(X, y, weights=w)
+    A = np.sqrt(w)[:, None] * np.column_stack((np.ones(len(y)), X))
+    A = A / np.linalg.norm(A, axis=0)
+    assert r.condition == pytest.approx(np.linalg.cond(A), rel=1e-8)   # reference: numpy
