@@ -15,6 +15,7 @@ from .errors import (
 )
 from .forgetting import HalfLife
 from .moments import CORRECTIONS, Moments
+from .regression import Regression
 from .validation import check_batch, clean_batch
 
 __all__ = [
@@ -24,6 +25,7 @@ __all__ = [
     "IncompatibleError",
     "Moments",
     "NonFiniteError",
+    "Regression",
     "ShapeError",
     "TimeError",
     "WeightError",

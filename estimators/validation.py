@@ -98,3 +98,39 @@ def clean_batch(x: object, dim: int, weights: object = None,
         return Batch(a, w, t), counts
     keep = ~(bad_x | bad_w | bad_t)
     return Batch(a[keep], None if w is None else w[keep], None if t is None else t[keep]), counts
+
+
+def check_xy(x: object, y: object, dim: int, weights: object = None,
+             times: object = None) -> Batch:
+    """Validate a regression batch: design rows X (n, dim) and responses y (n,).
+
+    X is coerced as by ``as_rows`` (a vector of n is a column when dim == 1, a
+    vector of dim is one row when dim > 1); y must hold one number per row.
+    Returns a Batch whose ``x`` is the stacked (n, dim + 1) array [X | y].
+    Raises ShapeError, NonFiniteError (field "X" or "y"), WeightError or
+    TimeError on the first problem; nothing is returned half-checked. O(n dim).
+    """
+    a = as_rows(x, dim, "X")
+    n = a.shape[0]
+    try:
+        b = np.asarray(y, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise ShapeError("y", type(y).__name__, f"is not numeric ({exc})") from None
+    if b.ndim == 0:
+        b = b.reshape(1)
+    if b.shape != (n,):
+        raise ShapeError("y", f"shape {b.shape}", f"must hold one response per row of X ({n})")
+    finite = np.isfinite(a)
+    if not finite.all():
+        row, col = np.argwhere(~finite)[0]
+        raise NonFiniteError("X", float(a[row, col]), f"row {row}, column {col} must be finite")
+    if not np.isfinite(b).all():
+        row = int(np.argmin(np.isfinite(b)))
+        raise NonFiniteError("y", float(b[row]), f"row {row} must be finite")
+    w = as_weights(weights, n)
+    if w is not None:
+        ok = np.isfinite(w) & (w > 0)
+        if not ok.all():
+            i = int(np.argmin(ok))
+            raise WeightError("weights", float(w[i]), f"row {i} must be finite and > 0")
+    return Batch(np.column_stack((a, b)), w, check_times(times, n))
