@@ -256,7 +256,8 @@ class Engine:
         """Outlier distance under the state before the update (NaN never exceeds)."""
         st = series.stream
         if series.regression is not None and series.regression.ok:
-            r = series.regression.standardized_residual(x[:, st.reg_x], x[:, st.reg_y])
+            r = series.regression.standardized_residual(x[:, st.reg_x], x[:, st.reg_y],
+                                                        st.cfg.correction)
             return np.abs(r)
         return series.moments.mahalanobis(x, st.cfg.correction)
 
@@ -290,14 +291,15 @@ class Engine:
         if s.regression is not None:
             rg = s.regression
             terms = tuple(cfg.regression.x)
-            coef, se = _floats(rg.coefficients), _floats(rg.stderr)
+            coef, se = _floats(rg.coefficients), _floats(rg.stderr(corr))
             if cfg.regression.intercept:
                 terms += ("intercept",)
                 coef += (float(rg.intercept),)
-                se += (float(rg.intercept_stderr),)
+                se += (float(rg.intercept_stderr(corr)),)
             regression = RegressionView(
                 ok=bool(rg.ok), terms=terms, coefficients=coef, stderr=se,
-                residual_stddev=float(rg.residual_stddev), residual_dof=float(rg.residual_dof),
+                residual_stddev=float(rg.residual_stddev(corr)),
+                residual_dof=float(rg.residual_dof(corr)),
                 r_squared=float(rg.r_squared))
         return SeriesView(
             stream=st.name, labels=s.key[1], fields=st.fields, version=s.version,

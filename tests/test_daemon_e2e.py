@@ -49,7 +49,6 @@ outlier_warmup = 50
 name = "pair"
 topic = "px.pair"
 fields = ["alpha", "beta"]
-correction = "none"
 regression = { y = "beta", x = ["alpha"] }
 
 [[stream]]
@@ -188,9 +187,8 @@ def test_regression_and_covariance_match_statsmodels_and_numpy(sigmad, producer)
     assert value(m, "sigmad_regression_residual_stddev", **labels) == \
         pytest.approx(math.sqrt(fit.scale), rel=1e-8)
     pair = dict(labels, field="alpha", field_b="beta")
-    # numpy: np.cov(bias=True) is the "none" correction
-    assert value(m, "sigmad_covariance", **pair) == pytest.approx(
-        np.cov(a, b, bias=True)[0, 1], rel=1e-10)
+    # numpy: np.cov with ddof 1 is the reliability correction for unit weights
+    assert value(m, "sigmad_covariance", **pair) == pytest.approx(np.cov(a, b)[0, 1], rel=1e-10)
     assert value(m, "sigmad_correlation", **pair) == pytest.approx(
         np.corrcoef(a, b)[0, 1], rel=1e-10)
 
