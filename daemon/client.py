@@ -1,0 +1,173 @@
+"""A producer library: send observations to sigmad from a Python service.
+
+A message is two ZeroMQ frames, ``[topic, body]`` (wire format v1): the topic
+is UTF-8 text of dot-separated segments that a stream's template matches
+(``lat.checkout.eu``), the body a msgpack map with ``values`` (a number per
+field, or arrays for a batch), optional ``weight`` and ``time`` (unix seconds),
+and the producer's ``source`` and ``seq`` so the daemon can count lost
+messages. See :mod:`daemon.wire` for the full table.
+
+Example (the daemon's default PULL source listens on tcp://127.0.0.1:7410)::
+
+    from daemon.client import Producer
+
+    with Producer("tcp://127.0.0.1:7410") as p:
+        p.send("lat.checkout.eu", {"ms": 12.7})                  # one observation
+        p.send("lat.checkout.eu", {"ms": np.array([9.1, 30.2])},  # a batch, sent as bin
+               weight=[1.0, 2.0])
+
+``send`` is non-blocking until the socket's send queue (``high_water_mark``
+messages) is full; then a PUSH socket waits for the daemon (up to
+``send_timeout`` if given, raising ``zmq.Again``) and a PUB socket drops.
+On close, queued messages get ``linger`` seconds to leave.
+"""
+
+from __future__ import annotations
+
+import os
+import socket as _socket
+from pathlib import Path
+from types import TracebackType
+
+import zmq
+import zmq.auth
+
+from .wire import encode
+
+_SOCKETS = {"push": zmq.PUSH, "pub": zmq.PUB}
+
+
+def default_source() -> str:
+    """``hostname:pid``, the default producer id."""
+    return f"{_socket.gethostname()[:100]}:{os.getpid()}"
+
+
+def _public_key(key: bytes | str | Path) -> bytes:
+    """A Z85 public key, or the public key in a zmq.auth certificate file."""
+    if isinstance(key, Path) or (isinstance(key, str) and os.path.isfile(key)):
+        public, _ = zmq.auth.load_certificate(str(key))
+        return public
+    return key.encode("ascii") if isinstance(key, str) else key
+
+
+class Producer:
+    """Sends ``[topic, body]`` messages to a sigmad source.
+
+    Parameters
+    ----------
+    endpoint : str
+        ``tcp://host:port``, ``ipc://path`` or ``inproc://name``.
+    socket : {"push", "pub"}
+        PUSH for a ``socket = "pull"`` source, PUB for ``"sub"``.
+    bind : bool
+        Bind the endpoint instead of connecting to it (e.g. a PUB that several
+        daemons connect to).
+    source : str, optional
+        Producer id stamped on every message; default ``hostname:pid``.
+    context : zmq.Context, optional
+        Default: the process-wide ``zmq.Context.instance()``.
+    curve_server_key : bytes, str or path, optional
+        The daemon's CurveZMQ public key (Z85) or its public certificate file;
+        turns on encryption and authentication.
+    curve_keypair : (public, secret) or path, optional
+        This producer's CurveZMQ key pair, or its secret certificate file;
+        default a fresh pair (accepted only by a daemon without ``curve_allow``).
+    high_water_mark : int
+        Messages queued before ``send`` waits (PUSH) or drops (PUB).
+    linger : float
+        Seconds ``close`` waits for queued messages to leave.
+    send_timeout : float, optional
+        Seconds a PUSH ``send`` waits on a full queue before ``zmq.Again``;
+        default wait for ever.
+
+    Attributes
+    ----------
+    seq : int
+        Sequence number the next message will carry (starts at 0).
+
+    Examples
+    --------
+    >>> import zmq
+    >>> ctx = zmq.Context()
+    >>> pull = ctx.socket(zmq.PULL)
+    >>> _ = pull.bind("inproc://doc")
+    >>> with Producer("inproc://doc", context=ctx, source="doc") as p:
+    ...     p.send("lat.checkout.eu", {"ms": 12.5})
+    >>> pull.recv(), len(pull.recv()) > 0
+    (b'lat.checkout.eu', True)
+    >>> pull.close(); ctx.term()
+    """
+
+    def __init__(self, endpoint: str, *, socket: str = "push", bind: bool = False,
+                 source: str | None = None, context: zmq.Context | None = None,
+                 curve_server_key: bytes | str | Path | None = None,
+                 curve_keypair: tuple[bytes, bytes] | str | Path | None = None,
+                 high_water_mark: int = 10000, linger: float = 2.0,
+                 send_timeout: float | None = None) -> None:
+        if socket not in _SOCKETS:
+            raise ValueError(f'socket must be "push" or "pub", got {socket!r}')
+        self.endpoint = endpoint
+        self.source = default_source() if source is None else source
+        self.seq = 0
+        self._context = context if context is not None else zmq.Context.instance()
+        self._socket = self._context.socket(_SOCKETS[socket])
+        self._socket.setsockopt(zmq.SNDHWM, high_water_mark)
+        self._socket.setsockopt(zmq.LINGER, int(linger * 1000))
+        if send_timeout is not None:
+            self._socket.setsockopt(zmq.SNDTIMEO, int(send_timeout * 1000))
+        if curve_server_key is not None:
+            if curve_keypair is None:
+                public, secret = zmq.curve_keypair()
+            elif isinstance(curve_keypair, (str, Path)):
+                public, secret = zmq.auth.load_certificate(str(curve_keypair))
+                if secret is None:
+                    raise ValueError(f"{curve_keypair} holds no secret key")
+            else:
+                public, secret = curve_keypair
+            self._socket.curve_publickey = public
+            self._socket.curve_secretkey = secret
+            self._socket.curve_serverkey = _public_key(curve_server_key)
+        try:
+            (self._socket.bind if bind else self._socket.connect)(endpoint)
+        except zmq.ZMQError:
+            self._socket.close(0)
+            raise
+
+    def send(self, topic: str, values: object, *, weight: object = None,
+             time: object = None) -> None:
+        """Send one observation or a batch on ``topic``. O(n d).
+
+        Parameters
+        ----------
+        topic : str
+        values : number, array-like or mapping field -> number or array-like
+            Arrays (numpy or lists) are sent as bin of little-endian float64.
+        weight, time : number or array-like, optional
+
+        Raises
+        ------
+        TypeError, ValueError
+            If values cannot be encoded (nothing is sent).
+        zmq.Again
+            PUSH with ``send_timeout``: the queue stayed full.
+        """
+        body = encode(values, weight=weight, time=time, source=self.source, seq=self.seq)
+        # Two send() calls: cheaper than send_multipart for two frames.
+        self._socket.send(topic.encode("utf-8"), zmq.SNDMORE)
+        self._socket.send(body)
+        self.seq += 1
+
+    def close(self) -> None:
+        """Close the socket, giving queued messages ``linger`` seconds to leave."""
+        self._socket.close()
+
+    @property
+    def closed(self) -> bool:
+        return self._socket.closed
+
+    def __enter__(self) -> Producer:
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        self.close()
