@@ -6,6 +6,7 @@ times=None)`` on batches, ``merge(other)``, ``decay_to(t)``,
 """
 
 from .errors import (
+    DomainError,
     EstimatorError,
     IncompatibleError,
     NonFiniteError,
@@ -14,15 +15,18 @@ from .errors import (
     WeightError,
 )
 from .forgetting import HalfLife
+from .mixture import Mixture
 from .moments import CORRECTIONS, Moments
 from .regression import Regression
 from .validation import check_batch, clean_batch
 
 __all__ = [
     "CORRECTIONS",
+    "DomainError",
     "EstimatorError",
     "HalfLife",
     "IncompatibleError",
+    "Mixture",
     "Moments",
     "NonFiniteError",
     "Regression",

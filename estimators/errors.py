@@ -52,3 +52,9 @@ class IncompatibleError(EstimatorError):
     """Two states cannot be merged, or a saved state does not fit this estimator."""
 
     reason = "incompatible"
+
+
+class DomainError(EstimatorError):
+    """A value lies outside the estimator's domain (a log model needs x > 0)."""
+
+    reason = "out_of_domain"
