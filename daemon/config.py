@@ -37,7 +37,7 @@ from .topics import LABEL_NAME, TopicError, TopicTemplate
 #: Labels our metrics set themselves, so a topic template may not capture them
 #: (plus every name starting with ``__``, which Prometheus reserves).
 RESERVED_LABELS: frozenset[str] = frozenset((
-    "stream", "field", "field_b", "quantile", "component", "term", "threshold", "reason",
+    "stream", "field", "field_b", "q", "quantile", "component", "term", "threshold", "reason",
     "source", "le", "instance", "job",
 ))
 _UNITS = {"ms": 1e-3, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}

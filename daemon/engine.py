@@ -27,6 +27,25 @@ def _floats(a) -> tuple[float, ...]:
     return tuple(float(v) for v in np.asarray(a, dtype=np.float64).ravel())
 
 
+def _concat(chunks: list, time_based: bool):
+    """Join queued chunks into one batch; rows without an event time get their arrival
+    time when any row has one or the stream forgets by time."""
+    if len(chunks) == 1:
+        x, w, t, arrival = chunks[0]
+        if t is None and time_based:
+            t = np.full(x.shape[0], arrival)
+        return x, w, t
+    x = np.concatenate([c[0] for c in chunks])
+    w = None
+    if any(c[1] is not None for c in chunks):
+        w = np.concatenate([np.ones(len(c[0])) if c[1] is None else c[1] for c in chunks])
+    t = None
+    if time_based or any(c[2] is not None for c in chunks):
+        t = np.concatenate([np.full(len(c[0]), c[3]) if c[2] is None else c[2]
+                            for c in chunks])
+    return x, w, t
+
+
 @dataclass(slots=True)
 class Series:
     """One live series: its estimators, counters and the rows waiting for a flush."""
@@ -40,7 +59,7 @@ class Series:
     observations: int = 0
     version: int = 0
     last_update: float = 0.0
-    pending: list = field(default_factory=list)   # (values, weights|None, times|None)
+    pending: list = field(default_factory=list)   # (values, weights|None, times|None, arrival)
 
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
@@ -168,7 +187,9 @@ class Engine:
                 return 0
             series = st.series[labels] = st.new_series(labels)
         if times is not None:
-            skew = np.abs(times - now) > dcfg.max_clock_skew
+            # non-finite times are left for clean_batch to count as bad_time
+            with np.errstate(invalid="ignore"):
+                skew = np.isfinite(times) & (np.abs(times - now) > dcfg.max_clock_skew)
             if skew.any():
                 self.reject("clock_skew", int(skew.sum()), topic=topic, now=now)
                 keep = ~skew
@@ -177,9 +198,7 @@ class Engine:
                 n = values.shape[0]
                 if n == 0:
                     return 0
-        elif st.time_based:
-            times = np.full(n, now)
-        series.pending.append((values, weights, times))
+        series.pending.append((values, weights, times, now))
         self.pending_rows += n
         series.last_update = now
         self._dirty[id(series)] = series
@@ -213,15 +232,7 @@ class Engine:
     def _fold(self, series: Series, now: float) -> bool:
         chunks, series.pending = series.pending, []
         st = series.stream
-        if len(chunks) == 1:
-            x, w, t = chunks[0]
-        else:
-            x = np.concatenate([c[0] for c in chunks])
-            w = None
-            if any(c[1] is not None for c in chunks):
-                w = np.concatenate([np.ones(len(c[0])) if c[1] is None else c[1]
-                                    for c in chunks])
-            t = None if chunks[0][2] is None else np.concatenate([c[2] for c in chunks])
+        x, w, t = _concat(chunks, st.time_based)
         batch, dropped = clean_batch(x, st.dim, w, t)
         for reason, count in dropped.items():
             self.reject(reason, count, now=now)

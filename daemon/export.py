@@ -22,12 +22,12 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_mean": ("gauge", "Weighted, decayed mean of a field."),
     "sigmad_stddev": ("gauge", "Standard deviation of a field under the stream's correction."),
     "sigmad_variance": ("gauge", "Variance of a field under the stream's correction."),
-    "sigmad_weight_sum": ("gauge", "Decayed sum of weights (the pooling weight)."),
-    "sigmad_weight_sq_sum": ("gauge", "Decayed sum of squared weights (for exact pooling)."),
+    "sigmad_weight": ("gauge", "Decayed sum of weights W (the pooling weight)."),
+    "sigmad_weight_squared": ("gauge", "Decayed sum of squared weights W2 (for exact pooling)."),
     "sigmad_effective_samples": ("gauge", "Kish effective sample size W^2/W2."),
     "sigmad_covariance": ("gauge", "Covariance of two fields under the stream's correction."),
     "sigmad_correlation": ("gauge", "Pearson correlation of two fields."),
-    "sigmad_quantile": ("gauge", "Estimated quantile of a field, in the stream's units."),
+    "sigmad_quantile": ("gauge", "Estimated q-quantile of a field, in the stream's units."),
     "sigmad_mixture_weight": ("gauge", "Weight of a mixture component."),
     "sigmad_mixture_mean": ("gauge", "Mean of a mixture component (log units when fitted in log)."),
     "sigmad_mixture_stddev": ("gauge",
@@ -75,8 +75,8 @@ def families(snap: Snapshot, now: float) -> Iterator[Metric]:
     for v in snap.series.values():
         base = _series_labels(v)
         w, w2 = v.weights_at(now)
-        _g(fams["sigmad_weight_sum"], base, w)
-        _g(fams["sigmad_weight_sq_sum"], base, w2)
+        _g(fams["sigmad_weight"], base, w)
+        _g(fams["sigmad_weight_squared"], base, w2)
         _g(fams["sigmad_effective_samples"], base, v.effective_samples)
         _g(fams["sigmad_observations"], base, float(v.observations))
         _g(fams["sigmad_update_age_seconds"], base, max(0.0, now - v.last_update))
@@ -90,7 +90,7 @@ def families(snap: Snapshot, now: float) -> Iterator[Metric]:
         for i, j, r in v.correlation:
             _g(fams["sigmad_correlation"], dict(base, field=v.fields[i], field_b=v.fields[j]), r)
         for i, q, value in v.quantiles:
-            _g(f_q, dict(per_field[i], quantile=_fmt_q(q)), value)
+            _g(f_q, dict(per_field[i], q=_fmt_q(q)), value)
         for thr, count in v.outliers:
             _g(fams["sigmad_outliers"], dict(base, threshold=_fmt_q(thr)), float(count))
         mx = v.mixture

@@ -121,11 +121,11 @@ def test_single_observations_over_tcp_match_numpy(sigmad, producer):
     assert value(m, "sigmad_mean", **f) == pytest.approx(np.mean(x), rel=1e-12)  # numpy
     assert value(m, "sigmad_variance", **f) == pytest.approx(np.var(x, ddof=1), rel=1e-10)
     assert value(m, "sigmad_stddev", **f) == pytest.approx(np.std(x, ddof=1), rel=1e-10)
-    assert value(m, "sigmad_weight_sum", **labels) == 400.0
+    assert value(m, "sigmad_weight", **labels) == 400.0
     assert value(m, "sigmad_effective_samples", **labels) == pytest.approx(400.0, rel=1e-12)
     # normal-model quantile: scipy.stats.norm.ppf at the numpy mean and sd
     ref = stats.norm.ppf(0.99, np.mean(x), np.std(x, ddof=1))
-    assert value(m, "sigmad_quantile", **f, quantile="0.99") == pytest.approx(ref, rel=1e-9)
+    assert value(m, "sigmad_quantile", **f, q="0.99") == pytest.approx(ref, rel=1e-9)
 
 
 def test_batches_over_ipc_sub_match_numpy(sigmad):
@@ -152,7 +152,7 @@ def test_binary_batch_with_frequency_weights_matches_numpy_cov(sigmad, producer)
         float(np.cov(x, fweights=f.astype(int))), rel=1e-10)
     assert value(m, "sigmad_mean", **labels, field="v") == pytest.approx(
         np.average(x, weights=f), rel=1e-12)
-    assert value(m, "sigmad_weight_sum", **labels) == f.sum()
+    assert value(m, "sigmad_weight", **labels) == f.sum()
 
 
 def test_count_half_life_matches_pandas_ewm(sigmad, producer):
@@ -219,7 +219,7 @@ def test_log_mixture_quantiles_track_the_empirical_ones(sigmad):
     m = sigmad.wait_for("sigmad_observations_total", 6000, **labels)
     assert value(m, "sigmad_mixture_warm", **labels) == 1
     for q in ("0.5", "0.9", "0.99"):
-        got = value(m, "sigmad_quantile", **labels, field="ms", quantile=q)
+        got = value(m, "sigmad_quantile", **labels, field="ms", q=q)
         assert got == pytest.approx(np.quantile(x, float(q)), rel=0.05)
 
 
