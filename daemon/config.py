@@ -474,7 +474,7 @@ def _source(data: object, path: str) -> SourceConfig:
     connect = _endpoints(t, "connect", False)
     if bool(bind) == bool(connect):
         raise ConfigError(t.key("bind"), list(bind) if bind else _MISSING,
-                          "must be given, or connect, but not both" if not bind else
+                          "a source needs bind or connect (one of the two)" if not bind else
                           "and connect cannot both be given: a source either binds or connects")
     if "topics" in t.data and socket == "pull":
         raise ConfigError(t.key("topics"), t.data["topics"],
