@@ -244,8 +244,8 @@ def _pack_array(value: object, binary: bool) -> bytes | list[float]:
 
 
 def _pack(value: object, binary: bool) -> float | bytes | list[float]:
-    if isinstance(value, bool):
-        raise TypeError(f"cannot send bool {value!r} as a number")
+    if value is None or isinstance(value, (bool, str, bytes)):
+        raise TypeError(f"cannot send {type(value).__name__} {value!r} as a number")
     if isinstance(value, (int, float, np.integer, np.floating)):
         return float(value)
     return _pack_array(value, binary)
