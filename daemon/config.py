@@ -88,7 +88,8 @@ class ConfigError(ValueError):
 
 @dataclass(frozen=True, slots=True)
 class DaemonConfig:
-    """The ``[daemon]`` table. Durations are in seconds."""
+    """The ``[daemon]`` table. Durations are in seconds; an ``http`` port of 0 lets the
+    system pick a free one."""
 
     http: str = "127.0.0.1:9410"
     state_file: str | None = None
@@ -737,7 +738,8 @@ def describe(config: Config) -> str:
         how = "bind" if s.bind else "connect"
         extra = ""
         if s.socket == "sub":
-            extra = " topics " + ", ".join(repr(p) for p in s.topics)
+            extra = " topics " + ("(everything)" if s.topics == ("",) else
+                                  ", ".join(repr(p) for p in s.topics))
         if s.curve_secret:
             extra += " curve " + (f"allow {s.curve_allow}" if s.curve_allow else "any client")
         lines.append(f"  {s.socket:4} {how} {', '.join(s.endpoints)}{extra}")

@@ -24,6 +24,10 @@ stream needs but the message lacks rejects the message.
 infinite values, bad weights and bad times are left for
 ``estimators.clean_batch``, which drops those rows and counts them.
 
+msgpack extension types (the Timestamp extension included) are refused as
+``not_msgpack``: send ``time`` as a number of unix seconds. A ``weight``,
+``time``, ``source`` or ``seq`` of nil counts as absent.
+
 Decoding is bounded: the body length is checked before unpacking, and the
 unpacker's length limits are set from it (and from ``max_rows`` for arrays),
 so a header that claims a 2 GB array fails at the header, before anything is

@@ -436,3 +436,7 @@ def test_describe_lists_sources_streams_and_estimators():
     assert "idle expiry 1m" not in text and "idle expiry 90s" in text
     assert "publish snapshots on tcp://127.0.0.1:7411 every 500ms" in text
     assert "merge snapshots from tcp://127.0.0.1:7421; shards expire after 1m" in text
+
+
+def test_describe_says_a_sub_source_without_topics_takes_everything():
+    assert "sub  bind tcp://127.0.0.1:7412 topics (everything)" in describe(default_config())
