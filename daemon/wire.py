@@ -154,7 +154,7 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
     O(len(body)). A single observation sent as a map of numbers takes a short
     path with no per-field array work. A bin batch is read in place with
     ``np.frombuffer``: zero copies for a one-field stream, one
-    ``column_stack`` copy for d > 1 (the (n, d) rows must be contiguous).
+    copy into an (n, d) array for d > 1 (the (n, d) rows must be contiguous).
 
     Examples
     --------
@@ -202,7 +202,13 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
                 if column.shape[0] != n:
                     raise WireError("length_mismatch", f"values.{f} has {column.shape[0]} "
                                     f"rows, values.{fields[0]} has {n}")
-            x = columns[0].reshape(-1, 1) if len(columns) == 1 else np.column_stack(columns)
+            if len(columns) == 1:
+                x = columns[0].reshape(-1, 1)
+            else:
+                # filling an empty (n, d) array column by column beats np.column_stack
+                x = np.empty((n, len(columns)))
+                for j, column in enumerate(columns):
+                    x[:, j] = column
         else:
             bad = [f for v, f in zip(row, fields, strict=True)
                    if type(v) not in _NUMBER_TYPES and type(v) not in _ARRAY_TYPES]
