@@ -88,7 +88,8 @@ class ConfigError(ValueError):
 
 @dataclass(frozen=True, slots=True)
 class DaemonConfig:
-    """The ``[daemon]`` table. Durations are in seconds."""
+    """The ``[daemon]`` table. Durations are in seconds; an ``http`` port of 0 lets the
+    system pick a free one."""
 
     http: str = "127.0.0.1:9410"
     state_file: str | None = None
@@ -474,7 +475,7 @@ def _source(data: object, path: str) -> SourceConfig:
     connect = _endpoints(t, "connect", False)
     if bool(bind) == bool(connect):
         raise ConfigError(t.key("bind"), list(bind) if bind else _MISSING,
-                          "must be given, or connect, but not both" if not bind else
+                          "a source needs bind or connect (one of the two)" if not bind else
                           "and connect cannot both be given: a source either binds or connects")
     if "topics" in t.data and socket == "pull":
         raise ConfigError(t.key("topics"), t.data["topics"],
@@ -737,7 +738,8 @@ def describe(config: Config) -> str:
         how = "bind" if s.bind else "connect"
         extra = ""
         if s.socket == "sub":
-            extra = " topics " + ", ".join(repr(p) for p in s.topics)
+            extra = " topics " + ("(everything)" if s.topics == ("",) else
+                                  ", ".join(repr(p) for p in s.topics))
         if s.curve_secret:
             extra += " curve " + (f"allow {s.curve_allow}" if s.curve_allow else "any client")
         lines.append(f"  {s.socket:4} {how} {', '.join(s.endpoints)}{extra}")

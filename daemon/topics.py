@@ -112,14 +112,15 @@ class TopicTemplate:
         parts: list[str] = []
         for i, seg in enumerate(text.split(".")):
             if not seg:
-                raise TopicError(key, text, f"segment {i + 1} is empty (stray dot?)")
+                raise TopicError(key, text, f"has an empty segment {i + 1} (a stray dot?)")
             if seg.startswith("{") and seg.endswith("}"):
                 name = seg[1:-1]
                 if not LABEL_NAME.fullmatch(name):
-                    raise TopicError(key, text, f"label {seg} is not a valid label name "
-                                     "(letters, digits and _, not starting with a digit)")
+                    raise TopicError(key, text, f"has the label {seg}, which is not a valid "
+                                     "label name (letters, digits and _, not starting "
+                                     "with a digit)")
                 if name in labels:
-                    raise TopicError(key, text, f"label {{{name}}} appears twice")
+                    raise TopicError(key, text, f"names the label {{{name}}} twice")
                 labels.append(name)
                 segments.append((name, True))
                 parts.append(_VALUE)
@@ -127,8 +128,8 @@ class TopicTemplate:
                 segments.append((seg, False))
                 parts.append(re.escape(seg))
             else:
-                raise TopicError(key, text, f"segment {seg!r} must be a literal without "
-                                 "braces or control characters, or a whole {label}")
+                raise TopicError(key, text, f"has the segment {seg!r}, which is neither a literal "
+                                 "(no braces or control characters) nor a whole {label}")
         prefix_parts: list[str] = []
         for seg, is_label in segments:
             if is_label:

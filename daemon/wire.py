@@ -24,6 +24,10 @@ stream needs but the message lacks rejects the message.
 infinite values, bad weights and bad times are left for
 ``estimators.clean_batch``, which drops those rows and counts them.
 
+msgpack extension types (the Timestamp extension included) are refused as
+``not_msgpack``: send ``time`` as a number of unix seconds. A ``weight``,
+``time``, ``source`` or ``seq`` of nil counts as absent.
+
 Decoding is bounded: the body length is checked before unpacking, and the
 unpacker's length limits are set from it (and from ``max_rows`` for arrays),
 so a header that claims a 2 GB array fails at the header, before anything is
@@ -150,7 +154,7 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
     O(len(body)). A single observation sent as a map of numbers takes a short
     path with no per-field array work. A bin batch is read in place with
     ``np.frombuffer``: zero copies for a one-field stream, one
-    ``column_stack`` copy for d > 1 (the (n, d) rows must be contiguous).
+    copy into an (n, d) array for d > 1 (the (n, d) rows must be contiguous).
 
     Examples
     --------
@@ -198,7 +202,13 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
                 if column.shape[0] != n:
                     raise WireError("length_mismatch", f"values.{f} has {column.shape[0]} "
                                     f"rows, values.{fields[0]} has {n}")
-            x = columns[0].reshape(-1, 1) if len(columns) == 1 else np.column_stack(columns)
+            if len(columns) == 1:
+                x = columns[0].reshape(-1, 1)
+            else:
+                # filling an empty (n, d) array column by column beats np.column_stack
+                x = np.empty((n, len(columns)))
+                for j, column in enumerate(columns):
+                    x[:, j] = column
         else:
             bad = [f for v, f in zip(row, fields, strict=True)
                    if type(v) not in _NUMBER_TYPES and type(v) not in _ARRAY_TYPES]
@@ -244,8 +254,8 @@ def _pack_array(value: object, binary: bool) -> bytes | list[float]:
 
 
 def _pack(value: object, binary: bool) -> float | bytes | list[float]:
-    if isinstance(value, bool):
-        raise TypeError(f"cannot send bool {value!r} as a number")
+    if value is None or isinstance(value, (bool, str, bytes)):
+        raise TypeError(f"cannot send {type(value).__name__} {value!r} as a number")
     if isinstance(value, (int, float, np.integer, np.floating)):
         return float(value)
     return _pack_array(value, binary)

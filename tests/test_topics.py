@@ -70,15 +70,15 @@ def test_printable_unicode_label_values_match():
 
 @pytest.mark.parametrize(("text", "words"), [
     ("", "must not be empty"),
-    ("lat..{x}", "segment 2 is empty"),
-    ("lat.", "segment 2 is empty"),
-    (".lat", "segment 1 is empty"),
+    ("lat..{x}", "has an empty segment 2"),
+    ("lat.", "has an empty segment 2"),
+    (".lat", "has an empty segment 1"),
     ("lat.{1st}", "not a valid label name"),
     ("lat.{a-b}", "not a valid label name"),
     ("lat.{}", "not a valid label name"),
-    ("lat.a{b}", "must be a literal without braces"),
-    ("lat.{a}.{a}", "appears twice"),
-    ("lat.\x01", "must be a literal without braces or control characters"),
+    ("lat.a{b}", "neither a literal"),
+    ("lat.{a}.{a}", "names the label {a} twice"),
+    ("lat.\x01", "neither a literal (no braces or control characters)"),
 ])
 def test_malformed_templates_raise_naming_key_and_text(text, words):
     with pytest.raises(TopicError) as info:
