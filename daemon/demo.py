@@ -14,6 +14,7 @@ The scenario is our own. A small online bakery, "Crumb & Co", watches:
 
 from __future__ import annotations
 
+import logging
 import math
 import sys
 import tempfile
@@ -103,6 +104,8 @@ def run_demo(duration: float | None, http: str) -> int:
     from .app import Daemon
     from .cli import serve
 
+    # the live lines below show rejections; the per-message warnings would drown them
+    logging.getLogger("sigmad.engine").setLevel(logging.ERROR)
     with tempfile.TemporaryDirectory(prefix="sigmad-demo-") as tmp:
         endpoint = f"ipc://{Path(tmp) / 'ingest'}"
         config = parse_config(CONFIG.format(http=http, endpoint=endpoint), "<demo>")

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from estimators import Mixture, Moments, Regression, clean_batch
+from estimators import IncompatibleError, Mixture, Moments, Regression, clean_batch
 
 from .config import Config, StreamConfig
 from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
@@ -98,6 +98,121 @@ class StreamState:
                       [0] * len(cfg.outlier_sigmas))
 
 
+def _kinds(cfg: StreamConfig) -> list[str]:
+    return ["moments"] + (["regression"] if cfg.regression else []) \
+        + (["mixture"] if cfg.mixture else [])
+
+
+def series_state(s: Series) -> dict:
+    """A series' full state as a plain, msgpack-able dict (checkpoints, the merge tier).
+
+    Pending rows are not included: flush first. O(state size).
+    """
+    cfg = s.stream.cfg
+    return {
+        "stream": cfg.name, "labels": list(s.labels), "fields": list(cfg.fields),
+        "kinds": _kinds(cfg), "observations": s.observations, "version": s.version,
+        "last_update": s.last_update, "outliers": list(s.outliers),
+        "thresholds": list(cfg.outlier_sigmas),
+        "moments": s.moments.to_dict(),
+        "regression": None if s.regression is None else s.regression.to_dict(),
+        "mixture": None if s.mixture is None else s.mixture.to_dict(),
+    }
+
+
+def restore_series(st: StreamState, d: dict) -> Series:
+    """Rebuild a series of stream ``st`` from ``series_state``.
+
+    Raises IncompatibleError when the stream's definition changed incompatibly
+    (fields, estimator kinds, label count, outlier thresholds) or the state is
+    malformed; the caller drops that series and keeps the rest.
+    """
+    cfg = st.cfg
+    try:
+        labels = tuple(str(v) for v in d["labels"])
+        if list(d["fields"]) != list(cfg.fields):
+            raise IncompatibleError("fields", d["fields"], f"the stream now has {list(cfg.fields)}")
+        if list(d["kinds"]) != _kinds(cfg):
+            raise IncompatibleError("kinds", d["kinds"], f"the stream now has {_kinds(cfg)}")
+        if len(labels) != len(cfg.topic.labels):
+            raise IncompatibleError("labels", d["labels"],
+                                    f"the topic template now has {list(cfg.topic.labels)}")
+        s = st.new_series(labels)
+        s.moments = Moments.from_dict(d["moments"])
+        if s.moments.dim != st.dim or s.moments.half_life != cfg.half_life:
+            raise IncompatibleError("moments", s.moments.dim,
+                                    "dimension or half-life differs from the stream's")
+        if s.regression is not None:
+            s.regression = Regression.from_dict(d["regression"])
+        if s.mixture is not None:
+            s.mixture = Mixture.from_dict(d["mixture"])
+        outliers = [int(c) for c in d["outliers"]]
+        if list(d["thresholds"]) == list(cfg.outlier_sigmas):
+            s.outliers = outliers
+        s.observations = int(d["observations"])
+        s.version = int(d["version"])
+        s.last_update = float(d["last_update"])
+    except (KeyError, TypeError, ValueError) as exc:
+        if isinstance(exc, IncompatibleError):
+            raise
+        raise IncompatibleError("series", type(exc).__name__, f"malformed state: {exc}") \
+            from None
+    return s
+
+
+def view_of(s: Series) -> SeriesView:
+    """The immutable read-out of a series (computed once per change, O(d**2 + quantiles))."""
+    st = s.stream
+    cfg = st.cfg
+    m = s.moments
+    corr = cfg.correction
+    cov = m.covariance(corr)
+    rho = m.correlation()
+    d = st.dim
+    pairs = [(i, j) for i in range(d) for j in range(i + 1, d)]
+    quantiles = []
+    for q in cfg.quantiles:
+        if s.mixture is not None and s.mixture.warm:
+            vals = [s.mixture.quantile(q, field=i) for i in range(d)]
+        else:
+            vals = m.quantile(q, corr)
+        quantiles.extend((i, q, float(vals[i])) for i in range(d))
+    mixture = None
+    if s.mixture is not None:
+        mx = s.mixture
+        mixture = MixtureView(
+            warm=bool(mx.warm), weights=_floats(mx.weights) if mx.warm else (),
+            means=tuple(_floats(r) for r in mx.means) if mx.warm else (),
+            stddevs=tuple(_floats(r) for r in mx.stddevs) if mx.warm else (),
+            average_loglik=float(mx.average_loglik), reseeds=int(mx.reseeds),
+            log=bool(cfg.mixture.log))
+    regression = None
+    if s.regression is not None:
+        rg = s.regression
+        terms = tuple(cfg.regression.x)
+        coef, se = _floats(rg.coefficients), _floats(rg.stderr(corr))
+        if cfg.regression.intercept:
+            terms += ("intercept",)
+            coef += (float(rg.intercept),)
+            se += (float(rg.intercept_stderr(corr)),)
+        regression = RegressionView(
+            ok=bool(rg.ok), terms=terms, coefficients=coef, stderr=se,
+            residual_stddev=float(rg.residual_stddev(corr)),
+            residual_dof=float(rg.residual_dof(corr)),
+            r_squared=float(rg.r_squared))
+    return SeriesView(
+        stream=st.name, labels=s.key[1], fields=st.fields, version=s.version,
+        observations=s.observations, last_update=s.last_update, clock=m.clock,
+        half_life=cfg.half_life, weight_sum=m.weight_sum, weight_sq_sum=m.weight_sq_sum,
+        effective_samples=m.effective_samples, mean=_floats(m.mean),
+        variance=_floats(m.variance(corr)), stddev=_floats(m.stddev(corr)),
+        covariance=tuple((i, j, float(cov[i, j])) for i, j in pairs),
+        correlation=tuple((i, j, float(rho[i, j])) for i, j in pairs),
+        quantiles=tuple(quantiles),
+        outliers=tuple(zip(cfg.outlier_sigmas, s.outliers, strict=True)),
+        mixture=mixture, regression=regression)
+
+
 class Engine:
     """Routes, validates and folds observations; builds snapshots.
 
@@ -146,15 +261,16 @@ class Engine:
         self._routes[topic] = found
         return found
 
-    def reject(self, reason: str, count: int = 1, topic: bytes = b"", detail: str = "",
+    def reject(self, reason: str, count: int = 1, topic: bytes | str = b"", detail: str = "",
                now: float = 0.0) -> None:
+        """Count rejected observations by reason; log a bounded sample of them."""
         self.rejected[reason] += count
         if now - self._log_window >= 60.0:
             self._log_window, self._log_budget = now, self.config.daemon.log_rejected
         if self._log_budget > 0:
             self._log_budget -= 1
-            log.warning("rejected %d observation(s) on topic %r: %s%s", count,
-                        topic[:200].decode("utf-8", "replace"), reason,
+            where = topic if isinstance(topic, str) else topic[:200].decode("utf-8", "replace")
+            log.warning("rejected %d observation(s) from %s: %s%s", count, where, reason,
                         f" ({detail})" if detail else "")
 
     def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "") -> int:
@@ -222,7 +338,7 @@ class Engine:
             if self._fold(series, now):
                 views = views if changed else dict(views)
                 changed = True
-                views[series.key] = self._view(series)
+                views[series.key] = view_of(series)
         if changed or self.snapshot.taken_at == 0.0:
             self._views = views
         self.flushes += 1
@@ -234,13 +350,14 @@ class Engine:
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
         batch, dropped = clean_batch(x, st.dim, w, t)
+        where = f"{st.name}{dict(series.key[1]) or ''}"
         for reason, count in dropped.items():
-            self.reject(reason, count, now=now)
+            self.reject(reason, count, topic=where, now=now)
         x, w, t = batch
         if st.log_mixture and x.shape[0]:
             positive = (x > 0.0).all(axis=1)
             if not positive.all():
-                self.reject("not_positive", int((~positive).sum()), now=now)
+                self.reject("not_positive", int((~positive).sum()), topic=where, now=now)
                 x = x[positive]
                 w = None if w is None else w[positive]
                 t = None if t is None else t[positive]
@@ -273,57 +390,6 @@ class Engine:
         return series.moments.mahalanobis(x, st.cfg.correction)
 
     # ------------------------------------------------------------ read side
-    def _view(self, s: Series) -> SeriesView:
-        st = s.stream
-        cfg = st.cfg
-        m = s.moments
-        corr = cfg.correction
-        cov = m.covariance(corr)
-        rho = m.correlation()
-        d = st.dim
-        pairs = [(i, j) for i in range(d) for j in range(i + 1, d)]
-        quantiles = []
-        for q in cfg.quantiles:
-            if s.mixture is not None and s.mixture.warm:
-                vals = [s.mixture.quantile(q, field=i) for i in range(d)]
-            else:
-                vals = m.quantile(q, corr)
-            quantiles.extend((i, q, float(vals[i])) for i in range(d))
-        mixture = None
-        if s.mixture is not None:
-            mx = s.mixture
-            mixture = MixtureView(
-                warm=bool(mx.warm), weights=_floats(mx.weights) if mx.warm else (),
-                means=tuple(_floats(r) for r in mx.means) if mx.warm else (),
-                stddevs=tuple(_floats(r) for r in mx.stddevs) if mx.warm else (),
-                average_loglik=float(mx.average_loglik), reseeds=int(mx.reseeds),
-                log=bool(cfg.mixture.log))
-        regression = None
-        if s.regression is not None:
-            rg = s.regression
-            terms = tuple(cfg.regression.x)
-            coef, se = _floats(rg.coefficients), _floats(rg.stderr(corr))
-            if cfg.regression.intercept:
-                terms += ("intercept",)
-                coef += (float(rg.intercept),)
-                se += (float(rg.intercept_stderr(corr)),)
-            regression = RegressionView(
-                ok=bool(rg.ok), terms=terms, coefficients=coef, stderr=se,
-                residual_stddev=float(rg.residual_stddev(corr)),
-                residual_dof=float(rg.residual_dof(corr)),
-                r_squared=float(rg.r_squared))
-        return SeriesView(
-            stream=st.name, labels=s.key[1], fields=st.fields, version=s.version,
-            observations=s.observations, last_update=s.last_update, clock=m.clock,
-            half_life=cfg.half_life, weight_sum=m.weight_sum, weight_sq_sum=m.weight_sq_sum,
-            effective_samples=m.effective_samples, mean=_floats(m.mean),
-            variance=_floats(m.variance(corr)), stddev=_floats(m.stddev(corr)),
-            covariance=tuple((i, j, float(cov[i, j])) for i, j in pairs),
-            correlation=tuple((i, j, float(rho[i, j])) for i, j in pairs),
-            quantiles=tuple(quantiles),
-            outliers=tuple(zip(cfg.outlier_sigmas, s.outliers, strict=True)),
-            mixture=mixture, regression=regression)
-
     def _make_snapshot(self, now: float) -> Snapshot:
         health = Health(messages=tuple(sorted(self.messages.items())),
                         rejected=tuple(sorted(self.rejected.items())),
@@ -353,3 +419,39 @@ class Engine:
     def all_series(self):
         for st in self.streams:
             yield from st.series.values()
+
+    def stream(self, name: str) -> StreamState | None:
+        for st in self.streams:
+            if st.name == name:
+                return st
+        return None
+
+    def export_state(self) -> list[dict]:
+        """Every series' state (``series_state``), pending rows excluded. O(total state)."""
+        return [series_state(s) for s in self.all_series()]
+
+    def restore_state(self, states: list[dict], now: float) -> list[tuple[str, str]]:
+        """Restore series saved by ``export_state``; returns (series, reason) for each one
+        dropped because its stream is gone or changed incompatibly. The rest are live."""
+        dropped = []
+        for d in states:
+            name = d.get("stream") if isinstance(d, dict) else None
+            st = self.stream(name) if isinstance(name, str) else None
+            where = f"{name}{d.get('labels') if isinstance(d, dict) else ''}"
+            if st is None:
+                dropped.append((where, "its stream is no longer configured"))
+                continue
+            try:
+                s = restore_series(st, d)
+            except IncompatibleError as exc:
+                dropped.append((where, str(exc)))
+                continue
+            if s.labels not in st.series and len(st.series) >= st.cfg.max_series:
+                dropped.append((where, "the stream's max_series is reached"))
+                continue
+            st.series[s.labels] = s
+            self._dirty[id(s)] = s
+        self._views = {**self._views, **{s.key: view_of(s) for s in self._dirty.values()}}
+        self._dirty = {}
+        self.snapshot = self._make_snapshot(now)
+        return dropped
