@@ -148,6 +148,18 @@ def test_collapsed_component_is_reseeded_and_counted():
     assert np.isfinite(mix.means).all() and (mix.stddevs > 0).all()
 
 
+def test_component_collapsing_onto_a_spike_is_reseeded():
+    # Our scenario: 30 % of the values are exactly 5.0, so one component's variance falls
+    # below the covariance floor: it must be re-seeded, and the fit stays finite.
+    rng = np.random.default_rng(3)
+    x = np.where(rng.random(5000) < 0.3, 5.0, rng.normal(0.0, 1.0, 5000))
+    mix = stream(Mixture(2), x, 100)
+    assert mix.reseeds >= 1
+    assert np.isfinite(mix.covariances).all() and (mix.stddevs > 0).all()
+    # the spike holds about 0.3 of the mass (N(0, 1) puts only 3e-5 in [4, 6])
+    assert abs(mix.cdf(6.0) - mix.cdf(4.0) - 0.3) < 0.02
+
+
 def test_component_order_is_stable_between_reads_and_updates():
     rng = np.random.default_rng(12)
     x = np.concatenate([rng.normal(0, 1, 3000), rng.normal(6, 1, 2000)])
