@@ -13,6 +13,8 @@ import math
 import msgpack
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import optimize, stats
 from sklearn.datasets import load_iris
 from sklearn.mixture import GaussianMixture
@@ -201,6 +203,22 @@ def test_mixture_quantile_inverts_scipy_mixture_cdf_to_1e_9():
                                scipy_mixture_cdf(grid, w, mu, sd), rtol=1e-12, atol=1e-16)
     np.testing.assert_allclose(normal_mixture_cdf(grid, w, mu, sd, upper=True),
                                scipy_mixture_sf(grid, w, mu, sd), rtol=1e-12, atol=1e-300)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.floats(0.01, 1.0), st.floats(-50, 50), st.floats(1e-3, 20)),
+                min_size=1, max_size=5),
+       st.floats(1e-6, 1 - 1e-6))
+def test_quantile_inversion_property_against_scipy(parts, q):
+    # Reference: scipy.stats.norm.cdf / sf summed over arbitrary components.
+    w = np.array([p[0] for p in parts])
+    w = w / w.sum()
+    mu, sd = np.array([p[1] for p in parts]), np.array([p[2] for p in parts])
+    x = normal_mixture_quantile(q, w, mu, sd)
+    if q <= 0.5:
+        assert abs(scipy_mixture_cdf(x, w, mu, sd) - q) <= 1e-9
+    else:
+        assert abs(scipy_mixture_sf(x, w, mu, sd) - (1 - q)) <= 1e-9
 
 
 def test_fitted_mixture_quantiles_match_scipy_on_its_parameters():
