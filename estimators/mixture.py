@@ -221,12 +221,44 @@ class Mixture:
 
     def _step(self, y: np.ndarray, v: np.ndarray, vsum: float) -> None:
         """One stepwise-EM step: E-step under the current parameters, fold, M-step."""
+        if self.dim == 1:
+            self._step_one(y[:, 0], v, vsum)
+            return
         ll, gamma = _e_step(y, self._prepared())
         self.L += float(v @ ll)
         self.LW += vsum
         a, mb, cb = _batch_stats(y, v[:, None] * gamma, self.covariance == "diag")
-        wk = self._pi * self.W
-        tot = wk + a
+        self._fold_stats(a, mb, cb, self._pi * self.W + a)
+
+    def _step_one(self, y: np.ndarray, v: np.ndarray, vsum: float) -> None:
+        """``_step`` for d = 1 on (n, K) arrays: the same arithmetic, a third of the calls."""
+        _, const, mu, prec = self._prepared()
+        diff = y[:, None] - mu
+        ll, gamma = _logsumexp(const - 0.5 * (diff * diff) * prec)
+        self.L += float(v @ ll)
+        self.LW += vsum
+        r = gamma * v[:, None]
+        a = r.sum(axis=0)
+        tot = self._pi * self.W + a
+        if not (a > 0.0).all():    # rare: some component got nothing; take the general path
+            self._fold_stats(a, *_batch_stats(y[:, None], r, False)[1:], tot)
+            return
+        mb = (y @ r) / a
+        dev = y[:, None] - mb
+        cb = (r * dev * dev).sum(axis=0)
+        frac = a / tot
+        keep = 1.0 - frac
+        delta = mb - mu
+        var = self._cov[:, 0, 0]
+        self._mu = (mu + delta * frac)[:, None]
+        self._cov = (keep * var + cb / tot + delta * delta * keep * frac)[:, None, None]
+        self._pi = tot / tot.sum()
+        self._prep = None
+        self._reseed_collapsed()
+
+    def _fold_stats(self, a: np.ndarray, mb: np.ndarray, cb: np.ndarray,
+                    tot: np.ndarray) -> None:
+        """Combine batch statistics (a, mean, scatter) with the decayed state; M-step."""
         live = tot > 0.0
         frac = np.divide(a, tot, out=np.zeros_like(a), where=live)
         keep = 1.0 - frac
@@ -699,8 +731,11 @@ def _prepare(pi: np.ndarray, mu: np.ndarray, cov: np.ndarray, floor: np.ndarray,
              covariance: str) -> tuple:
     """Constants of log(pi_k N(y; mu_k, cov_k + floor)) for fast batch evaluation."""
     k, d = mu.shape
-    with np.errstate(divide="ignore"):
+    if (pi > 0.0).all():
         logpi = np.log(pi)
+    else:
+        with np.errstate(divide="ignore"):
+            logpi = np.log(pi)
     if d == 1:
         var = cov[:, 0, 0] + floor[0]
         return ("one", logpi - 0.5 * (_LOG_2PI + np.log(var)), mu[:, 0], 1.0 / var)
@@ -740,12 +775,15 @@ def _log_prob(y: np.ndarray, prep: tuple) -> np.ndarray:
 def _logsumexp(lp: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Row-wise log-sum-exp (n,) and the normalised responsibilities (n, K)."""
     top = lp.max(axis=1, keepdims=True)
-    top = np.where(np.isfinite(top), top, 0.0)
+    if np.isfinite(top).all():
+        e = np.exp(lp - top)
+        s = e.sum(axis=1)              # >= 1: the top term is exp(0)
+        return np.log(s) + top[:, 0], e / s[:, None]
+    top = np.where(np.isfinite(top), top, 0.0)    # a row no component can explain
     e = np.exp(lp - top)
     s = e.sum(axis=1)
-    with np.errstate(divide="ignore"):
-        ll = np.log(s) + top[:, 0]
-    return ll, e / s[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.log(s) + top[:, 0], e / s[:, None]
 
 
 def _e_step(y: np.ndarray, prep: tuple) -> tuple[np.ndarray, np.ndarray]:

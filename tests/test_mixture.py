@@ -13,6 +13,8 @@ import math
 import msgpack
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import optimize, stats
 from sklearn.datasets import load_iris
 from sklearn.mixture import GaussianMixture
@@ -148,6 +150,18 @@ def test_collapsed_component_is_reseeded_and_counted():
     assert np.isfinite(mix.means).all() and (mix.stddevs > 0).all()
 
 
+def test_component_collapsing_onto_a_spike_is_reseeded():
+    # Our scenario: 30 % of the values are exactly 5.0, so one component's variance falls
+    # below the covariance floor: it must be re-seeded, and the fit stays finite.
+    rng = np.random.default_rng(3)
+    x = np.where(rng.random(5000) < 0.3, 5.0, rng.normal(0.0, 1.0, 5000))
+    mix = stream(Mixture(2), x, 100)
+    assert mix.reseeds >= 1
+    assert np.isfinite(mix.covariances).all() and (mix.stddevs > 0).all()
+    # the spike holds about 0.3 of the mass (N(0, 1) puts only 3e-5 in [4, 6])
+    assert abs(mix.cdf(6.0) - mix.cdf(4.0) - 0.3) < 0.02
+
+
 def test_component_order_is_stable_between_reads_and_updates():
     rng = np.random.default_rng(12)
     x = np.concatenate([rng.normal(0, 1, 3000), rng.normal(6, 1, 2000)])
@@ -189,6 +203,22 @@ def test_mixture_quantile_inverts_scipy_mixture_cdf_to_1e_9():
                                scipy_mixture_cdf(grid, w, mu, sd), rtol=1e-12, atol=1e-16)
     np.testing.assert_allclose(normal_mixture_cdf(grid, w, mu, sd, upper=True),
                                scipy_mixture_sf(grid, w, mu, sd), rtol=1e-12, atol=1e-300)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.floats(0.01, 1.0), st.floats(-50, 50), st.floats(1e-3, 20)),
+                min_size=1, max_size=5),
+       st.floats(1e-6, 1 - 1e-6))
+def test_quantile_inversion_property_against_scipy(parts, q):
+    # Reference: scipy.stats.norm.cdf / sf summed over arbitrary components.
+    w = np.array([p[0] for p in parts])
+    w = w / w.sum()
+    mu, sd = np.array([p[1] for p in parts]), np.array([p[2] for p in parts])
+    x = normal_mixture_quantile(q, w, mu, sd)
+    if q <= 0.5:
+        assert abs(scipy_mixture_cdf(x, w, mu, sd) - q) <= 1e-9
+    else:
+        assert abs(scipy_mixture_sf(x, w, mu, sd) - (1 - q)) <= 1e-9
 
 
 def test_fitted_mixture_quantiles_match_scipy_on_its_parameters():
