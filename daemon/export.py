@@ -29,10 +29,9 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_correlation": ("gauge", "Pearson correlation of two fields."),
     "sigmad_quantile": ("gauge", "Estimated q-quantile of a field, in the stream's units."),
     "sigmad_mixture_weight": ("gauge", "Weight of a mixture component."),
-    "sigmad_mixture_mean": ("gauge", "Mean of a mixture component (log units when fitted in log)."),
+    "sigmad_mixture_mean": ("gauge", "Mean of a mixture component, in the stream's units."),
     "sigmad_mixture_stddev": ("gauge",
-                              "Standard deviation of a mixture component (log units when "
-                              "fitted in log)."),
+                              "Standard deviation of a mixture component, in the stream's units."),
     "sigmad_mixture_loglik": ("gauge", "Decayed average log-likelihood per observation."),
     "sigmad_mixture_warm": ("gauge", "1 once the mixture is initialised, 0 while warming up."),
     "sigmad_mixture_reseeds": ("counter", "Mixture components re-seeded after collapsing."),

@@ -17,8 +17,8 @@ from estimators.forgetting import catch_up
 class MixtureView:
     warm: bool
     weights: tuple[float, ...]
-    means: tuple[tuple[float, ...], ...]      # (K, d), in the fitted space
-    stddevs: tuple[tuple[float, ...], ...]    # (K, d), in the fitted space
+    means: tuple[tuple[float, ...], ...]      # (K, d), in the stream's units
+    stddevs: tuple[tuple[float, ...], ...]    # (K, d), in the stream's units
     average_loglik: float
     reseeds: int
     log: bool
