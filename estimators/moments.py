@@ -242,8 +242,12 @@ class Moments:
         return np.clip(r, -1.0, 1.0)
 
     def standard_error(self, correction: Correction = "reliability") -> np.ndarray:
-        """Standard error of the mean per field, sqrt(variance / effective samples)."""
-        n = self.effective_samples
+        """Standard error of the mean per field.
+
+        sqrt(variance / W) under "frequency" (the weights count observations), and
+        sqrt(variance / n_eff) with Kish's effective sample size otherwise.
+        """
+        n = self.W if correction == "frequency" else self.effective_samples
         return np.sqrt(self.variance(correction) / n) if n > 0 else np.full(self.dim, np.nan)
 
     def quantile(self, q: float, correction: Correction = "reliability") -> np.ndarray:

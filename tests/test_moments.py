@@ -159,6 +159,16 @@ def test_standard_error_and_normal_quantile():
         assert m.quantile(q)[0] == pytest.approx(ref, rel=1e-12)
 
 
+def test_standard_error_with_frequency_weights_matches_statsmodels_descrstatsw():
+    weightstats = need_module("statsmodels.stats.weightstats")
+    rng = np.random.default_rng(13)
+    x, f = rng.normal(5.0, 2.0, 80), rng.integers(1, 6, 80).astype(float)
+    m = Moments()
+    m.update(x, weights=f)
+    ref = weightstats.DescrStatsW(x, weights=f, ddof=1)  # statsmodels: frequency weights
+    assert m.standard_error("frequency")[0] == pytest.approx(ref.std_mean, rel=1e-12)
+
+
 def test_mahalanobis_matches_direct_solve():
     rng = np.random.default_rng(8)
     x = rng.multivariate_normal([1, -1], [[2, .8], [.8, 1]], 500)
