@@ -7,14 +7,15 @@ import threading
 import time
 
 import zmq
-from prometheus_client import CollectorRegistry, Histogram
+from prometheus_client import CollectorRegistry, Histogram, generate_latest
 
 from .config import Config
 from .engine import Engine
-from .export import SnapshotCollector
+from .export import HealthCollector
 from .http import HttpServer, json_bytes
 from .ingest import Source
 from .page import render_page
+from .render import SeriesRenderer
 from .state import snapshot_json
 
 log = logging.getLogger("sigmad")
@@ -34,7 +35,8 @@ class Daemon:
         self.config = config
         self.engine = Engine(config)
         self.registry = CollectorRegistry(auto_describe=False)
-        self.registry.register(SnapshotCollector(lambda: self.engine.snapshot))
+        self.registry.register(HealthCollector(lambda: self.engine.snapshot))
+        self.renderer = SeriesRenderer()
         self.flush_rows = Histogram(
             "sigmad_flush_rows", "Rows folded into estimators per flush.",
             buckets=(1, 10, 100, 1_000, 10_000, 100_000), registry=self.registry)
@@ -42,7 +44,7 @@ class Daemon:
             "sigmad_flush_duration_seconds", "Time spent folding one flush.",
             buckets=(1e-4, 1e-3, 1e-2, 0.1, 1.0), registry=self.registry)
         d = config.daemon
-        self.http = HttpServer(d.http, self.registry, self._page, self._state,
+        self.http = HttpServer(d.http, self._metrics, self._page, self._state,
                                d.tls_cert, d.tls_key, d.tls_client_ca)
         self._ctx = zmq.Context()
         self.sources: list[Source] = []
@@ -58,6 +60,10 @@ class Daemon:
         self.failure: BaseException | None = None
 
     # ----------------------------------------------------------- read side
+    def _metrics(self) -> bytes:
+        return self.renderer.render(self.engine.snapshot, time.time()) \
+            + generate_latest(self.registry)
+
     def _page(self) -> bytes:
         return render_page(self.engine.snapshot, time.time())
 

@@ -7,6 +7,7 @@ state, so the hot path takes no locks. Readers get immutable ``Snapshot``s.
 from __future__ import annotations
 
 import logging
+import math
 from collections import Counter
 from dataclasses import dataclass, field
 
@@ -16,11 +17,12 @@ from estimators import IncompatibleError, Mixture, Moments, Regression, clean_ba
 
 from .config import Config, StreamConfig
 from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
-from .wire import WireError, decode
+from .wire import WireError, interpret, origin, single, unpack
 
 log = logging.getLogger("sigmad.engine")
 
 _ROUTE_CACHE_LIMIT = 65_536
+_UNSEEN = object()
 
 
 def _floats(a) -> tuple[float, ...]:
@@ -60,11 +62,30 @@ class Series:
     version: int = 0
     last_update: float = 0.0
     pending: list = field(default_factory=list)   # (values, weights|None, times|None, arrival)
+    rows: list = field(default_factory=list)      # single observations waiting: tuples of d
+    row_weights: list = field(default_factory=list)   # their weights (None = 1)
+    row_times: list = field(default_factory=list)     # their event (or arrival) times
+    rows_weighted: bool = False
+    rows_timed: bool = False
 
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
         return self.stream.name, tuple(zip(self.stream.cfg.topic.labels, self.labels,
                                            strict=True))
+
+    def seal_rows(self) -> None:
+        """Turn the waiting single observations into one pending chunk. O(rows)."""
+        if not self.rows:
+            return
+        x = np.array(self.rows, dtype=np.float64)
+        w = None
+        if self.rows_weighted:
+            w = np.array([1.0 if v is None else v for v in self.row_weights], dtype=np.float64)
+        timed = self.rows_timed or self.stream.time_based
+        t = np.array(self.row_times, dtype=np.float64) if timed else None
+        self.pending.append((x, w, t, self.row_times[-1]))
+        self.rows, self.row_weights, self.row_times = [], [], []
+        self.rows_weighted = self.rows_timed = False
 
 
 class StreamState:
@@ -237,6 +258,9 @@ class Engine:
         self._log_budget = config.daemon.log_rejected
         self._log_window = 0.0
         self.snapshot = Snapshot(taken_at=0.0)
+        d = config.daemon
+        self._max_bytes, self._max_rows = d.max_message_bytes, d.max_batch_rows
+        self._max_skew = d.max_clock_skew
 
     # ------------------------------------------------------------- ingest
     def route(self, topic: bytes) -> tuple[StreamState, tuple[str, ...]] | None:
@@ -277,48 +301,71 @@ class Engine:
         """Decode one message and queue its rows for the next flush.
 
         Returns the number of rows queued (0 when the message was rejected). Never
-        raises on bad input: every rejection is counted by reason.
+        raises on bad input: every rejection is counted by reason. A single
+        observation of plain numbers takes a short path that builds no arrays;
+        its row waits in a list until the flush. O(len(body)).
         """
         self.messages[endpoint] += 1
-        route = self.route(topic)
+        route = self._routes.get(topic, _UNSEEN)
+        if route is _UNSEEN:
+            route = self.route(topic)
         if route is None:
             self.reject("no_stream", topic=topic, now=now)
             return 0
         st, labels = route
-        dcfg = self.config.daemon
         try:
-            dec = decode(body, st.fields, max_bytes=dcfg.max_message_bytes,
-                         max_rows=dcfg.max_batch_rows)
+            msg = unpack(body, max_bytes=self._max_bytes, max_rows=self._max_rows)
+            one = single(msg, st.fields)
+            dec = interpret(msg, st.fields, max_rows=self._max_rows) if one is None else None
+            source, seq = origin(msg)
         except WireError as exc:
             self.reject(exc.reason, topic=topic, detail=exc.detail, now=now)
             return 0
-        values, weights, times = dec.values, dec.weights, dec.times
-        n = values.shape[0]
-        if dec.source is not None and dec.seq is not None:
-            self._count_gap(dec.source, dec.seq)
+        if seq is not None and source is not None:
+            self._count_gap(source, seq)
         series = st.series.get(labels)
         if series is None:
             if len(st.series) >= st.cfg.max_series:
-                self.reject("series_limit", n, topic=topic, now=now)
+                self.reject("series_limit", 1 if dec is None else dec.values.shape[0],
+                            topic=topic, now=now)
                 return 0
             series = st.series[labels] = st.new_series(labels)
+        if dec is None:
+            row, weight, when = one
+            if when is not None and abs(when - now) > self._max_skew and math.isfinite(when):
+                self.reject("clock_skew", topic=topic, now=now)
+                return 0
+            series.rows.append(row)
+            series.row_weights.append(weight)
+            series.row_times.append(now if when is None else when)
+            if weight is not None:
+                series.rows_weighted = True
+            if when is not None:
+                series.rows_timed = True
+            n = 1
+        else:
+            n = self._queue_batch(series, dec, now, topic)
+        self.pending_rows += n
+        series.last_update = now
+        self._dirty[id(series)] = series
+        return n
+
+    def _queue_batch(self, series: Series, dec, now: float, topic: bytes) -> int:
+        values, weights, times = dec.values, dec.weights, dec.times
         if times is not None:
             # non-finite times are left for clean_batch to count as bad_time
             with np.errstate(invalid="ignore"):
-                skew = np.isfinite(times) & (np.abs(times - now) > dcfg.max_clock_skew)
+                skew = np.isfinite(times) & (np.abs(times - now) > self._max_skew)
             if skew.any():
                 self.reject("clock_skew", int(skew.sum()), topic=topic, now=now)
                 keep = ~skew
                 values, times = values[keep], times[keep]
                 weights = None if weights is None else weights[keep]
-                n = values.shape[0]
-                if n == 0:
-                    return 0
+        if values.shape[0] == 0:
+            return 0
+        series.seal_rows()   # keep arrival order: single rows queued so far go first
         series.pending.append((values, weights, times, now))
-        self.pending_rows += n
-        series.last_update = now
-        self._dirty[id(series)] = series
-        return n
+        return values.shape[0]
 
     def _count_gap(self, source: str, seq: int) -> None:
         last = self._last_seq.get(source)
@@ -346,6 +393,7 @@ class Engine:
         return self.snapshot
 
     def _fold(self, series: Series, now: float) -> bool:
+        series.seal_rows()
         chunks, series.pending = series.pending, []
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
@@ -408,7 +456,7 @@ class Engine:
             if limit is None:
                 continue
             stale = [k for k, s in st.series.items()
-                     if now - s.last_update > limit and not s.pending]
+                     if now - s.last_update > limit and not s.pending and not s.rows]
             for labels in stale:
                 gone.add(st.series.pop(labels).key)
         if gone:

@@ -1,16 +1,20 @@
-"""Prometheus export: a custom collector that yields metric families from a snapshot.
+"""Prometheus export: the metric model of a snapshot.
 
-The collector never touches live estimator state and never renders text: it
-reads the latest immutable ``Snapshot`` at scrape time and yields families;
-prometheus-client renders them. Non-finite values (an estimate that is not
-defined yet, such as a variance from one observation) are left out rather
+Every sample comes from one of three generators over the immutable
+``Snapshot`` (never live estimator state): ``static_samples`` (changes only
+when the series does), ``dynamic_samples`` (moves with the clock) and
+``health_samples`` (the daemon's own counters). ``HealthCollector`` yields the
+health families to prometheus-client; the per-series part is rendered by
+``render.SeriesRenderer``, which caches each series' text until it changes,
+and ``families`` gives the same samples as metric families (the reference the
+renderer is tested and benchmarked against). Non-finite values (an estimate
+not defined yet, such as a variance from one observation) are left out rather
 than exported as NaN.
 """
 
 from __future__ import annotations
 
 import math
-import time
 from collections.abc import Callable, Iterator
 
 from prometheus_client.metrics_core import Metric
@@ -50,78 +54,103 @@ METRICS: dict[str, tuple[str, str]] = {
 }
 
 
-def _family(name: str) -> Metric:
-    kind, doc = METRICS[name]
-    return Metric(name, doc, kind)
+# Per-series families whose values change with the clock even without new data.
+DYNAMIC = ("sigmad_weight", "sigmad_weight_squared", "sigmad_update_age_seconds")
+HEALTH = ("sigmad_series", "sigmad_rejected", "sigmad_messages", "sigmad_sequence_gaps")
+SERIES = tuple(name for name in METRICS if name not in HEALTH)
+
+Sample = tuple[str, dict[str, str], float]   # (family, labels, value)
 
 
-def _g(fam: Metric, labels: dict[str, str], value: float) -> None:
-    if math.isfinite(value):
-        fam.add_sample(fam.name if fam.type == "gauge" else fam.name + "_total", labels, value)
-
-
-def _series_labels(v: SeriesView) -> dict[str, str]:
+def series_labels(v: SeriesView) -> dict[str, str]:
     labels = {"stream": v.stream}
     labels.update(v.labels)
     return labels
 
 
-def families(snap: Snapshot, now: float) -> Iterator[Metric]:
-    """Every metric family of a snapshot, as of wall-clock time ``now``. O(samples)."""
-    fams = {name: _family(name) for name in METRICS}
-    f_mean, f_sd, f_var = fams["sigmad_mean"], fams["sigmad_stddev"], fams["sigmad_variance"]
-    f_q = fams["sigmad_quantile"]
-    for v in snap.series.values():
-        base = _series_labels(v)
-        w, w2 = v.weights_at(now)
-        _g(fams["sigmad_weight"], base, w)
-        _g(fams["sigmad_weight_squared"], base, w2)
-        _g(fams["sigmad_effective_samples"], base, v.effective_samples)
-        _g(fams["sigmad_observations"], base, float(v.observations))
-        _g(fams["sigmad_update_age_seconds"], base, max(0.0, now - v.last_update))
-        per_field = [dict(base, field=f) for f in v.fields]
-        for i, lab in enumerate(per_field):
-            _g(f_mean, lab, v.mean[i])
-            _g(f_sd, lab, v.stddev[i])
-            _g(f_var, lab, v.variance[i])
-        for i, j, c in v.covariance:
-            _g(fams["sigmad_covariance"], dict(base, field=v.fields[i], field_b=v.fields[j]), c)
-        for i, j, r in v.correlation:
-            _g(fams["sigmad_correlation"], dict(base, field=v.fields[i], field_b=v.fields[j]), r)
-        for i, q, value in v.quantiles:
-            _g(f_q, dict(per_field[i], q=_fmt_q(q)), value)
-        for thr, count in v.outliers:
-            _g(fams["sigmad_outliers"], dict(base, threshold=_fmt_q(thr)), float(count))
-        mx = v.mixture
-        if mx is not None:
-            _g(fams["sigmad_mixture_warm"], base, 1.0 if mx.warm else 0.0)
-            _g(fams["sigmad_mixture_reseeds"], base, float(mx.reseeds))
-            _g(fams["sigmad_mixture_loglik"], base, mx.average_loglik)
-            for k, wk in enumerate(mx.weights):
-                comp = dict(base, component=str(k))
-                _g(fams["sigmad_mixture_weight"], comp, wk)
-                for i, f in enumerate(v.fields):
-                    _g(fams["sigmad_mixture_mean"], dict(comp, field=f), mx.means[k][i])
-                    _g(fams["sigmad_mixture_stddev"], dict(comp, field=f), mx.stddevs[k][i])
-        rg = v.regression
-        if rg is not None and rg.ok:
-            for term, b, se in zip(rg.terms, rg.coefficients, rg.stderr, strict=True):
-                _g(fams["sigmad_regression_coefficient"], dict(base, term=term), b)
-                _g(fams["sigmad_regression_stderr"], dict(base, term=term), se)
-            _g(fams["sigmad_regression_residual_stddev"], base, rg.residual_stddev)
-            _g(fams["sigmad_regression_r_squared"], base, rg.r_squared)
+def static_samples(v: SeriesView) -> Iterator[Sample]:
+    """The samples of a series that change only when the series does. O(samples)."""
+    base = series_labels(v)
+    yield "sigmad_effective_samples", base, v.effective_samples
+    yield "sigmad_observations", base, float(v.observations)
+    per_field = [dict(base, field=f) for f in v.fields]
+    for i, lab in enumerate(per_field):
+        yield "sigmad_mean", lab, v.mean[i]
+        yield "sigmad_stddev", lab, v.stddev[i]
+        yield "sigmad_variance", lab, v.variance[i]
+    for i, j, c in v.covariance:
+        yield "sigmad_covariance", dict(base, field=v.fields[i], field_b=v.fields[j]), c
+    for i, j, r in v.correlation:
+        yield "sigmad_correlation", dict(base, field=v.fields[i], field_b=v.fields[j]), r
+    for i, q, value in v.quantiles:
+        yield "sigmad_quantile", dict(per_field[i], q=_fmt_q(q)), value
+    for thr, count in v.outliers:
+        yield "sigmad_outliers", dict(base, threshold=_fmt_q(thr)), float(count)
+    mx = v.mixture
+    if mx is not None:
+        yield "sigmad_mixture_warm", base, 1.0 if mx.warm else 0.0
+        yield "sigmad_mixture_reseeds", base, float(mx.reseeds)
+        yield "sigmad_mixture_loglik", base, mx.average_loglik
+        for k, wk in enumerate(mx.weights):
+            comp = dict(base, component=str(k))
+            yield "sigmad_mixture_weight", comp, wk
+            for i, f in enumerate(v.fields):
+                yield "sigmad_mixture_mean", dict(comp, field=f), mx.means[k][i]
+                yield "sigmad_mixture_stddev", dict(comp, field=f), mx.stddevs[k][i]
+    rg = v.regression
+    if rg is not None and rg.ok:
+        for term, b, se in zip(rg.terms, rg.coefficients, rg.stderr, strict=True):
+            yield "sigmad_regression_coefficient", dict(base, term=term), b
+            yield "sigmad_regression_stderr", dict(base, term=term), se
+        yield "sigmad_regression_residual_stddev", base, rg.residual_stddev
+        yield "sigmad_regression_r_squared", base, rg.r_squared
+
+
+def dynamic_samples(v: SeriesView, now: float) -> Iterator[Sample]:
+    """The samples of a series that move with the clock: decayed weights, age. O(1)."""
+    base = series_labels(v)
+    w, w2 = v.weights_at(now)
+    yield "sigmad_weight", base, w
+    yield "sigmad_weight_squared", base, w2
+    yield "sigmad_update_age_seconds", base, max(0.0, now - v.last_update)
+
+
+def health_samples(snap: Snapshot) -> Iterator[Sample]:
     for stream, count in snap.series_per_stream:
-        _g(fams["sigmad_series"], {"stream": stream}, float(count))
+        yield "sigmad_series", {"stream": stream}, float(count)
     h = snap.health
     for reason, count in h.rejected:
-        _g(fams["sigmad_rejected"], {"reason": reason}, float(count))
+        yield "sigmad_rejected", {"reason": reason}, float(count)
     for endpoint, count in h.messages:
-        _g(fams["sigmad_messages"], {"endpoint": endpoint}, float(count))
+        yield "sigmad_messages", {"endpoint": endpoint}, float(count)
     for producer, count in h.sequence_gaps:
-        _g(fams["sigmad_sequence_gaps"], {"producer": producer}, float(count))
+        yield "sigmad_sequence_gaps", {"producer": producer}, float(count)
+
+
+def sample_name(family: str) -> str:
+    """The sample name of a family: counters take ``_total``."""
+    return family + "_total" if METRICS[family][0] == "counter" else family
+
+
+def _families(names: tuple[str, ...], samples) -> Iterator[Metric]:
+    fams = {name: Metric(name, METRICS[name][1], METRICS[name][0]) for name in names}
+    for family, labels, value in samples:
+        if math.isfinite(value):
+            fams[family].add_sample(sample_name(family), labels, value)
     for fam in fams.values():
         if fam.samples:
             yield fam
+
+
+def families(snap: Snapshot, now: float) -> Iterator[Metric]:
+    """Every per-series metric family of a snapshot as of ``now``, as prometheus-client
+    metric families (the model the fast renderer in ``render.py`` must agree with).
+    O(samples)."""
+    def samples():
+        for v in snap.series.values():
+            yield from static_samples(v)
+            yield from dynamic_samples(v, now)
+    return _families(SERIES, samples())
 
 
 def _fmt_q(q: float) -> str:
@@ -129,16 +158,14 @@ def _fmt_q(q: float) -> str:
     return repr(float(q)).removesuffix(".0")
 
 
-class SnapshotCollector:
-    """A prometheus-client collector over whichever snapshot ``current()`` returns."""
+class HealthCollector:
+    """A prometheus-client collector of the daemon's own counters in the latest snapshot."""
 
-    def __init__(self, current: Callable[[], Snapshot],
-                 clock: Callable[[], float] = time.time) -> None:
+    def __init__(self, current: Callable[[], Snapshot]) -> None:
         self._current = current
-        self._clock = clock
 
     def collect(self) -> Iterator[Metric]:
-        return families(self._current(), self._clock())
+        return _families(HEALTH, health_samples(self._current()))
 
     def describe(self) -> list:
-        return []   # unchecked collector: its families depend on the configuration
+        return []   # unchecked collector: its samples depend on the traffic

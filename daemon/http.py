@@ -12,7 +12,7 @@ import threading
 from collections.abc import Callable
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
-from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+from prometheus_client import CONTENT_TYPE_LATEST
 
 log = logging.getLogger("sigmad.http")
 
@@ -61,20 +61,18 @@ class HttpServer:
     ----------
     address : str
         "host:port"; port 0 picks a free port (see ``port``).
-    registry : CollectorRegistry
-        What /metrics renders.
-    page, state : callables returning bytes
-        The status page (HTML) and the JSON state.
+    metrics, page, state : callables returning bytes
+        The exposition text for /metrics, the status page (HTML) and the JSON state.
     tls_cert, tls_key, tls_client_ca : str or None
         With cert and key: HTTPS. With a client CA too: client certificates required.
     """
 
-    def __init__(self, address: str, registry: CollectorRegistry,
+    def __init__(self, address: str, metrics: Callable[[], bytes],
                  page: Callable[[], bytes], state: Callable[[], bytes],
                  tls_cert: str | None = None, tls_key: str | None = None,
                  tls_client_ca: str | None = None) -> None:
         handler = type("Handler", (_Handler,), {"routes": {
-            "/metrics": lambda: (generate_latest(registry), CONTENT_TYPE_LATEST),
+            "/metrics": lambda: (metrics(), CONTENT_TYPE_LATEST),
             "/": lambda: (page(), "text/html; charset=utf-8"),
             "/api/state": lambda: (state(), "application/json"),
         }})

@@ -162,6 +162,16 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
     >>> d.values.tolist(), d.weights
     ([[12.5]], None)
     """
+    return interpret(unpack(body, max_bytes=max_bytes, max_rows=max_rows), fields,
+                     max_rows=max_rows)
+
+
+def unpack(body: bytes, *, max_bytes: int, max_rows: int) -> dict:
+    """Unpack a body into its top-level map, bounded by its own length and ``max_rows``.
+
+    Raises WireError ``too_large``, ``too_many_rows``, ``not_msgpack`` or
+    ``not_a_map``. O(len(body)).
+    """
     size = len(body)
     if size > max_bytes:
         raise WireError("too_large", f"body of {size} bytes exceeds max_message_bytes {max_bytes}")
@@ -179,6 +189,51 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
         raise WireError("not_msgpack", f"body is not one msgpack object ({exc})") from None
     if type(msg) is not dict:
         raise WireError("not_a_map", f"body is a msgpack {type(msg).__name__}, not a map")
+    return msg
+
+
+def single(msg: dict, fields: tuple[str, ...]) -> tuple[tuple, object, object] | None:
+    """The hot path: ``(row, weight, time)`` when ``msg`` is one observation given as a
+    map of plain numbers with scalar (or absent) weight and time; None for anything
+    else, which :func:`interpret` then reads (or rejects). Checks types only: row
+    values, weight and time may still be non-finite. O(d).
+    """
+    values = msg.get("values")
+    if type(values) is dict:
+        try:
+            row = tuple(map(values.__getitem__, fields))
+        except KeyError:
+            return None
+        if not set(map(type, row)) <= _NUMBER_TYPES:
+            return None
+    elif type(values) is float or type(values) is int:
+        if len(fields) != 1:
+            return None
+        row = (values,)
+    else:
+        return None
+    weight, when = msg.get("weight"), msg.get("time")
+    if (weight is None or type(weight) is float or type(weight) is int) and \
+            (when is None or type(when) is float or type(when) is int):
+        return row, weight, when
+    return None
+
+
+def origin(msg: dict) -> tuple[str | None, int | None]:
+    """The optional ``(source, seq)`` of a message; raises ``bad_source`` / ``bad_seq``."""
+    source = msg.get("source")
+    if source is not None and not (type(source) is str and 0 < len(source) <= MAX_SOURCE
+                                   and source.isprintable()):
+        raise WireError("bad_source", f"source {source!r} is not a printable string of "
+                        f"1 to {MAX_SOURCE} characters")
+    seq = msg.get("seq")
+    if seq is not None and not (type(seq) is int and 0 <= seq < _SEQ_LIMIT):
+        raise WireError("bad_seq", f"seq {seq!r} is not an integer in [0, 2**64)")
+    return source, seq
+
+
+def interpret(msg: dict, fields: tuple[str, ...], *, max_rows: int) -> Decoded:
+    """Read an unpacked body (see :func:`decode`). O(n d)."""
     values = msg.get("values")
     if values is None:
         raise WireError("no_values", "body has no 'values' key")
@@ -234,14 +289,7 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
     weights = _per_row(msg, "weight", n)
     times = _per_row(msg, "time", n)
 
-    source = msg.get("source")
-    if source is not None and not (type(source) is str and 0 < len(source) <= MAX_SOURCE
-                                   and source.isprintable()):
-        raise WireError("bad_source", f"source {source!r} is not a printable string of "
-                        f"1 to {MAX_SOURCE} characters")
-    seq = msg.get("seq")
-    if seq is not None and not (type(seq) is int and 0 <= seq < _SEQ_LIMIT):
-        raise WireError("bad_seq", f"seq {seq!r} is not an integer in [0, 2**64)")
+    source, seq = origin(msg)
     # tuple.__new__ skips the NamedTuple's Python-level __new__ (about 200 ns a message).
     return _new_decoded(Decoded, (x, weights, times, source, seq))
 
