@@ -78,6 +78,12 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return run_demo(args.duration, args.http)
 
 
+def _cmd_bench(args: argparse.Namespace) -> int:
+    from .bench import main as bench_main
+
+    return bench_main(args.quick)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="sigmad",
@@ -111,6 +117,12 @@ def build_parser() -> argparse.ArgumentParser:
     send.add_argument("--field", metavar="F",
                       help="field name for bare numbers (default: the stream's only field)")
     send.set_defaults(func=_cmd_send)
+
+    bench = sub.add_parser("bench", help="end-to-end throughput on this machine, beside "
+                                         "the limits it is measured against")
+    bench.add_argument("--quick", action="store_true", help="smaller sizes (seconds, not a "
+                       "minute); the figures are noisier")
+    bench.set_defaults(func=_cmd_bench)
 
     check = sub.add_parser("check-config", help="validate a configuration and print it")
     check.add_argument("file")

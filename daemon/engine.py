@@ -6,23 +6,27 @@ state, so the hot path takes no locks. Readers get immutable ``Snapshot``s.
 
 from __future__ import annotations
 
+import functools
 import logging
 import math
 from collections import Counter
 from dataclasses import dataclass, field
 
+import msgpack
 import numpy as np
 
 from estimators import IncompatibleError, Mixture, Moments, Regression, clean_batch
 
 from .config import Config, StreamConfig
 from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
-from .wire import WireError, interpret, origin, single, unpack
+from .wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 
 log = logging.getLogger("sigmad.engine")
 
 _ROUTE_CACHE_LIMIT = 65_536
 _UNSEEN = object()
+_PLAIN = frozenset((float, int))   # value types a single observation may use
+_MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
 
 
 def _floats(a) -> tuple[float, ...]:
@@ -62,30 +66,33 @@ class Series:
     version: int = 0
     last_update: float = 0.0
     pending: list = field(default_factory=list)   # (values, weights|None, times|None, arrival)
-    rows: list = field(default_factory=list)      # single observations waiting: tuples of d
-    row_weights: list = field(default_factory=list)   # their weights (None = 1)
-    row_times: list = field(default_factory=list)     # their event (or arrival) times
-    rows_weighted: bool = False
-    rows_timed: bool = False
+    rows: list = field(default_factory=list)      # single observations waiting: floats (d = 1)
+    #                                               or tuples of d, all from one arrival
+    extras: list = field(default_factory=list)    # (row index, weight|None, time|None)
 
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
         return self.stream.name, tuple(zip(self.stream.cfg.topic.labels, self.labels,
                                            strict=True))
 
-    def seal_rows(self) -> None:
-        """Turn the waiting single observations into one pending chunk. O(rows)."""
+    def seal_rows(self, arrival: float) -> None:
+        """Turn the waiting single observations into one pending chunk; rows without an
+        event time take ``arrival``. O(rows)."""
         if not self.rows:
             return
-        x = np.array(self.rows, dtype=np.float64)
-        w = None
-        if self.rows_weighted:
-            w = np.array([1.0 if v is None else v for v in self.row_weights], dtype=np.float64)
-        timed = self.rows_timed or self.stream.time_based
-        t = np.array(self.row_times, dtype=np.float64) if timed else None
-        self.pending.append((x, w, t, self.row_times[-1]))
-        self.rows, self.row_weights, self.row_times = [], [], []
-        self.rows_weighted = self.rows_timed = False
+        x = np.array(self.rows, dtype=np.float64).reshape(len(self.rows), -1)
+        w = t = None
+        if self.extras:
+            idx, ws, ts = zip(*self.extras, strict=True)
+            if any(v is not None for v in ws):
+                w = np.ones(x.shape[0])
+                w[list(idx)] = [1.0 if v is None else v for v in ws]
+            if any(v is not None for v in ts):
+                t = np.full(x.shape[0], arrival)
+                t[list(idx)] = [arrival if v is None else v for v in ts]
+        self.pending.append((x, w, t, arrival))
+        self.rows, self.extras = [], []
+        self.last_update = arrival
 
 
 class StreamState:
@@ -261,8 +268,17 @@ class Engine:
         d = config.daemon
         self._max_bytes, self._max_rows = d.max_message_bytes, d.max_batch_rows
         self._max_skew = d.max_clock_skew
+        # the hot path unpacks with fixed limits (the general path's are tighter)
+        self._unpack_one = functools.partial(
+            msgpack.unpackb, max_str_len=d.max_message_bytes, max_bin_len=d.max_message_bytes,
+            max_ext_len=0, max_array_len=d.max_batch_rows, max_map_len=d.max_message_bytes // 2)
 
     # ------------------------------------------------------------- ingest
+    @property
+    def routes_seen(self) -> dict:
+        """The topic -> route cache (a live dict; None marks a topic no stream takes)."""
+        return self._routes
+
     def route(self, topic: bytes) -> tuple[StreamState, tuple[str, ...]] | None:
         """The stream and label values for a topic (first matching stream wins)."""
         try:
@@ -335,13 +351,10 @@ class Engine:
             if when is not None and abs(when - now) > self._max_skew and math.isfinite(when):
                 self.reject("clock_skew", topic=topic, now=now)
                 return 0
-            series.rows.append(row)
-            series.row_weights.append(weight)
-            series.row_times.append(now if when is None else when)
-            if weight is not None:
-                series.rows_weighted = True
-            if when is not None:
-                series.rows_timed = True
+            series.rows.append(row[0] if st.dim == 1 else row)
+            if weight is not None or when is not None:
+                series.extras.append((len(series.rows) - 1, weight, when))
+            series.seal_rows(now)
             n = 1
         else:
             n = self._queue_batch(series, dec, now, topic)
@@ -349,6 +362,81 @@ class Engine:
         series.last_update = now
         self._dirty[id(series)] = series
         return n
+
+    def ingest_many(self, frames: list[tuple[bytes, bytes]], now: float,
+                    endpoint: str = "") -> int:
+        """``ingest`` for many messages that arrived together: the daemon's hot path.
+
+        A plain single observation (numbers only, scalar or absent weight and time,
+        a valid or absent source/seq, for a series that exists) is queued here with
+        no function call of its own; anything else goes through ``ingest``, which
+        gives the same result for these and judges everything else. Returns the
+        rows queued. O(total body length).
+        """
+        routes, unpackb = self._routes, self._unpack_one
+        max_bytes, max_skew = self._max_bytes, self._max_skew
+        last_seq, gaps, slow = self._last_seq, self.gaps, self.ingest
+        touched: dict[int, Series] = {}
+        fast = queued = 0
+        for topic, body in frames:
+            route = routes.get(topic)
+            if route is None or len(body) > max_bytes:
+                queued += slow(topic, body, now, endpoint)
+                continue
+            st, labels = route
+            series = st.series.get(labels)
+            try:
+                msg = unpackb(body)
+                values = msg["values"]
+                if type(values) is dict:
+                    row = values[st.fields[0]] if st.dim == 1 else \
+                        tuple(map(values.__getitem__, st.fields))
+                else:
+                    row = values if st.dim == 1 else None
+                weight, when = msg.get("weight"), msg.get("time")
+                source, seq = msg.get("source"), msg.get("seq")
+            except Exception:   # anything unusual: let the general path judge and count it
+                row = series = None
+            if (series is None
+                    or not (type(row) is float or type(row) is int
+                            or (type(row) is tuple and _PLAIN.issuperset(map(type, row))))
+                    or (weight is not None and type(weight) is not float
+                        and type(weight) is not int)
+                    or (when is not None and (type(when) is not float and type(when) is not int
+                                              or abs(when - now) > max_skew))):
+                queued += slow(topic, body, now, endpoint)
+                continue
+            if source is not None or seq is not None:
+                if type(source) is not str or type(seq) is not int:
+                    queued += slow(topic, body, now, endpoint)
+                    continue
+                last = last_seq.get(source)
+                if last is None:    # a producer not seen before: validate it once
+                    if not (0 < len(source) <= MAX_SOURCE and source.isprintable()
+                            and 0 <= seq < 2**64):
+                        queued += slow(topic, body, now, endpoint)
+                        continue
+                    if len(last_seq) < _MAX_PRODUCERS:
+                        last_seq[source] = seq
+                elif 0 <= seq < 2**64:
+                    if seq > last + 1:
+                        gaps[source] += seq - last - 1
+                    last_seq[source] = seq
+                else:
+                    queued += slow(topic, body, now, endpoint)
+                    continue
+            rows = series.rows
+            rows.append(row)
+            if weight is not None or when is not None:
+                series.extras.append((len(rows) - 1, weight, when))
+            touched[id(series)] = series
+            fast += 1
+        for series in touched.values():
+            series.seal_rows(now)
+        self._dirty.update(touched)
+        self.messages[endpoint] += fast
+        self.pending_rows += fast
+        return queued + fast
 
     def _queue_batch(self, series: Series, dec, now: float, topic: bytes) -> int:
         values, weights, times = dec.values, dec.weights, dec.times
@@ -363,7 +451,7 @@ class Engine:
                 weights = None if weights is None else weights[keep]
         if values.shape[0] == 0:
             return 0
-        series.seal_rows()   # keep arrival order: single rows queued so far go first
+        series.seal_rows(now)   # keep arrival order: single rows queued so far go first
         series.pending.append((values, weights, times, now))
         return values.shape[0]
 
@@ -371,7 +459,7 @@ class Engine:
         last = self._last_seq.get(source)
         if last is not None and seq > last + 1:
             self.gaps[source] += seq - last - 1
-        if len(self._last_seq) < 100_000 or source in self._last_seq:
+        if last is not None or len(self._last_seq) < _MAX_PRODUCERS:
             self._last_seq[source] = seq
 
     # -------------------------------------------------------------- flush
@@ -393,7 +481,6 @@ class Engine:
         return self.snapshot
 
     def _fold(self, series: Series, now: float) -> bool:
-        series.seal_rows()
         chunks, series.pending = series.pending, []
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
@@ -456,7 +543,7 @@ class Engine:
             if limit is None:
                 continue
             stale = [k for k, s in st.series.items()
-                     if now - s.last_update > limit and not s.pending and not s.rows]
+                     if now - s.last_update > limit and not s.pending]
             for labels in stale:
                 gone.add(st.series.pop(labels).key)
         if gone:
