@@ -12,6 +12,7 @@ from prometheus_client import CollectorRegistry, Histogram
 from .config import Config
 from .engine import Engine
 from .export import SnapshotCollector
+from .history import History
 from .http import HttpServer, json_bytes
 from .ingest import Source
 from .page import render_page
@@ -33,6 +34,7 @@ class Daemon:
     def __init__(self, config: Config) -> None:
         self.config = config
         self.engine = Engine(config)
+        self.history = History()    # the status page's sparklines
         self.registry = CollectorRegistry(auto_describe=False)
         self.registry.register(SnapshotCollector(lambda: self.engine.snapshot))
         self.flush_rows = Histogram(
@@ -59,10 +61,10 @@ class Daemon:
 
     # ----------------------------------------------------------- read side
     def _page(self) -> bytes:
-        return render_page(self.engine.snapshot, time.time())
+        return render_page(self.engine.snapshot, time.time(), self.history)
 
     def _state(self) -> bytes:
-        return json_bytes(snapshot_json(self.engine.snapshot, time.time()))
+        return json_bytes(snapshot_json(self.engine.snapshot, time.time(), self.history))
 
     # ------------------------------------------------------------ lifecycle
     def start(self) -> None:
@@ -131,6 +133,7 @@ class Daemon:
         rows = self.engine.pending_rows
         t0 = time.perf_counter()
         self.engine.flush(now)
+        self.history.record(self.engine.snapshot, now)
         if rows:
             self.flush_seconds.observe(time.perf_counter() - t0)
             self.flush_rows.observe(rows)
