@@ -49,27 +49,47 @@ def _empty(text: str) -> str:
     return figure(W, H, body, text)
 
 
+def _warm(v: SeriesView) -> bool:
+    m = v.mixture
+    return m is not None and m.warm and len(m.log_means) > 0
+
+
+def _quantiles(v: SeriesView, field: int) -> list[tuple[float, float]]:
+    return [(q, x) for i, q, x in v.quantiles if i == field and math.isfinite(x)]
+
+
+def density_range(v: SeriesView, field: int = 0) -> tuple[float, float]:
+    """The value axis of a density plot: every component to 3.5 sd (the normal to 4 sd)
+    and every quantile marked; in the stream's units."""
+    m = v.mixture
+    if _warm(v):
+        mu = np.asarray([r[field] for r in m.log_means])
+        s = np.asarray([r[field] for r in m.log_stddevs])
+        lo, hi = float(np.min(mu - 3.5 * s)), float(np.max(mu + 3.5 * s))
+        if m.log:
+            lo, hi = math.exp(lo), math.exp(hi)
+    else:
+        lo, hi = v.mean[field] - 4.0 * v.stddev[field], v.mean[field] + 4.0 * v.stddev[field]
+    qs = _quantiles(v, field)
+    if qs:   # keep every marked quantile on the axis
+        lo, hi = min(lo, min(x for _, x in qs)), max(hi, max(x for _, x in qs))
+    return lo, hi
+
+
 def density_figure(v: SeriesView, field: int = 0) -> str:
     """The fitted density of one field with its quantile markers."""
     mean, sd = v.mean[field], v.stddev[field]
     m = v.mixture
-    warm = m is not None and m.warm and len(m.log_means) > 0
+    warm = _warm(v)
     if not warm and not (math.isfinite(mean) and math.isfinite(sd) and sd > 0):
         return _empty("waiting for data")
-    qs = [(q, x) for i, q, x in v.quantiles if i == field and math.isfinite(x)]
+    qs = _quantiles(v, field)
     log = bool(warm and m.log)
     if warm:
         w = np.asarray(m.weights)
         mu = np.asarray([r[field] for r in m.log_means])
         s = np.asarray([r[field] for r in m.log_stddevs])
-        lo, hi = float(np.min(mu - 3.5 * s)), float(np.max(mu + 3.5 * s))
-        if log:
-            lo, hi = math.exp(lo), math.exp(hi)
-    else:
-        lo, hi = mean - 4.0 * sd, mean + 4.0 * sd
-    if qs:   # keep every marked quantile on the axis
-        lo, hi = min(lo, min(x for _, x in qs)), max(hi, max(x for _, x in qs))
-    sx = Scale(lo, hi, LEFT, W - RIGHT, log=log)
+    sx = Scale(*density_range(v, field), LEFT, W - RIGHT, log=log)
     lo, hi = sx.domain
     xs = np.logspace(math.log10(lo), math.log10(hi), POINTS) if log else np.linspace(lo, hi, POINTS)
     if warm:
