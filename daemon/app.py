@@ -34,7 +34,7 @@ class Daemon:
     def __init__(self, config: Config) -> None:
         self.config = config
         self.engine = Engine(config)
-        self.history = History()    # the status page's sparklines
+        self.history = History(every=2.0, length=150)    # sparklines: the last 5 minutes
         self.registry = CollectorRegistry(auto_describe=False)
         self.registry.register(SnapshotCollector(lambda: self.engine.snapshot))
         self.flush_rows = Histogram(

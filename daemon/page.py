@@ -56,8 +56,8 @@ table{border-collapse:collapse;width:100%;font-size:13px;font-variant-numeric:ta
 th{text-align:left;color:var(--muted);font-weight:500;font-size:11px;
 border-bottom:1px solid var(--line)}
 td{padding:3px 6px 3px 0;vertical-align:middle}
-td.big{font-size:15px;font-weight:600;white-space:nowrap}
-.q{white-space:nowrap;margin-right:6px}
+td.big{font-size:14px;font-weight:600;white-space:nowrap}
+.q{display:block;white-space:nowrap;font-size:12px}
 .up{color:var(--amber)}.calm{color:var(--muted)}
 .extra{font-size:12px;color:var(--ink);margin:6px 0}
 .extra b{font-weight:600}
@@ -112,7 +112,7 @@ def _field_rows(v: SeriesView, points, shifts: list[float]) -> str:
         cls = "up" if math.isfinite(s) and abs(s) >= SHIFT_SIGMAS else "calm"
         shift = f"{s:+.2f}σ" if math.isfinite(s) else "–"
         spark = sparkline([t for t, _ in points], [m[i] for _, m in points],
-                          TOTAL, title=f"mean of {f} over the last minutes") if len(
+                          TOTAL, width=100, title=f"mean of {f} over the last minutes") if len(
                               v.fields) <= 4 else ""
         rows.append(
             f'<tr class="field" data-field="{esc(f)}">'
@@ -121,7 +121,7 @@ def _field_rows(v: SeriesView, points, shifts: list[float]) -> str:
             f'</span> ± <span class="sd" data-value="{v.stddev[i]!r}">{num(v.stddev[i])}</span>'
             f'</td><td>{qs or "–"}</td><td>{spark}</td><td class="{cls}">{shift}</td></tr>')
     return ("<table><thead><tr><th>field</th><th>mean ± σ</th><th>quantiles</th>"
-            "<th>mean, last minutes</th><th>drift</th></tr></thead><tbody>"
+            "<th>mean, recent</th><th>drift</th></tr></thead><tbody>"
             + "".join(rows) + "</tbody></table>")
 
 
