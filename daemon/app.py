@@ -12,6 +12,7 @@ from prometheus_client import CollectorRegistry, Histogram, generate_latest
 from .config import Config
 from .engine import Engine
 from .export import HealthCollector
+from .history import History
 from .http import HttpServer, json_bytes
 from .ingest import Source
 from .page import render_page
@@ -34,6 +35,7 @@ class Daemon:
     def __init__(self, config: Config) -> None:
         self.config = config
         self.engine = Engine(config)
+        self.history = History(every=2.0, length=150)    # sparklines: the last 5 minutes
         self.registry = CollectorRegistry(auto_describe=False)
         self.registry.register(HealthCollector(lambda: self.engine.snapshot))
         self.renderer = SeriesRenderer()
@@ -65,10 +67,10 @@ class Daemon:
             + generate_latest(self.registry)
 
     def _page(self) -> bytes:
-        return render_page(self.engine.snapshot, time.time())
+        return render_page(self.engine.snapshot, time.time(), self.history)
 
     def _state(self) -> bytes:
-        return json_bytes(snapshot_json(self.engine.snapshot, time.time()))
+        return json_bytes(snapshot_json(self.engine.snapshot, time.time(), self.history))
 
     # ------------------------------------------------------------ lifecycle
     def start(self) -> None:
@@ -137,6 +139,7 @@ class Daemon:
         rows = self.engine.pending_rows
         t0 = time.perf_counter()
         self.engine.flush(now)
+        self.history.record(self.engine.snapshot, now)
         if rows:
             self.flush_seconds.observe(time.perf_counter() - t0)
             self.flush_rows.observe(rows)

@@ -210,10 +210,12 @@ def view_of(s: Series) -> SeriesView:
         mx = s.mixture
         mixture = MixtureView(
             warm=bool(mx.warm), weights=_floats(mx.weights) if mx.warm else (),
-            means=tuple(_floats(r) for r in mx.means) if mx.warm else (),
-            stddevs=tuple(_floats(r) for r in mx.stddevs) if mx.warm else (),
+            means=tuple(_floats(r) for r in mx.original_means) if mx.warm else (),
+            stddevs=tuple(_floats(r) for r in mx.original_stddevs) if mx.warm else (),
             average_loglik=float(mx.average_loglik), reseeds=int(mx.reseeds),
-            log=bool(cfg.mixture.log))
+            log=bool(cfg.mixture.log),
+            log_means=tuple(_floats(r) for r in mx.means) if mx.warm else (),
+            log_stddevs=tuple(_floats(r) for r in mx.stddevs) if mx.warm else ())
     regression = None
     if s.regression is not None:
         rg = s.regression
@@ -227,7 +229,7 @@ def view_of(s: Series) -> SeriesView:
             ok=bool(rg.ok), terms=terms, coefficients=coef, stderr=se,
             residual_stddev=float(rg.residual_stddev(corr)),
             residual_dof=float(rg.residual_dof(corr)),
-            r_squared=float(rg.r_squared))
+            r_squared=float(rg.r_squared), y=cfg.regression.y)
     return SeriesView(
         stream=st.name, labels=s.key[1], fields=st.fields, version=s.version,
         observations=s.observations, last_update=s.last_update, clock=m.clock,

@@ -22,6 +22,9 @@ class MixtureView:
     average_loglik: float
     reseeds: int
     log: bool
+    # in the fitted space (of log x when ``log``, else equal to means/stddevs): to draw densities
+    log_means: tuple[tuple[float, ...], ...] = ()
+    log_stddevs: tuple[tuple[float, ...], ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -33,6 +36,7 @@ class RegressionView:
     residual_stddev: float
     residual_dof: float
     r_squared: float
+    y: str = ""                               # the response field
 
 
 @dataclass(frozen=True, slots=True)

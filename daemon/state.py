@@ -16,19 +16,24 @@ Schema (version 1)::
                  "outliers": [[threshold, count], ..],
                  "mixture": null | {"warm": bool, "log": bool, "weights": [..],
                                     "means": [[..]], "stddevs": [[..]],
-                                    "average_loglik": x, "reseeds": n},
-                 "regression": null | {"ok": bool, "terms": [..],
+                                    "average_loglik": x, "reseeds": n,
+                                    "log_means": [[..]], "log_stddevs": [[..]]},
+                 "regression": null | {"ok": bool, "y": field, "terms": [..],
                                        "coefficients": [..], "stderr": [..],
                                        "residual_stddev": x, "residual_dof": x,
-                                       "r_squared": x}}]}
+                                       "r_squared": x},
+                 "history": [[unix seconds, [mean per field]], ..]}]}
 
-Values that are not defined yet (NaN) are written as null.
+Values that are not defined yet (NaN) are written as null. ``history`` holds the
+series' mean sampled every few seconds over the last minutes (oldest first; empty
+until the first sample), the same points the status page's sparklines draw.
 """
 
 from __future__ import annotations
 
 import math
 
+from .history import History
 from .snapshot import SeriesView, Snapshot
 
 SCHEMA = 1
@@ -42,7 +47,7 @@ def _nums(xs) -> list:
     return [_num(x) for x in xs]
 
 
-def series_json(v: SeriesView, now: float) -> dict:
+def series_json(v: SeriesView, now: float, history: History | None = None) -> dict:
     f = v.fields
     w, _ = v.weights_at(now)
     out = {
@@ -56,16 +61,20 @@ def series_json(v: SeriesView, now: float) -> dict:
         "quantiles": [[f[i], q, _num(x)] for i, q, x in v.quantiles],
         "outliers": [[thr, n] for thr, n in v.outliers],
         "mixture": None, "regression": None,
+        "history": ([[t, _nums(m)] for t, m in history.of(v.key)] if history is not None
+                    else []),
     }
     if v.mixture is not None:
         m = v.mixture
         out["mixture"] = {"warm": m.warm, "log": m.log, "weights": _nums(m.weights),
                           "means": [_nums(r) for r in m.means],
                           "stddevs": [_nums(r) for r in m.stddevs],
-                          "average_loglik": _num(m.average_loglik), "reseeds": m.reseeds}
+                          "average_loglik": _num(m.average_loglik), "reseeds": m.reseeds,
+                          "log_means": [_nums(r) for r in m.log_means],
+                          "log_stddevs": [_nums(r) for r in m.log_stddevs]}
     if v.regression is not None:
         r = v.regression
-        out["regression"] = {"ok": r.ok, "terms": list(r.terms),
+        out["regression"] = {"ok": r.ok, "y": r.y, "terms": list(r.terms),
                              "coefficients": _nums(r.coefficients), "stderr": _nums(r.stderr),
                              "residual_stddev": _num(r.residual_stddev),
                              "residual_dof": _num(r.residual_dof),
@@ -73,12 +82,12 @@ def series_json(v: SeriesView, now: float) -> dict:
     return out
 
 
-def snapshot_json(snap: Snapshot, now: float) -> dict:
+def snapshot_json(snap: Snapshot, now: float, history: History | None = None) -> dict:
     h = snap.health
     return {
         "schema": SCHEMA, "taken_at": snap.taken_at, "now": now,
         "health": {"messages": dict(h.messages), "rejected": dict(h.rejected),
                    "sequence_gaps": dict(h.sequence_gaps), "flushes": h.flushes},
         "streams": {name: {"series": n} for name, n in snap.series_per_stream},
-        "series": [series_json(v, now) for v in snap.series.values()],
+        "series": [series_json(v, now, history) for v in snap.series.values()],
     }
