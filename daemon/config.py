@@ -38,7 +38,7 @@ from .topics import LABEL_NAME, TopicError, TopicTemplate
 #: (plus every name starting with ``__``, which Prometheus reserves).
 RESERVED_LABELS: frozenset[str] = frozenset((
     "stream", "field", "field_b", "q", "quantile", "component", "term", "threshold", "reason",
-    "source", "le", "instance", "job",
+    "source", "le", "instance", "job", "correction", "shard", "state",
 ))
 _UNITS = {"ms": 1e-3, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
 _DURATION = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(ms|s|m|h|d)\s*")

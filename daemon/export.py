@@ -25,6 +25,8 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_weight": ("gauge", "Decayed sum of weights W (the pooling weight)."),
     "sigmad_weight_squared": ("gauge", "Decayed sum of squared weights W2 (for exact pooling)."),
     "sigmad_effective_samples": ("gauge", "Kish effective sample size W^2/W2."),
+    "sigmad_scatter": ("gauge", "Centred weighted sum of squares of a field, sum w (x - mean)^2 "
+                                "(for exact pooling under any correction)."),
     "sigmad_covariance": ("gauge", "Covariance of two fields under the stream's correction."),
     "sigmad_correlation": ("gauge", "Pearson correlation of two fields."),
     "sigmad_quantile": ("gauge", "Estimated q-quantile of a field, in the stream's units."),
@@ -84,6 +86,8 @@ def families(snap: Snapshot, now: float) -> Iterator[Metric]:
             _g(f_mean, lab, v.mean[i])
             _g(f_sd, lab, v.stddev[i])
             _g(f_var, lab, v.variance[i])
+        for lab, c in zip(per_field, v.scatter_at(now), strict=False):
+            _g(fams["sigmad_scatter"], lab, c)
         for i, j, c in v.covariance:
             _g(fams["sigmad_covariance"], dict(base, field=v.fields[i], field_b=v.fields[j]), c)
         for i, j, r in v.correlation:
