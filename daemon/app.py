@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import math
 import threading
 import time
 
@@ -14,7 +15,9 @@ from .engine import Engine
 from .export import SnapshotCollector
 from .http import HttpServer, json_bytes
 from .ingest import Source
+from .merge import Merger, ShardCollector
 from .page import render_page
+from .publish import Publisher
 from .state import snapshot_json
 
 log = logging.getLogger("sigmad")
@@ -34,7 +37,7 @@ class Daemon:
         self.config = config
         self.engine = Engine(config)
         self.registry = CollectorRegistry(auto_describe=False)
-        self.registry.register(SnapshotCollector(lambda: self.engine.snapshot))
+        self.registry.register(SnapshotCollector(lambda: self.snapshot))
         self.flush_rows = Histogram(
             "sigmad_flush_rows", "Rows folded into estimators per flush.",
             buckets=(1, 10, 100, 1_000, 10_000, 100_000), registry=self.registry)
@@ -46,9 +49,16 @@ class Daemon:
                                d.tls_cert, d.tls_key, d.tls_client_ca)
         self._ctx = zmq.Context()
         self.sources: list[Source] = []
+        self.publisher: Publisher | None = None
+        self.merger: Merger | None = None
         try:
             for s in config.sources:
                 self.sources.append(Source(self._ctx, s))
+            if config.publish is not None:
+                self.publisher = Publisher(self._ctx, config.publish)
+            if config.merge is not None:
+                self.merger = Merger(self._ctx, config)
+                self.registry.register(ShardCollector(self.merger, time.time))
         except zmq.ZMQError:
             self._close_sockets()
             self.http.stop()
@@ -58,11 +68,16 @@ class Daemon:
         self.failure: BaseException | None = None
 
     # ----------------------------------------------------------- read side
+    @property
+    def snapshot(self):
+        """What readers see: the pooled snapshot on a merger, else the engine's."""
+        return self.merger.snapshot if self.merger is not None else self.engine.snapshot
+
     def _page(self) -> bytes:
-        return render_page(self.engine.snapshot, time.time())
+        return render_page(self.snapshot, time.time())
 
     def _state(self) -> bytes:
-        return json_bytes(snapshot_json(self.engine.snapshot, time.time()))
+        return json_bytes(snapshot_json(self.snapshot, time.time()))
 
     # ------------------------------------------------------------ lifecycle
     def start(self) -> None:
@@ -86,6 +101,9 @@ class Daemon:
     def _close_sockets(self) -> None:
         for s in self.sources:
             s.close()
+        for extra in (self.publisher, self.merger):
+            if extra is not None:
+                extra.close()
         self._ctx.term()
 
     # ---------------------------------------------------------- engine loop
@@ -104,23 +122,39 @@ class Daemon:
         for s in self.sources:
             poller.register(s.socket, zmq.POLLIN)
             by_socket[s.socket] = s
+        merger, publisher = self.merger, self.publisher
+        if merger is not None:
+            poller.register(merger.socket, zmq.POLLIN)
         flush_every = cfg.flush_every
         now = time.time()
         next_flush = now + flush_every
         next_housekeeping = now + HOUSEKEEPING_EVERY
+        next_publish = now + publisher.cfg.every if publisher is not None else math.inf
         engine.flush(now)
+        polling = bool(by_socket) or merger is not None
         while not self._stop.is_set():
             wait_ms = max(0.0, min(next_flush - time.time(), 0.1)) * 1000.0
-            events = poller.poll(wait_ms) if by_socket else self._stop.wait(wait_ms / 1000)
+            events = poller.poll(wait_ms) if polling else self._stop.wait(wait_ms / 1000)
             now = time.time()
-            if events and by_socket:
+            if events and polling:
                 for sock, _ in events:
-                    by_socket[sock].drain(engine, now)
+                    if merger is not None and sock is merger.socket:
+                        merger.drain(now)
+                    else:
+                        by_socket[sock].drain(engine, now)
             if now >= next_flush or engine.pending_rows >= cfg.max_batch_rows:
                 self._flush(now)
+                if merger is not None:
+                    merger.rebuild(now)
                 next_flush = now + flush_every
+            if now >= next_publish:
+                self._flush(now)   # a snapshot holds folded state only
+                publisher.publish(engine.export_state(), now)
+                next_publish = now + publisher.cfg.every
             if now >= next_housekeeping:
                 engine.expire_idle(now)
+                if merger is not None:
+                    merger.expire(now)
                 next_housekeeping = now + HOUSEKEEPING_EVERY
         # drain what is already queued so a clean stop loses nothing that arrived
         for s in self.sources:

@@ -604,6 +604,9 @@ def _build(data: dict) -> Config:
                           "daemon has something to read")
     if sources and not streams:
         raise ConfigError("stream", _MISSING, "add a [[stream]] so messages have somewhere to go")
+    if merge is not None and not streams:
+        raise ConfigError("stream", _MISSING, "a merger reads shard states through its "
+                          "[[stream]] tables: copy the shards' [[stream]] tables here")
     seen: dict[str, int] = {}
     for i, s in enumerate(streams):
         if s.name in seen:

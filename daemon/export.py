@@ -49,7 +49,14 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_rejected": ("counter", "Rejected observations by reason."),
     "sigmad_messages": ("counter", "Messages received per source endpoint."),
     "sigmad_sequence_gaps": ("counter", "Messages missing from a producer's sequence numbers."),
+    "sigmad_merge_shards": ("gauge", "Shards whose snapshots a merger pools (live) or has "
+                                     "left out after they went silent (expired)."),
+    "sigmad_shard_age_seconds": ("gauge", "Seconds since a live shard's latest snapshot arrived."),
 }
+
+
+#: Exported by the merge tier's own collector (daemon/merge.py), not from a snapshot.
+MERGE_METRICS = ("sigmad_merge_shards", "sigmad_shard_age_seconds")
 
 
 def _family(name: str) -> Metric:
@@ -70,7 +77,7 @@ def _series_labels(v: SeriesView) -> dict[str, str]:
 
 def families(snap: Snapshot, now: float) -> Iterator[Metric]:
     """Every metric family of a snapshot, as of wall-clock time ``now``. O(samples)."""
-    fams = {name: _family(name) for name in METRICS}
+    fams = {name: _family(name) for name in METRICS if name not in MERGE_METRICS}
     f_mean, f_sd, f_var = fams["sigmad_mean"], fams["sigmad_stddev"], fams["sigmad_variance"]
     f_q = fams["sigmad_quantile"]
     for v in snap.series.values():

@@ -18,13 +18,16 @@ RULES = ROOT / "configs" / "prometheus" / "sigmad-pooling.rules.yml"
 
 
 def start_shards(tmp: Path, config: str, n: int, **extra: object) -> list[Sigmad]:
-    """n daemons from ``config % {"pull": port, **extra}``, each with its own PULL port."""
+    """n daemons from ``config % {"pull": port, "pub": port, "index": i, **extra}``, each
+    with its own PULL port (``.pull``) and a port for ``[publish]`` (``.pub``)."""
     shards: list[Sigmad] = []
     try:
         for i in range(n):
-            port = free_port()
-            d = Sigmad(tmp, config % {"pull": port, "index": i, **extra}, name=f"shard{i}.toml")
+            port, pub = free_port(), free_port()
+            d = Sigmad(tmp, config % {"pull": port, "pub": pub, "index": i, **extra},
+                       name=f"shard{i}.toml")
             d.pull = f"tcp://127.0.0.1:{port}"
+            d.pub = f"tcp://127.0.0.1:{pub}"
             shards.append(d)
     except BaseException:
         stop_all(shards)
