@@ -145,11 +145,12 @@ class Daemon:
             if now >= next_flush or engine.pending_rows >= cfg.max_batch_rows:
                 self._flush(now)
                 if merger is not None:
-                    merger.rebuild(now)
+                    merger.rebuild(now, engine.all_series(), engine.snapshot.health)
                 next_flush = now + flush_every
             if now >= next_publish:
                 self._flush(now)   # a snapshot holds folded state only
-                publisher.publish(engine.export_state(), now)
+                publisher.publish(engine.export_state() if merger is None
+                                  else merger.pooled_states(), now)
                 next_publish = now + publisher.cfg.every
             if now >= next_housekeeping:
                 engine.expire_idle(now)

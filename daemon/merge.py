@@ -14,6 +14,10 @@ by merging the shards' estimators:
   pooled mean and covariance; quantiles come from that reduced mixture.
 - Counters (observations, outliers) are sums of the shards' own counts.
 
+A merger may have ``[[source]]``s of its own: its engine's series are pooled
+as one more shard. With ``[publish]`` it publishes the pooled states, so a
+merger can feed a merger above it.
+
 The merger interprets shard states through its own ``[[stream]]`` tables, which
 must match the shards' (fields, estimators, half-life); a series state that does
 not is counted in ``sigmad_rejected_total{reason="state_incompatible"}``.
@@ -23,7 +27,7 @@ from __future__ import annotations
 
 import logging
 from collections import Counter
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 
 import msgpack
@@ -33,7 +37,7 @@ from prometheus_client.metrics_core import Metric
 from estimators import IncompatibleError
 
 from .config import Config
-from .engine import Series, StreamState, restore_series, view_of
+from .engine import Series, StreamState, restore_series, series_state, view_of
 from .export import METRICS
 from .publish import MAX_STATE_BYTES, STATE_FORMAT, STATE_TOPIC
 from .snapshot import Health, SeriesView, Snapshot
@@ -163,7 +167,7 @@ class Merger:
         self.rejected: Counter[str] = Counter()
         self.received = 0
         self.rebuilds = 0
-        self._cache: dict[Key, tuple[tuple, SeriesView]] = {}
+        self._cache: dict[Key, tuple[tuple, Series, SeriesView]] = {}
         self._dirty = True
         self.snapshot = Snapshot(taken_at=0.0)
         self.status = ShardStatus()
@@ -249,15 +253,21 @@ class Merger:
         return len(gone)
 
     # ------------------------------------------------------------- pooling
-    def rebuild(self, now: float) -> Snapshot:
-        """The pooled snapshot (rebuilt only when a shard's state changed). A series
-        whose shards' versions are unchanged keeps its view. O(changed series)."""
+    def rebuild(self, now: float, local: Iterable[Series] = (),
+                local_health: Health | None = None) -> Snapshot:
+        """The pooled snapshot of the shards and of ``local`` series (a merger's own
+        engine, when it has sources too, whose counters ``local_health`` are shown
+        alongside the merger's). A series whose parts' versions are unchanged keeps
+        its pooled state and view. O(series + changed state)."""
         self.status = ShardStatus(
             live=tuple(sorted((sid, sh.received_at) for sid, sh in self.shards.items())),
             expired=tuple(self._expired))
-        if not self._dirty:
+        local = list(local)
+        if not self._dirty and not local:
             return self.snapshot
         parts: dict[Key, list[tuple[str, Series]]] = {}
+        for s in local:
+            parts.setdefault(_key(s.stream, s.labels), []).append(("", s))
         for sid, sh in sorted(self.shards.items()):
             for key, s in sh.series.items():
                 parts.setdefault(key, []).append((sid, s))
@@ -269,7 +279,8 @@ class Merger:
                 cache[key] = hit
             else:
                 try:
-                    cache[key] = (signature, view_of(pool([s for _, s in group])))
+                    pooled = pool([s for _, s in group])
+                    cache[key] = (signature, pooled, view_of(pooled))
                 except IncompatibleError as exc:   # e.g. shards disagree on a mixture's K
                     self.rejected["state_incompatible"] += 1
                     log.warning("cannot pool %s: %s", key, exc)
@@ -277,13 +288,21 @@ class Merger:
         self._dirty = False
         self.rebuilds += 1
         counts = Counter(key[0] for key in cache)
+        own = local_health or Health()
+        rejected = Counter(dict(own.rejected)) + self.rejected
         self.snapshot = Snapshot(
-            taken_at=now, series={k: v for k, (_, v) in cache.items()},
+            taken_at=now, series={k: v for k, (_, _, v) in cache.items()},
             series_per_stream=tuple((name, counts[name]) for name in self.streams),
-            health=Health(messages=(("merge " + " ".join(self.cfg.connect), self.received),),
-                          rejected=tuple(sorted(self.rejected.items())),
-                          flushes=self.rebuilds))
+            health=Health(messages=(*own.messages,
+                                    ("merge " + " ".join(self.cfg.connect), self.received)),
+                          rejected=tuple(sorted(rejected.items())),
+                          sequence_gaps=own.sequence_gaps, flushes=self.rebuilds))
         return self.snapshot
+
+    def pooled_states(self) -> list[dict]:
+        """The pooled series as ``series_state`` dicts, so a merger with ``[publish]`` can
+        feed a merger above it. As of the last ``rebuild``. O(pooled state)."""
+        return [series_state(s) for _, s, _ in self._cache.values()]
 
     def close(self) -> None:
         self.socket.close(0)

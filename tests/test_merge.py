@@ -186,6 +186,39 @@ def test_a_merger_counts_refused_series_and_keeps_the_good_ones():
         ctx.term()
 
 
+def test_mergers_stack_and_pool_their_own_sources_exactly():
+    msgs = _messages(base=1000.0)
+    now = 2000.0
+    whole = _fed(msgs, now)
+    shards = [_fed(msgs[i::3], now) for i in range(3)]
+    cfg = parse_config(HEAD.replace("{HTTP}", "127.0.0.1:0")
+                       + '[merge]\nconnect = "tcp://127.0.0.1:1"\n' + STREAMS)
+    ctx = zmq.Context()
+    lower, upper = Merger(ctx, cfg), Merger(ctx, cfg)
+    try:
+        for i in (0, 1):
+            lower.accept(_state_body(shard=f"s{i}", series=shards[i].export_state()), now)
+        lower.rebuild(now)
+        # the upper merger pools the lower one's published states with its own engine
+        upper.accept(_state_body(shard="lower", series=lower.pooled_states()), now)
+        snap = upper.rebuild(now, shards[2].all_series(), shards[2].snapshot.health)
+        assert snap.series.keys() == whole.snapshot.series.keys()
+        for key, ref in whole.snapshot.series.items():
+            got = snap.series[key]
+            assert got.observations == ref.observations
+            assert got.weight_sum == pytest.approx(ref.weight_sum, rel=1e-12)
+            assert got.mean == pytest.approx(ref.mean, rel=1e-12)
+            assert got.variance == pytest.approx(ref.variance, rel=1e-10)
+            if ref.regression is not None:
+                assert got.regression.coefficients == pytest.approx(
+                    ref.regression.coefficients, rel=1e-10)
+        assert dict(snap.health.messages)["test"] == len(msgs[2::3])   # the engine's own
+    finally:
+        lower.close()
+        upper.close()
+        ctx.term()
+
+
 def test_the_publisher_sends_what_the_merger_decodes():
     cfg = parse_config(SHARD.replace("{HTTP}", "127.0.0.1:0") % {"pull": 7999, "pub": 7998})
     ctx = zmq.Context()
