@@ -148,10 +148,12 @@ class Merger:
     """
 
     def __init__(self, ctx: zmq.Context, config: Config) -> None:
-        assert config.merge is not None
+        if config.merge is None:
+            raise ValueError("a Merger needs a configuration with a [merge] table")
         self.cfg = config.merge
         self.streams = {s.name: StreamState(s) for s in config.streams}
         self.socket = ctx.socket(zmq.SUB)
+        # ZeroMQ drops a peer that sends a larger frame before anything is allocated for it
         self.socket.setsockopt(zmq.MAXMSGSIZE, MAX_STATE_BYTES + 64)
         self.socket.setsockopt(zmq.RCVHWM, 64)
         self.socket.setsockopt(zmq.LINGER, 0)
