@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import math
 import threading
 import time
 
@@ -15,7 +16,9 @@ from .export import HealthCollector
 from .history import History
 from .http import HttpServer, json_bytes
 from .ingest import Source
+from .merge import Merger, ShardCollector
 from .page import render_page
+from .publish import Publisher
 from .render import SeriesRenderer
 from .state import snapshot_json
 
@@ -37,7 +40,7 @@ class Daemon:
         self.engine = Engine(config)
         self.history = History(every=2.0, length=150)    # sparklines: the last 5 minutes
         self.registry = CollectorRegistry(auto_describe=False)
-        self.registry.register(HealthCollector(lambda: self.engine.snapshot))
+        self.registry.register(HealthCollector(lambda: self.snapshot))
         self.renderer = SeriesRenderer()
         self.flush_rows = Histogram(
             "sigmad_flush_rows", "Rows folded into estimators per flush.",
@@ -50,9 +53,16 @@ class Daemon:
                                d.tls_cert, d.tls_key, d.tls_client_ca)
         self._ctx = zmq.Context()
         self.sources: list[Source] = []
+        self.publisher: Publisher | None = None
+        self.merger: Merger | None = None
         try:
             for s in config.sources:
                 self.sources.append(Source(self._ctx, s))
+            if config.publish is not None:
+                self.publisher = Publisher(self._ctx, config.publish)
+            if config.merge is not None:
+                self.merger = Merger(self._ctx, config)
+                self.registry.register(ShardCollector(self.merger, time.time))
         except zmq.ZMQError:
             self._close_sockets()
             self.http.stop()
@@ -62,15 +72,19 @@ class Daemon:
         self.failure: BaseException | None = None
 
     # ----------------------------------------------------------- read side
+    @property
+    def snapshot(self):
+        """What readers see: the pooled snapshot on a merger, else the engine's."""
+        return self.merger.snapshot if self.merger is not None else self.engine.snapshot
+
     def _metrics(self) -> bytes:
-        return self.renderer.render(self.engine.snapshot, time.time()) \
-            + generate_latest(self.registry)
+        return self.renderer.render(self.snapshot, time.time()) + generate_latest(self.registry)
 
     def _page(self) -> bytes:
-        return render_page(self.engine.snapshot, time.time(), self.history)
+        return render_page(self.snapshot, time.time(), self.history)
 
     def _state(self) -> bytes:
-        return json_bytes(snapshot_json(self.engine.snapshot, time.time(), self.history))
+        return json_bytes(snapshot_json(self.snapshot, time.time(), self.history))
 
     # ------------------------------------------------------------ lifecycle
     def start(self) -> None:
@@ -94,6 +108,9 @@ class Daemon:
     def _close_sockets(self) -> None:
         for s in self.sources:
             s.close()
+        for extra in (self.publisher, self.merger):
+            if extra is not None:
+                extra.close()
         self._ctx.term()
 
     # ---------------------------------------------------------- engine loop
@@ -112,23 +129,40 @@ class Daemon:
         for s in self.sources:
             poller.register(s.socket, zmq.POLLIN)
             by_socket[s.socket] = s
+        merger, publisher = self.merger, self.publisher
+        if merger is not None:
+            poller.register(merger.socket, zmq.POLLIN)
         flush_every = cfg.flush_every
         now = time.time()
         next_flush = now + flush_every
         next_housekeeping = now + HOUSEKEEPING_EVERY
+        next_publish = now + publisher.cfg.every if publisher is not None else math.inf
         engine.flush(now)
+        polling = bool(by_socket) or merger is not None
         while not self._stop.is_set():
             wait_ms = max(0.0, min(next_flush - time.time(), 0.1)) * 1000.0
-            events = poller.poll(wait_ms) if by_socket else self._stop.wait(wait_ms / 1000)
+            events = poller.poll(wait_ms) if polling else self._stop.wait(wait_ms / 1000)
             now = time.time()
-            if events and by_socket:
+            if events and polling:
                 for sock, _ in events:
-                    by_socket[sock].drain(engine, now)
+                    if merger is not None and sock is merger.socket:
+                        merger.drain(now)
+                    else:
+                        by_socket[sock].drain(engine, now)
             if now >= next_flush or engine.pending_rows >= cfg.max_batch_rows:
                 self._flush(now)
+                if merger is not None:
+                    merger.rebuild(now, engine.all_series(), engine.snapshot.health)
                 next_flush = now + flush_every
+            if now >= next_publish:
+                self._flush(now)   # a snapshot holds folded state only
+                publisher.publish(engine.export_state() if merger is None
+                                  else merger.pooled_states(), now)
+                next_publish = now + publisher.cfg.every
             if now >= next_housekeeping:
                 engine.expire_idle(now)
+                if merger is not None:
+                    merger.expire(now)
                 next_housekeeping = now + HOUSEKEEPING_EVERY
         # drain what is already queued so a clean stop loses nothing that arrived
         for s in self.sources:
@@ -139,7 +173,7 @@ class Daemon:
         rows = self.engine.pending_rows
         t0 = time.perf_counter()
         self.engine.flush(now)
-        self.history.record(self.engine.snapshot, now)
+        self.history.record(self.snapshot, now)
         if rows:
             self.flush_seconds.observe(time.perf_counter() - t0)
             self.flush_rows.observe(rows)

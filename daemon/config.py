@@ -38,7 +38,7 @@ from .topics import LABEL_NAME, TopicError, TopicTemplate
 #: (plus every name starting with ``__``, which Prometheus reserves).
 RESERVED_LABELS: frozenset[str] = frozenset((
     "stream", "field", "field_b", "q", "quantile", "component", "term", "threshold", "reason",
-    "source", "le", "instance", "job",
+    "source", "le", "instance", "job", "correction", "shard", "state",
 ))
 _UNITS = {"ms": 1e-3, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
 _DURATION = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(ms|s|m|h|d)\s*")
@@ -604,6 +604,9 @@ def _build(data: dict) -> Config:
                           "daemon has something to read")
     if sources and not streams:
         raise ConfigError("stream", _MISSING, "add a [[stream]] so messages have somewhere to go")
+    if merge is not None and not streams:
+        raise ConfigError("stream", _MISSING, "a merger reads shard states through its "
+                          "[[stream]] tables: copy the shards' [[stream]] tables here")
     seen: dict[str, int] = {}
     for i, s in enumerate(streams):
         if s.name in seen:

@@ -240,7 +240,8 @@ def view_of(s: Series) -> SeriesView:
         correlation=tuple((i, j, float(rho[i, j])) for i, j in pairs),
         quantiles=tuple(quantiles),
         outliers=tuple(zip(cfg.outlier_sigmas, s.outliers, strict=True)),
-        mixture=mixture, regression=regression)
+        mixture=mixture, regression=regression,
+        scatter=_floats(m.variance("none") * m.weight_sum))
 
 
 class Engine:

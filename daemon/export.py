@@ -29,6 +29,8 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_weight": ("gauge", "Decayed sum of weights W (the pooling weight)."),
     "sigmad_weight_squared": ("gauge", "Decayed sum of squared weights W2 (for exact pooling)."),
     "sigmad_effective_samples": ("gauge", "Kish effective sample size W^2/W2."),
+    "sigmad_scatter": ("gauge", "Centred weighted sum of squares of a field, sum w (x - mean)^2 "
+                                "(for exact pooling under any correction)."),
     "sigmad_covariance": ("gauge", "Covariance of two fields under the stream's correction."),
     "sigmad_correlation": ("gauge", "Pearson correlation of two fields."),
     "sigmad_quantile": ("gauge", "Estimated q-quantile of a field, in the stream's units."),
@@ -51,13 +53,16 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_rejected": ("counter", "Rejected observations by reason."),
     "sigmad_messages": ("counter", "Messages received per source endpoint."),
     "sigmad_sequence_gaps": ("counter", "Messages missing from a producer's sequence numbers."),
+    "sigmad_merge_shards": ("gauge", "Shards whose snapshots a merger pools (live) or has "
+                                     "left out after they went silent (expired)."),
+    "sigmad_shard_age_seconds": ("gauge", "Seconds since a live shard's latest snapshot arrived."),
 }
 
 
-# Per-series families whose values change with the clock even without new data.
-DYNAMIC = ("sigmad_weight", "sigmad_weight_squared", "sigmad_update_age_seconds")
 HEALTH = ("sigmad_series", "sigmad_rejected", "sigmad_messages", "sigmad_sequence_gaps")
-SERIES = tuple(name for name in METRICS if name not in HEALTH)
+#: Exported by the merge tier's own collector (daemon/merge.py), not from a snapshot.
+MERGE_METRICS = ("sigmad_merge_shards", "sigmad_shard_age_seconds")
+SERIES = tuple(name for name in METRICS if name not in HEALTH and name not in MERGE_METRICS)
 
 Sample = tuple[str, dict[str, str], float]   # (family, labels, value)
 
@@ -113,6 +118,8 @@ def dynamic_samples(v: SeriesView, now: float) -> Iterator[Sample]:
     yield "sigmad_weight", base, w
     yield "sigmad_weight_squared", base, w2
     yield "sigmad_update_age_seconds", base, max(0.0, now - v.last_update)
+    for f, c in zip(v.fields, v.scatter_at(now), strict=False):
+        yield "sigmad_scatter", dict(base, field=f), c
 
 
 def health_samples(snap: Snapshot) -> Iterator[Sample]:

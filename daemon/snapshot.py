@@ -61,6 +61,7 @@ class SeriesView:
     outliers: tuple[tuple[float, int], ...]          # (threshold, count)
     mixture: MixtureView | None = None
     regression: RegressionView | None = None
+    scatter: tuple[float, ...] = ()           # centred Σw(x-μ)² per field, as of ``clock``
 
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
@@ -71,6 +72,11 @@ class SeriesView:
         the effective sample size do not change under pure decay."""
         _, f = catch_up(self.half_life, self.clock, t)
         return self.weight_sum * f, self.weight_sq_sum * f * f
+
+    def scatter_at(self, t: float) -> tuple[float, ...]:
+        """The per-field centred scatter aged to event time t (it decays like W)."""
+        _, f = catch_up(self.half_life, self.clock, t)
+        return tuple(c * f for c in self.scatter)
 
 
 @dataclass(frozen=True, slots=True)

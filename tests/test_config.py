@@ -191,8 +191,15 @@ def test_regression_x_as_list_and_mixture_defaults():
 
 
 def test_a_merger_needs_no_source():
-    cfg = parse_config('[merge]\nconnect = "tcp://127.0.0.1:7411"\n')
+    cfg = parse_config('[merge]\nconnect = "tcp://127.0.0.1:7411"\n'
+                       '[[stream]]\nname = "a"\ntopic = "a"\nfields = ["v"]\n')
     assert cfg.sources == () and cfg.merge.connect == ("tcp://127.0.0.1:7411",)
+
+
+def test_a_merger_needs_the_shards_streams():
+    with pytest.raises(ConfigError) as e:
+        parse_config('[merge]\nconnect = "tcp://127.0.0.1:7411"\n')
+    assert e.value.key == "stream" and "shards' [[stream]]" in str(e.value)
 
 
 def test_dataclasses_can_be_built_directly():
