@@ -10,6 +10,7 @@ import time
 import zmq
 from prometheus_client import CollectorRegistry, Histogram, generate_latest
 
+from .allocator import keep_freed_blocks
 from .config import Config
 from .engine import Engine
 from .export import HealthCollector
@@ -36,6 +37,7 @@ class Daemon:
     """
 
     def __init__(self, config: Config) -> None:
+        keep_freed_blocks()
         self.config = config
         self.engine = Engine(config)
         self.history = History(every=2.0, length=150)    # sparklines: the last 5 minutes
@@ -149,6 +151,8 @@ class Daemon:
                         merger.drain(now)
                     else:
                         by_socket[sock].drain(engine, now)
+                        if engine.pending_rows >= cfg.max_batch_rows:
+                            self._flush(now)   # keep each flush's arrays bounded
             if now >= next_flush or engine.pending_rows >= cfg.max_batch_rows:
                 self._flush(now)
                 if merger is not None:

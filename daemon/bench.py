@@ -322,8 +322,8 @@ def run(quick: bool = False, out=sys.stdout) -> list[Row]:
     scale = 0.1 if quick else 1.0
     steps: list[tuple[str, Callable[[], Row | list[Row]]]] = [
         ("single observations", lambda: bench_single(int(200_000 * scale))),
-        ("binary batches", lambda: bench_batches(int(400 * scale) or 1)),
-        ("mixture", lambda: bench_mixture(int(200 * scale) or 1)),
+        ("binary batches", lambda: bench_batches(int(4000 * scale) or 1)),
+        ("mixture", lambda: bench_mixture(int(2000 * scale) or 1)),
         ("scrape", lambda: bench_scrape(int(10_000 * scale))),
         ("memory", lambda: bench_memory(int(100_000 * scale))),
         ("checkpoint", lambda: bench_checkpoint(int(100_000 * scale))),

@@ -33,6 +33,11 @@ def _floats(a) -> tuple[float, ...]:
     return tuple(float(v) for v in np.asarray(a, dtype=np.float64).ravel())
 
 
+def _where(series: Series) -> str:
+    """How a series is named in the rejection log."""
+    return f"{series.stream.name}{dict(series.key[1]) or ''}"
+
+
 def _concat(chunks: list, time_based: bool):
     """Join queued chunks into one batch; rows without an event time get their arrival
     time when any row has one or the stream forgets by time."""
@@ -109,6 +114,7 @@ class StreamState:
         reg = cfg.regression
         self.reg_x = None if reg is None else [self.fields.index(f) for f in reg.x]
         self.reg_y = None if reg is None else self.fields.index(reg.y)
+        self.reg_xy = None if reg is None else self.reg_x + [self.reg_y]   # [X | y] columns
         self.log_mixture = cfg.mixture is not None and cfg.mixture.log
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
@@ -488,31 +494,29 @@ class Engine:
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
         batch, dropped = clean_batch(x, st.dim, w, t)
-        where = f"{st.name}{dict(series.key[1]) or ''}"
         for reason, count in dropped.items():
-            self.reject(reason, count, topic=where, now=now)
+            self.reject(reason, count, topic=_where(series), now=now)
         x, w, t = batch
-        if st.log_mixture and x.shape[0]:
+        if st.log_mixture and x.shape[0] and not (x > 0.0).all():
             positive = (x > 0.0).all(axis=1)
-            if not positive.all():
-                self.reject("not_positive", int((~positive).sum()), topic=where, now=now)
-                x = x[positive]
-                w = None if w is None else w[positive]
-                t = None if t is None else t[positive]
+            self.reject("not_positive", int((~positive).sum()), topic=_where(series), now=now)
+            x = x[positive]
+            w = None if w is None else w[positive]
+            t = None if t is None else t[positive]
         n = x.shape[0]
         if n == 0:
             return False
         m = series.moments
         if st.thresholds.size and m.count >= st.cfg.outlier_warmup:
             dist = self._distance(series, x)
-            exceed = (dist[:, None] > st.thresholds).sum(axis=0)
-            for i, c in enumerate(exceed):
-                series.outliers[i] += int(c)
+            for i, threshold in enumerate(st.cfg.outlier_sigmas):
+                series.outliers[i] += int(np.count_nonzero(dist > threshold))
+        # rows are checked: the estimators' unchecked fold paths
         m._fold(x, w, t)
         if series.regression is not None:
-            series.regression.update(x[:, st.reg_x], x[:, st.reg_y], weights=w, times=t)
+            series.regression._fold(x[:, st.reg_xy], w, t)
         if series.mixture is not None:
-            series.mixture.update(x, weights=w, times=t)
+            series.mixture._fold(x, w, t)
         series.observations += n
         series.version += 1
         series.last_update = now

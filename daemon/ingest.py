@@ -6,9 +6,10 @@ import zmq
 
 from .config import SourceConfig
 
-# A socket is drained until empty or this many messages, so that one busy
-# source cannot starve the others or delay a flush for long.
+# A socket is drained until empty, this many messages or this many body bytes, so
+# that one busy source cannot starve the others or grow a flush without bound.
 DRAIN_LIMIT = 5_000
+DRAIN_BYTES = 1 << 20
 
 
 def _looks_like_body(frame: bytes) -> bool:
@@ -65,8 +66,8 @@ class Source:
         noblock = zmq.NOBLOCK
         frames = []
         append = frames.append
-        n = 0
-        while n < limit:
+        n = size = 0
+        while n < limit and size < DRAIN_BYTES:
             try:
                 topic = recv(noblock)
             except zmq.Again:
@@ -77,6 +78,7 @@ class Source:
             except zmq.Again:   # messages arrive whole: this was a one-frame message
                 self._stray(engine, topic, now)
                 break
+            size += len(body)
             if routes.get(topic) is not None and _looks_like_body(body):
                 append((topic, body))
                 continue

@@ -210,14 +210,27 @@ class Mixture:
             return
         if self.warm:
             self._step(y, v, vsum)
-        else:
-            self._buf = np.concatenate((self._buf, y))
-            self._buf_w = np.concatenate((self._buf_w, v))
-        self.W += vsum
-        self.W2 += float(v @ v)
+            self.W += vsum
+            self.W2 += float(v @ v)
+            self._recent = np.concatenate((self._recent, y[-self.recent:]))[-self.recent:]
+            return
+        # the warm-up fits at most ``warmup`` rows; the rest of a large first batch is
+        # folded stepwise once the fit exists (initialising on all of it costs O(n) x starts)
+        room = max(self.warmup - self._buf.shape[0], 0)
+        hv = v[:room]
+        self._buf = np.concatenate((self._buf, y[:room]))
+        self._buf_w = np.concatenate((self._buf_w, hv))
+        self.W += float(hv.sum())
+        self.W2 += float(hv @ hv)
         self._recent = np.concatenate((self._recent, y[-self.recent:]))[-self.recent:]
-        if not self.warm and self._buf.shape[0] >= self.warmup:
+        if self._buf.shape[0] >= self.warmup:
             self._initialise()
+            rest, rv = y[room:], v[room:]
+            rsum = float(rv.sum())
+            if rsum > 0.0:
+                self._step(rest, rv, rsum)
+                self.W += rsum
+                self.W2 += float(rv @ rv)
 
     def _step(self, y: np.ndarray, v: np.ndarray, vsum: float) -> None:
         """One stepwise-EM step: E-step under the current parameters, fold, M-step."""

@@ -89,9 +89,15 @@ def clean_batch(x: object, dim: int, weights: object = None,
             t = np.full(n, float(t))
         if t.shape != (n,):
             raise TimeError("times", f"shape {t.shape}", f"must hold one time per row ({n})")
-    bad_x = ~np.isfinite(a).all(axis=1)
-    bad_w = np.zeros(n, bool) if w is None else ~(np.isfinite(w) & (w > 0)) & ~bad_x
-    bad_t = np.zeros(n, bool) if t is None else ~np.isfinite(t) & ~bad_x & ~bad_w
+    # the usual batch is all good: whole-array tests first, row masks only when needed
+    good_x = bool(np.isfinite(a).all())
+    good_w = w is None or bool((w > 0).all() and np.isfinite(w).all())
+    good_t = t is None or bool(np.isfinite(t).all())
+    if good_x and good_w and good_t:
+        return Batch(a, w, t), {}
+    bad_x = np.zeros(n, bool) if good_x else ~np.isfinite(a).all(axis=1)
+    bad_w = np.zeros(n, bool) if good_w else ~(np.isfinite(w) & (w > 0)) & ~bad_x
+    bad_t = np.zeros(n, bool) if good_t else ~np.isfinite(t) & ~bad_x & ~bad_w
     counts = {reason: int(mask.sum()) for reason, mask in
               (("not_finite", bad_x), ("bad_weight", bad_w), ("bad_time", bad_t)) if mask.any()}
     if not counts:
