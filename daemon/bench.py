@@ -214,16 +214,26 @@ def bench_mixture(n_batches: int) -> Row:
                ours / ref >= 1.0)
 
 
-def _many_series_engine(n_series: int):
+def _many_series_engine(n_series: int, bodies: list[tuple[bytes, bytes]] | None = None):
+    """An engine holding ``n_series`` scalar series, fed as the daemon would be: messages
+    of three rows each, flushed every 1,000 messages."""
     from .engine import Engine
-    from .wire import encode
 
     e = Engine(parse_config(_SCALAR.replace("PORT", "1")))
-    rng = np.random.default_rng(4)
-    for i in range(n_series):
-        e.ingest(f"bench.s{i}".encode(), encode({"v": rng.normal(size=3)}), 1000.0)
+    for i, (topic, body) in enumerate(bodies or _series_messages(n_series)):
+        e.ingest(topic, body, 1000.0)
+        if i % 1000 == 999:
+            e.flush(1000.0)
     e.flush(1000.0)
     return e
+
+
+def _series_messages(n_series: int) -> list[tuple[bytes, bytes]]:
+    from .wire import encode
+
+    rng = np.random.default_rng(4)
+    return [(f"bench.s{i}".encode(), encode({"v": rng.normal(size=3)}))
+            for i in range(n_series)]
 
 
 def bench_scrape(n_series: int) -> Row:
@@ -259,9 +269,10 @@ def _rss_bytes() -> int:
 
 
 def _memory_child(n_series: int, conn) -> None:
+    messages = _series_messages(n_series)   # the input is not the daemon's memory
     gc.collect()
     before = _rss_bytes()
-    e = _many_series_engine(n_series)
+    e = _many_series_engine(n_series, messages)
     gc.collect()
     after = _rss_bytes()
     conn.send((before, after, len(e.snapshot.series)))

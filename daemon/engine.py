@@ -70,15 +70,18 @@ class Series:
     observations: int = 0
     version: int = 0
     last_update: float = 0.0
-    pending: list = field(default_factory=list)   # (values, weights|None, times|None, arrival)
+    key: tuple = ()                               # (stream, ((label, value), ...)), shared
+    pending: list | tuple = ()                    # (values, weights|None, times|None, arrival)
     rows: list = field(default_factory=list)      # single observations waiting: floats (d = 1)
     #                                               or tuples of d, all from one arrival
-    extras: list = field(default_factory=list)    # (row index, weight|None, time|None)
+    extras: list | tuple = ()                     # (row index, weight|None, time|None)
+    # () until needed: an idle series should cost as little memory as it can
 
-    @property
-    def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
-        return self.stream.name, tuple(zip(self.stream.cfg.topic.labels, self.labels,
-                                           strict=True))
+    def queue(self, chunk: tuple) -> None:
+        if self.pending:
+            self.pending.append(chunk)
+        else:
+            self.pending = [chunk]
 
     def seal_rows(self, arrival: float) -> None:
         """Turn the waiting single observations into one pending chunk; rows without an
@@ -95,8 +98,8 @@ class Series:
             if any(v is not None for v in ts):
                 t = np.full(x.shape[0], arrival)
                 t[list(idx)] = [arrival if v is None else v for v in ts]
-        self.pending.append((x, w, t, arrival))
-        self.rows, self.extras = [], []
+        self.queue((x, w, t, arrival))
+        self.rows, self.extras = [], ()
         self.last_update = arrival
 
 
@@ -109,7 +112,7 @@ class StreamState:
         self.fields = tuple(cfg.fields)
         self.dim = len(self.fields)
         self.series: dict[tuple[str, ...], Series] = {}
-        self.thresholds = np.asarray(cfg.outlier_sigmas, dtype=np.float64)
+        self.quantile_at = tuple((i, q) for q in cfg.quantiles for i in range(len(cfg.fields)))
         self.time_based = cfg.half_life is not None and not cfg.half_life.by_count
         reg = cfg.regression
         self.reg_x = None if reg is None else [self.fields.index(f) for f in reg.x]
@@ -128,8 +131,9 @@ class StreamState:
             m = cfg.mixture
             mix = Mixture(m.components, dim=self.dim, covariance=m.covariance, log=m.log,
                           half_life=cfg.half_life, warmup=m.warmup, seed=m.seed)
+        key = (self.name, tuple(zip(cfg.topic.labels, labels, strict=True)))
         return Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
-                      [0] * len(cfg.outlier_sigmas))
+                      [0] * len(cfg.outlier_sigmas), key=key)
 
 
 def _kinds(cfg: StreamConfig) -> list[str]:
@@ -207,10 +211,9 @@ def view_of(s: Series) -> SeriesView:
     quantiles = []
     for q in cfg.quantiles:
         if s.mixture is not None and s.mixture.warm:
-            vals = [s.mixture.quantile(q, field=i) for i in range(d)]
+            quantiles.extend(float(s.mixture.quantile(q, field=i)) for i in range(d))
         else:
-            vals = m.quantile(q, corr)
-        quantiles.extend((i, q, float(vals[i])) for i in range(d))
+            quantiles.extend(_floats(m.quantile(q, corr)))
     mixture = None
     if s.mixture is not None:
         mx = s.mixture
@@ -241,13 +244,12 @@ def view_of(s: Series) -> SeriesView:
         observations=s.observations, last_update=s.last_update, clock=m.clock,
         half_life=cfg.half_life, weight_sum=m.weight_sum, weight_sq_sum=m.weight_sq_sum,
         effective_samples=m.effective_samples, mean=_floats(m.mean),
-        variance=_floats(m.variance(corr)), stddev=_floats(m.stddev(corr)),
+        variance=_floats(m.variance(corr)),
         covariance=tuple((i, j, float(cov[i, j])) for i, j in pairs),
         correlation=tuple((i, j, float(rho[i, j])) for i, j in pairs),
-        quantiles=tuple(quantiles),
-        outliers=tuple(zip(cfg.outlier_sigmas, s.outliers, strict=True)),
-        mixture=mixture, regression=regression,
-        scatter=_floats(m.variance("none") * m.weight_sum))
+        quantile_at=st.quantile_at, quantile_values=tuple(quantiles),
+        thresholds=cfg.outlier_sigmas, outlier_counts=tuple(s.outliers),
+        mixture=mixture, regression=regression, scatter=_floats(m.scatter))
 
 
 class Engine:
@@ -362,7 +364,7 @@ class Engine:
                 return 0
             series.rows.append(row[0] if st.dim == 1 else row)
             if weight is not None or when is not None:
-                series.extras.append((len(series.rows) - 1, weight, when))
+                series.extras = [*series.extras, (len(series.rows) - 1, weight, when)]
             series.seal_rows(now)
             n = 1
         else:
@@ -437,6 +439,8 @@ class Engine:
             rows = series.rows
             rows.append(row)
             if weight is not None or when is not None:
+                if not series.extras:
+                    series.extras = []
                 series.extras.append((len(rows) - 1, weight, when))
             touched[id(series)] = series
             fast += 1
@@ -461,7 +465,7 @@ class Engine:
         if values.shape[0] == 0:
             return 0
         series.seal_rows(now)   # keep arrival order: single rows queued so far go first
-        series.pending.append((values, weights, times, now))
+        series.queue((values, weights, times, now))
         return values.shape[0]
 
     def _count_gap(self, source: str, seq: int) -> None:
@@ -490,7 +494,7 @@ class Engine:
         return self.snapshot
 
     def _fold(self, series: Series, now: float) -> bool:
-        chunks, series.pending = series.pending, []
+        chunks, series.pending = series.pending, ()
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
         batch, dropped = clean_batch(x, st.dim, w, t)
@@ -507,7 +511,7 @@ class Engine:
         if n == 0:
             return False
         m = series.moments
-        if st.thresholds.size and m.count >= st.cfg.outlier_warmup:
+        if st.cfg.outlier_sigmas and m.count >= st.cfg.outlier_warmup:
             dist = self._distance(series, x)
             for i, threshold in enumerate(st.cfg.outlier_sigmas):
                 series.outliers[i] += int(np.count_nonzero(dist > threshold))

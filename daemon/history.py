@@ -8,6 +8,7 @@ HTTP threads read copies with ``of``; a short lock guards the buffers.
 
 from __future__ import annotations
 
+import heapq
 import threading
 from collections import deque
 
@@ -15,6 +16,10 @@ from .snapshot import Snapshot
 
 Key = tuple[str, tuple[tuple[str, str], ...]]
 Point = tuple[float, tuple[float, ...]]     # (wall-clock seconds, per-field mean)
+
+
+def _last_update(item) -> float:
+    return item[1].last_update
 
 
 class History:
@@ -25,16 +30,21 @@ class History:
     every : float
         Seconds between samples (> 0).
     length : int
-        Samples kept per series (>= 2); memory is O(series x length x fields).
+        Samples kept per series (>= 2).
+    max_series : int
+        Series followed at most: beyond it, the most recently updated ones (the page
+        draws 30), so memory is O(max_series x length x fields) however many series
+        the daemon holds.
     """
 
-    def __init__(self, every: float = 5.0, length: int = 72) -> None:
+    def __init__(self, every: float = 5.0, length: int = 72, max_series: int = 1000) -> None:
         if not every > 0:
             raise ValueError(f"history every must be > 0 (got {every!r})")
         if length < 2:
             raise ValueError(f"history length must be >= 2 (got {length!r})")
         self.every = float(every)
         self.length = int(length)
+        self.max_series = int(max_series)
         self._buffers: dict[Key, deque[Point]] = {}
         self._last: float | None = None
         self._lock = threading.Lock()
@@ -48,7 +58,10 @@ class History:
         with self._lock:
             old = self._buffers
             fresh: dict[Key, deque[Point]] = {}
-            for key, view in snap.series.items():
+            items = snap.series.items()
+            if len(snap.series) > self.max_series:
+                items = heapq.nlargest(self.max_series, items, key=_last_update)
+            for key, view in items:
                 buf = old.get(key)
                 if buf is None:
                     buf = deque(maxlen=self.length)

@@ -7,6 +7,7 @@ half-applied update and never takes a lock.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 from estimators import HalfLife
@@ -54,11 +55,14 @@ class SeriesView:
     effective_samples: float
     mean: tuple[float, ...]
     variance: tuple[float, ...]
-    stddev: tuple[float, ...]
     covariance: tuple[tuple[int, int, float], ...]   # i < j
     correlation: tuple[tuple[int, int, float], ...]  # i < j
-    quantiles: tuple[tuple[int, float, float], ...]  # (field index, q, value)
-    outliers: tuple[tuple[float, int], ...]          # (threshold, count)
+    # compact forms, so that an idle series costs little memory: the (field, q) and
+    # threshold tuples are the stream's own, shared by all its series
+    quantile_at: tuple[tuple[int, float], ...]       # (field index, q), per stream
+    quantile_values: tuple[float, ...]               # the values, in that order
+    thresholds: tuple[float, ...]                    # outlier thresholds, per stream
+    outlier_counts: tuple[int, ...]                  # counts, in that order
     mixture: MixtureView | None = None
     regression: RegressionView | None = None
     scatter: tuple[float, ...] = ()           # centred Σw(x-μ)² per field, as of ``clock``
@@ -66,6 +70,21 @@ class SeriesView:
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
         return self.stream, self.labels
+
+    @property
+    def stddev(self) -> tuple[float, ...]:
+        return tuple(math.sqrt(v) if v >= 0.0 else math.nan for v in self.variance)
+
+    @property
+    def quantiles(self) -> tuple[tuple[int, float, float], ...]:
+        """(field index, q, value) triples."""
+        return tuple((i, q, x) for (i, q), x in zip(self.quantile_at, self.quantile_values,
+                                                     strict=True))
+
+    @property
+    def outliers(self) -> tuple[tuple[float, int], ...]:
+        """(threshold, count) pairs."""
+        return tuple(zip(self.thresholds, self.outlier_counts, strict=True))
 
     def weights_at(self, t: float) -> tuple[float, float]:
         """(W, W2) aged to event time t, never backwards. The mean, the variances and

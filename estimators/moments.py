@@ -204,6 +204,11 @@ class Moments:
         return self.W * self.W / self.W2 if self.W2 > 0.0 else 0.0
 
     @property
+    def scatter(self) -> np.ndarray:
+        """Per-field centred scatter sum(w (x - mu)**2) (d,), the diagonal of C."""
+        return np.diagonal(self._scatter).copy()
+
+    @property
     def mean(self) -> np.ndarray:
         """Weighted mean vector (d,); NaN while empty."""
         return self._mean.copy() if self.W > 0.0 else np.full(self.dim, np.nan)

@@ -282,3 +282,19 @@ def test_api_state_carries_history_and_fitted_mixture_parameters(rendered):
                                series.mixture.original_means, rtol=1e-15)
     pair = next(s for s in doc["series"] if s["stream"] == "pair")
     assert pair["regression"]["y"] == "b"
+
+
+def test_history_follows_at_most_max_series_the_most_recently_updated():
+    from daemon.history import History
+    from daemon.snapshot import Snapshot
+
+    class _View:
+        def __init__(self, t):
+            self.last_update, self.mean = t, (t,)
+    snap = Snapshot(taken_at=1.0, series={("s", (("k", str(i)),)): _View(float(i))
+                                          for i in range(50)})
+    h = History(every=1.0, length=4, max_series=10)
+    assert h.record(snap, 100.0)
+    assert len(h) == 10
+    assert h.of(("s", (("k", "49"),))) == ((100.0, (49.0,)),)   # newest kept
+    assert h.of(("s", (("k", "0"),))) == ()                     # oldest not followed
