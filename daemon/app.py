@@ -9,6 +9,7 @@ import time
 import zmq
 from prometheus_client import CollectorRegistry, Histogram
 
+from .checkpoint import Checkpointer
 from .config import Config
 from .engine import Engine
 from .export import SnapshotCollector
@@ -42,6 +43,12 @@ class Daemon:
             "sigmad_flush_duration_seconds", "Time spent folding one flush.",
             buckets=(1e-4, 1e-3, 1e-2, 0.1, 1.0), registry=self.registry)
         d = config.daemon
+        self.checkpointer = None
+        if d.state_file:
+            # restore before any socket is open: nothing is ingested into a state
+            # that is about to be replaced, and a strict refusal binds nothing
+            self.checkpointer = Checkpointer(d.state_file, d.checkpoint_every, self.registry)
+            self.checkpointer.restore(self.engine, time.time(), d.strict_restore)
         self.http = HttpServer(d.http, self.registry, self._page, self._state,
                                d.tls_cert, d.tls_key, d.tls_client_ca)
         self._ctx = zmq.Context()
@@ -122,10 +129,15 @@ class Daemon:
             if now >= next_housekeeping:
                 engine.expire_idle(now)
                 next_housekeeping = now + HOUSEKEEPING_EVERY
+            if self.checkpointer is not None and self.checkpointer.maybe_checkpoint(
+                    engine, now, self._flush):
+                next_flush = now + flush_every
         # drain what is already queued so a clean stop loses nothing that arrived
         for s in self.sources:
             s.drain(engine, time.time())
         self._flush(time.time())
+        if self.checkpointer is not None:
+            self.checkpointer.final(engine, time.time())
 
     def _flush(self, now: float) -> None:
         rows = self.engine.pending_rows
