@@ -9,8 +9,9 @@ import time
 import zmq
 from prometheus_client import CollectorRegistry, Histogram
 
+from .auth import RefusedCollector, stop_authenticator
 from .checkpoint import Checkpointer
-from .config import Config
+from .config import Config, ConfigError
 from .engine import Engine
 from .export import SnapshotCollector
 from .http import HttpServer, json_bytes
@@ -36,6 +37,7 @@ class Daemon:
         self.engine = Engine(config)
         self.registry = CollectorRegistry(auto_describe=False)
         self.registry.register(SnapshotCollector(lambda: self.engine.snapshot))
+        self.registry.register(RefusedCollector(lambda: self.sources))
         self.flush_rows = Histogram(
             "sigmad_flush_rows", "Rows folded into estimators per flush.",
             buckets=(1, 10, 100, 1_000, 10_000, 100_000), registry=self.registry)
@@ -56,7 +58,7 @@ class Daemon:
         try:
             for s in config.sources:
                 self.sources.append(Source(self._ctx, s))
-        except zmq.ZMQError:
+        except (zmq.ZMQError, ConfigError):
             self._close_sockets()
             self.http.stop()
             raise
@@ -93,6 +95,7 @@ class Daemon:
     def _close_sockets(self) -> None:
         for s in self.sources:
             s.close()
+        stop_authenticator(self._ctx)
         self._ctx.term()
 
     # ---------------------------------------------------------- engine loop

@@ -7,6 +7,8 @@ from pathlib import Path
 
 import zmq.auth
 
+from .config import ConfigError
+
 
 def keygen(directory: str | os.PathLike, name: str = "sigmad") -> tuple[Path, Path]:
     """Write a CurveZMQ key pair ``NAME.key`` (public) and ``NAME.key_secret`` into DIR.
@@ -36,11 +38,16 @@ def keygen(directory: str | os.PathLike, name: str = "sigmad") -> tuple[Path, Pa
     return Path(made_public), Path(made_secret)
 
 def load_server_keys(path: str) -> tuple[bytes, bytes]:
-    """(public, secret) from a zmq.auth secret certificate file; ValueError naming the file."""
+    """(public, secret) from a zmq.auth secret certificate file.
+
+    Raises ConfigError (key ``source.curve_secret``) naming the file.
+    """
     try:
         public, secret = zmq.auth.load_certificate(path)
     except (OSError, ValueError) as exc:
-        raise ValueError(f"curve_secret {path}: cannot read the key pair ({exc})") from None
+        raise ConfigError("source.curve_secret", path,
+                          f"cannot be read as a key pair ({exc})") from None
     if not secret:
-        raise ValueError(f"curve_secret {path}: holds no secret key (use the .key_secret file)")
+        raise ConfigError("source.curve_secret", path,
+                          "holds no secret key (give the .key_secret file)")
     return public, secret
