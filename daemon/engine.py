@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from estimators import IncompatibleError, Mixture, Moments, Regression, clean_batch
+from estimators.validation import bound_batch
 
 from .config import Config, StreamConfig
 from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
@@ -296,12 +297,6 @@ class Engine:
         n = values.shape[0]
         if dec.source is not None and dec.seq is not None:
             self._count_gap(dec.source, dec.seq)
-        series = st.series.get(labels)
-        if series is None:
-            if len(st.series) >= st.cfg.max_series:
-                self.reject("series_limit", n, topic=topic, now=now)
-                return 0
-            series = st.series[labels] = st.new_series(labels)
         if times is not None:
             # non-finite times are left for clean_batch to count as bad_time
             with np.errstate(invalid="ignore"):
@@ -314,9 +309,15 @@ class Engine:
                 n = values.shape[0]
                 if n == 0:
                     return 0
+        # created only for rows that passed every check here: rejected input adds no series
+        series = st.series.get(labels)
+        if series is None:
+            if len(st.series) >= st.cfg.max_series:
+                self.reject("series_limit", n, topic=topic, now=now)
+                return 0
+            series = st.series[labels] = st.new_series(labels)
         series.pending.append((values, weights, times, now))
         self.pending_rows += n
-        series.last_update = now
         self._dirty[id(series)] = series
         return n
 
@@ -339,6 +340,11 @@ class Engine:
                 views = views if changed else dict(views)
                 changed = True
                 views[series.key] = view_of(series)
+            elif series.observations == 0 and not series.pending:
+                # every row of a new series was dropped: the rejected input leaves no trace
+                st = series.stream
+                if st.series.get(series.labels) is series:
+                    del st.series[series.labels]
         if changed or self.snapshot.taken_at == 0.0:
             self._views = views
         self.flushes += 1
@@ -350,8 +356,9 @@ class Engine:
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
         batch, dropped = clean_batch(x, st.dim, w, t)
+        batch, out_of_bounds = bound_batch(batch, self.config.daemon.max_abs_value)
         where = f"{st.name}{dict(series.key[1]) or ''}"
-        for reason, count in dropped.items():
+        for reason, count in (dropped | out_of_bounds).items():
             self.reject(reason, count, topic=where, now=now)
         x, w, t = batch
         if st.log_mixture and x.shape[0]:
