@@ -10,11 +10,16 @@ a finite state, never NaN or inf in ``export_state``.
 from __future__ import annotations
 
 import math
+import os
 import struct
+import subprocess
+import sys
 import tracemalloc
 
 import msgpack
 import numpy as np
+from conftest import need_module
+from harness import ROOT
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -196,3 +201,19 @@ def test_largest_accepted_values_keep_numpy_moments():
     # reference: numpy mean and ddof=1 variance (reliability correction with unit weights)
     assert math.isclose(view.mean[0], float(np.mean(x)), rel_tol=1e-12)
     assert math.isclose(view.variance[0], float(np.var(x, ddof=1)), rel_tol=1e-12)
+
+
+def test_atheris_fuzz_of_ingest_finds_nothing(tmp_path):
+    need_module("atheris")
+    # seeds: a valid single observation, a batch, and a huge-header body
+    corpus = tmp_path / "corpus"
+    corpus.mkdir()
+    (corpus / "one").write_bytes(b"\x00" + encode({"v": 1.5}))
+    (corpus / "batch").write_bytes(b"\x01" + encode({"x": [1.0, 2.0], "y": [3.0, 4.0]}))
+    (corpus / "huge").write_bytes(b"\x02\x81\xa6values\xdd\x7f\xff\xff\xff")
+    r = subprocess.run([sys.executable, str(ROOT / "tests" / "fuzz_ingest.py"),
+                        "-atheris_runs=20000", "-max_total_time=60", str(corpus)],
+                       capture_output=True, text=True, timeout=180, cwd=tmp_path,
+                       env=dict(os.environ, PYTHONPATH=str(ROOT)))
+    assert r.returncode == 0, r.stderr[-3000:]
+    assert "Done" in r.stderr
