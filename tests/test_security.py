@@ -109,6 +109,8 @@ def test_producer_without_a_key_is_refused_and_counted(curve_daemon):
     parsed = d.metrics()
     assert value(parsed, "sigmad_observations_total", stream="k", who="anon") is None
     assert refused(d, "protocol") + refused(d, "no_detail") > before
+    print(f"\nrefused handshakes: {refused(d, 'auth'):.0f} unknown key, "
+          f"{refused(d, 'protocol') + refused(d, 'no_detail'):.0f} without a key")
 
 
 # ------------------------------------------------------------------------ TLS
