@@ -11,7 +11,9 @@ import zmq
 from prometheus_client import CollectorRegistry, Histogram, generate_latest
 
 from .allocator import keep_freed_blocks
-from .config import Config
+from .auth import RefusedCollector, stop_authenticator
+from .checkpoint import Checkpointer
+from .config import Config, ConfigError
 from .engine import Engine
 from .export import HealthCollector
 from .history import History
@@ -44,6 +46,7 @@ class Daemon:
         self.registry = CollectorRegistry(auto_describe=False)
         self.registry.register(HealthCollector(lambda: self.snapshot))
         self.renderer = SeriesRenderer()
+        self.registry.register(RefusedCollector(lambda: self.sources))
         self.flush_rows = Histogram(
             "sigmad_flush_rows", "Rows folded into estimators per flush.",
             buckets=(1, 10, 100, 1_000, 10_000, 100_000), registry=self.registry)
@@ -51,6 +54,12 @@ class Daemon:
             "sigmad_flush_duration_seconds", "Time spent folding one flush.",
             buckets=(1e-4, 1e-3, 1e-2, 0.1, 1.0), registry=self.registry)
         d = config.daemon
+        self.checkpointer = None
+        if d.state_file:
+            # restore before any socket is open: nothing is ingested into a state
+            # that is about to be replaced, and a strict refusal binds nothing
+            self.checkpointer = Checkpointer(d.state_file, d.checkpoint_every, self.registry)
+            self.checkpointer.restore(self.engine, time.time(), d.strict_restore)
         self.http = HttpServer(d.http, self._metrics, self._page, self._state,
                                d.tls_cert, d.tls_key, d.tls_client_ca)
         self._ctx = zmq.Context()
@@ -65,7 +74,7 @@ class Daemon:
             if config.merge is not None:
                 self.merger = Merger(self._ctx, config)
                 self.registry.register(ShardCollector(self.merger, time.time))
-        except zmq.ZMQError:
+        except (zmq.ZMQError, ConfigError):
             self._close_sockets()
             self.http.stop()
             raise
@@ -113,6 +122,7 @@ class Daemon:
         for extra in (self.publisher, self.merger):
             if extra is not None:
                 extra.close()
+        stop_authenticator(self._ctx)
         self._ctx.term()
 
     # ---------------------------------------------------------- engine loop
@@ -168,10 +178,15 @@ class Daemon:
                 if merger is not None:
                     merger.expire(now)
                 next_housekeeping = now + HOUSEKEEPING_EVERY
+            if self.checkpointer is not None and self.checkpointer.maybe_checkpoint(
+                    engine, now, self._flush):
+                next_flush = now + flush_every
         # drain what is already queued so a clean stop loses nothing that arrived
         for s in self.sources:
             s.drain(engine, time.time())
         self._flush(time.time())
+        if self.checkpointer is not None:
+            self.checkpointer.final(engine, time.time())
 
     def _flush(self, now: float) -> None:
         rows = self.engine.pending_rows

@@ -72,6 +72,28 @@ def _cmd_send(args: argparse.Namespace) -> int:
     return send_stdin(args.topic, args.connect, args.field, args.bind, args.socket)
 
 
+def _cmd_inspect(args: argparse.Namespace) -> int:
+    from .checkpoint import describe_checkpoint, read_checkpoint
+
+    try:
+        cp = read_checkpoint(args.state_file)
+    except FileNotFoundError:
+        raise UserError(f"no checkpoint at {args.state_file}") from None
+    print(describe_checkpoint(cp, args.state_file))
+    return EXIT_OK
+
+
+def _cmd_keygen(args: argparse.Namespace) -> int:
+    from .keys import keygen
+
+    try:
+        public, secret = keygen(args.dir, args.name)
+    except FileExistsError as exc:
+        raise UserError(str(exc)) from None
+    print(f"public key {public} (give it to peers), secret key {secret} (mode 0600, keep it)")
+    return EXIT_OK
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .demo import run_demo
 
@@ -127,6 +149,16 @@ def build_parser() -> argparse.ArgumentParser:
     check = sub.add_parser("check-config", help="validate a configuration and print it")
     check.add_argument("file")
     check.set_defaults(func=_cmd_check_config)
+
+    inspect = sub.add_parser("inspect", help="print a checkpoint's series and estimates")
+    inspect.add_argument("state_file", metavar="STATE_FILE")
+    inspect.set_defaults(func=_cmd_inspect)
+
+    keygen = sub.add_parser("keygen", help="write a CurveZMQ key pair for authenticated ingest")
+    keygen.add_argument("dir", metavar="DIR")
+    keygen.add_argument("--name", default="sigmad",
+                        help="file name stem: NAME.key and NAME.key_secret (default sigmad)")
+    keygen.set_defaults(func=_cmd_keygen)
     return p
 
 
@@ -138,6 +170,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return EXIT_USER
+    from .checkpoint import CheckpointError
     from .config import ConfigError
 
     try:
@@ -147,6 +180,11 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"sigmad: {exc}", file=sys.stderr)
         return EXIT_USER
+    except CheckpointError as exc:   # a corrupt state with strict_restore: refuse to start
+        if args.debug:
+            raise
+        print(f"sigmad: {exc}", file=sys.stderr)
+        return EXIT_RUNTIME
     except KeyboardInterrupt:
         return EXIT_OK
     except Exception as exc:   # the edge: one sentence, a traceback only with --debug

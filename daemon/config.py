@@ -101,6 +101,7 @@ class DaemonConfig:
     max_batch_rows: int = 100_000
     flush_every: float = 0.05
     max_clock_skew: float = 86400.0
+    max_abs_value: float = 1e100
     strict_restore: bool = False
     log_rejected: int = 10
 
@@ -419,7 +420,7 @@ def _names(table: _Table, name: str, what: str) -> tuple[str, ...]:
 
 _DAEMON_KEYS = ("http", "state_file", "checkpoint_every", "tls_cert", "tls_key", "tls_client_ca",
                 "max_message_bytes", "max_batch_rows", "flush_every", "max_clock_skew",
-                "strict_restore", "log_rejected")
+                "strict_restore", "log_rejected", "max_abs_value")
 _SOURCE_KEYS = ("socket", "bind", "connect", "topics", "curve_secret", "curve_allow",
                 "high_water_mark")
 _STREAM_KEYS = ("name", "topic", "fields", "half_life", "correction", "quantiles",
@@ -448,6 +449,7 @@ def _daemon(data: object) -> DaemonConfig:
         max_clock_skew=t.duration("max_clock_skew", d.max_clock_skew),
         strict_restore=t.boolean("strict_restore", d.strict_restore),
         log_rejected=t.integer("log_rejected", d.log_rejected, 0),
+        max_abs_value=_max_abs_value(t, d.max_abs_value),
     )
     if (cfg.tls_cert is None) != (cfg.tls_key is None):
         present = "tls_cert" if cfg.tls_cert is not None else "tls_key"
@@ -457,6 +459,16 @@ def _daemon(data: object) -> DaemonConfig:
         raise ConfigError(t.key("tls_client_ca"), cfg.tls_client_ca,
                           "needs tls_cert and tls_key (client certificates need HTTPS)")
     return cfg
+
+
+def _max_abs_value(t: _Table, default: float) -> float:
+    """Largest accepted |value|; above 1e100 squares times weights could overflow float64."""
+    value = t.raw("max_abs_value", default)
+    if isinstance(value, bool) or not isinstance(value, (int, float)) \
+            or not 0 < value <= 1e100:
+        raise ConfigError(t.key("max_abs_value"), value,
+                          "must be a number > 0 and <= 1e100 (larger squares overflow)")
+    return float(value)
 
 
 def _endpoints(t: _Table, name: str, binding: bool) -> tuple[str, ...]:

@@ -16,6 +16,7 @@ import msgpack
 import numpy as np
 
 from estimators import IncompatibleError, Mixture, Moments, Regression, clean_batch
+from estimators.validation import bound_batch
 
 from .config import Config, StreamConfig
 from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
@@ -100,7 +101,6 @@ class Series:
                 t[list(idx)] = [arrival if v is None else v for v in ts]
         self.queue((x, w, t, arrival))
         self.rows, self.extras = [], ()
-        self.last_update = arrival
 
 
 class StreamState:
@@ -350,27 +350,33 @@ class Engine:
             return 0
         if seq is not None and source is not None:
             self._count_gap(source, seq)
-        series = st.series.get(labels)
-        if series is None:
-            if len(st.series) >= st.cfg.max_series:
-                self.reject("series_limit", 1 if dec is None else dec.values.shape[0],
-                            topic=topic, now=now)
-                return 0
-            series = st.series[labels] = st.new_series(labels)
         if dec is None:
             row, weight, when = one
             if when is not None and abs(when - now) > self._max_skew and math.isfinite(when):
                 self.reject("clock_skew", topic=topic, now=now)
                 return 0
+            n = 1
+        else:
+            dec = self._drop_skewed(dec, now, topic)
+            n = dec.values.shape[0]
+            if n == 0:
+                return 0
+        # created only for rows that passed every check here: rejected input adds no series
+        series = st.series.get(labels)
+        if series is None:
+            if len(st.series) >= st.cfg.max_series:
+                self.reject("series_limit", n, topic=topic, now=now)
+                return 0
+            series = st.series[labels] = st.new_series(labels)
+        if dec is None:
             series.rows.append(row[0] if st.dim == 1 else row)
             if weight is not None or when is not None:
                 series.extras = [*series.extras, (len(series.rows) - 1, weight, when)]
             series.seal_rows(now)
-            n = 1
         else:
-            n = self._queue_batch(series, dec, now, topic)
+            series.seal_rows(now)   # keep arrival order: single rows queued so far go first
+            series.queue((dec.values, dec.weights, dec.times, now))
         self.pending_rows += n
-        series.last_update = now
         self._dirty[id(series)] = series
         return n
 
@@ -451,22 +457,20 @@ class Engine:
         self.pending_rows += fast
         return queued + fast
 
-    def _queue_batch(self, series: Series, dec, now: float, topic: bytes) -> int:
-        values, weights, times = dec.values, dec.weights, dec.times
-        if times is not None:
-            # non-finite times are left for clean_batch to count as bad_time
-            with np.errstate(invalid="ignore"):
-                skew = np.isfinite(times) & (np.abs(times - now) > self._max_skew)
-            if skew.any():
-                self.reject("clock_skew", int(skew.sum()), topic=topic, now=now)
-                keep = ~skew
-                values, times = values[keep], times[keep]
-                weights = None if weights is None else weights[keep]
-        if values.shape[0] == 0:
-            return 0
-        series.seal_rows(now)   # keep arrival order: single rows queued so far go first
-        series.queue((values, weights, times, now))
-        return values.shape[0]
+    def _drop_skewed(self, dec, now: float, topic: bytes):
+        """The decoded batch without rows whose event time is too far from ``now``."""
+        times = dec.times
+        if times is None:
+            return dec
+        # non-finite times are left for clean_batch to count as bad_time
+        with np.errstate(invalid="ignore"):
+            skew = np.isfinite(times) & (np.abs(times - now) > self._max_skew)
+        if not skew.any():
+            return dec
+        self.reject("clock_skew", int(skew.sum()), topic=topic, now=now)
+        keep = ~skew
+        return dec._replace(values=dec.values[keep], times=times[keep],
+                            weights=None if dec.weights is None else dec.weights[keep])
 
     def _count_gap(self, source: str, seq: int) -> None:
         last = self._last_seq.get(source)
@@ -487,6 +491,11 @@ class Engine:
                 views = views if changed else dict(views)
                 changed = True
                 views[series.key] = view_of(series)
+            elif series.observations == 0 and not series.pending:
+                # every row of a new series was dropped: the rejected input leaves no trace
+                st = series.stream
+                if st.series.get(series.labels) is series:
+                    del st.series[series.labels]
         if changed or self.snapshot.taken_at == 0.0:
             self._views = views
         self.flushes += 1
@@ -498,7 +507,8 @@ class Engine:
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
         batch, dropped = clean_batch(x, st.dim, w, t)
-        for reason, count in dropped.items():
+        batch, out_of_bounds = bound_batch(batch, self.config.daemon.max_abs_value)
+        for reason, count in (dropped | out_of_bounds).items():
             self.reject(reason, count, topic=_where(series), now=now)
         x, w, t = batch
         if st.log_mixture and x.shape[0] and not (x > 0.0).all():

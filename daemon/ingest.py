@@ -27,6 +27,15 @@ class Source:
         self.socket.setsockopt(zmq.RCVHWM, cfg.high_water_mark)
         self.socket.setsockopt(zmq.LINGER, 0)
         self.label = f"{cfg.socket} " + " ".join(cfg.bind or cfg.connect)
+        self.guard = None
+        if cfg.curve_secret:
+            from .auth import Guard
+
+            try:
+                self.guard = Guard(ctx, self.socket, cfg, domain=self.label)
+            except BaseException:
+                self.socket.close(0)
+                raise
         if kind == zmq.SUB:
             for prefix in cfg.topics:
                 self.socket.setsockopt(zmq.SUBSCRIBE, prefix.encode())
@@ -36,7 +45,7 @@ class Source:
             for ep in cfg.connect:
                 self.socket.connect(ep)
         except zmq.ZMQError:
-            self.socket.close(0)
+            self.close()
             raise
 
     @property
@@ -111,4 +120,6 @@ class Source:
                       now=now)
 
     def close(self) -> None:
+        if self.guard is not None:
+            self.guard.close()
         self.socket.close(0)

@@ -134,7 +134,12 @@ class Moments:
             self._scatter = np.array(cb, dtype=np.float64)
         else:
             delta = mb - self._mean
-            self._mean = self._mean + delta * (wb / total)
+            # step from the heavier side: wb/total rounds to 1 when wb dwarfs wa by 2**53,
+            # and mean + delta * 1 would then cancel the lighter side's share entirely
+            if wb <= wa:
+                self._mean = self._mean + delta * (wb / total)
+            else:
+                self._mean = mb - delta * (wa / total)
             self._scatter = self._scatter + cb + np.outer(delta, delta) * (wa * wb / total)
         self.W = total
         self.W2 = self.W2 + w2b

@@ -106,6 +106,43 @@ def clean_batch(x: object, dim: int, weights: object = None,
     return Batch(a[keep], None if w is None else w[keep], None if t is None else t[keep]), counts
 
 
+#: Default largest accepted |value|: squares and weighted cross-products of
+#: values and weights within these bounds stay far inside float64's 1.8e308.
+MAX_ABS_VALUE = 1e100
+#: Accepted weights lie in [MIN_WEIGHT, MAX_WEIGHT]: W2 = sum(w**2) neither
+#: underflows to 0 (Kish's W**2/W2 would be 0/0) nor overflows.
+MIN_WEIGHT = 1e-30
+MAX_WEIGHT = 1e30
+
+
+def bound_batch(batch: Batch, max_abs: float = MAX_ABS_VALUE, min_weight: float = MIN_WEIGHT,
+                max_weight: float = MAX_WEIGHT) -> tuple[Batch, dict[str, int]]:
+    """Drop rows of a clean batch whose magnitudes would overflow the state.
+
+    Values with ``|x| > max_abs`` are counted as "out_of_range"; weights outside
+    ``[min_weight, max_weight]`` as "bad_weight" (each row once, values first).
+    With the defaults every centred square and weighted cross-product stays
+    below 1e230, so the state (and every read-out) stays finite. O(n d).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> b = Batch(np.array([[1.0], [1e308], [2.0]]), np.array([1.0, 1.0, 1e300]), None)
+    >>> kept, dropped = bound_batch(b)
+    >>> kept.x.ravel().tolist(), dropped
+    ([1.0], {'out_of_range': 1, 'bad_weight': 1})
+    """
+    a, w, t = batch
+    bad_x = (np.abs(a) > max_abs).any(axis=1)
+    bad_w = np.zeros_like(bad_x) if w is None else ((w < min_weight) | (w > max_weight)) & ~bad_x
+    counts = {reason: int(mask.sum()) for reason, mask in
+              (("out_of_range", bad_x), ("bad_weight", bad_w)) if mask.any()}
+    if not counts:
+        return batch, counts
+    keep = ~(bad_x | bad_w)
+    return Batch(a[keep], None if w is None else w[keep], None if t is None else t[keep]), counts
+
+
 def check_xy(x: object, y: object, dim: int, weights: object = None,
              times: object = None) -> Batch:
     """Validate a regression batch: design rows X (n, dim) and responses y (n,).

@@ -14,6 +14,9 @@ import pytest
 
 REQUIRE_ALL = os.environ.get("SIGMAD_REQUIRE_ALL") == "1"
 
+# an atheris harness run as a subprocess by test_hostile.py, not a test module
+collect_ignore = ["fuzz_ingest.py"]
+
 
 def need_module(name: str):
     """Import a test-only module, or skip (fail under SIGMAD_REQUIRE_ALL=1)."""
