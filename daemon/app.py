@@ -8,7 +8,12 @@ import threading
 import time
 
 import zmq
-from prometheus_client import CollectorRegistry, Histogram, generate_latest
+from prometheus_client import (
+    CollectorRegistry,
+    Histogram,
+    disable_created_metrics,
+    generate_latest,
+)
 
 from .allocator import keep_freed_blocks
 from .auth import RefusedCollector, stop_authenticator
@@ -40,6 +45,7 @@ class Daemon:
 
     def __init__(self, config: Config) -> None:
         keep_freed_blocks()
+        disable_created_metrics()   # no *_created samples beside our counters
         self.config = config
         self.engine = Engine(config)
         self.history = History(every=2.0, length=150)    # sparklines: the last 5 minutes

@@ -112,6 +112,8 @@ class StreamState:
         self.fields = tuple(cfg.fields)
         self.dim = len(self.fields)
         self.series: dict[tuple[str, ...], Series] = {}
+        self.kinds = _kinds(cfg)
+        self.field_list = list(cfg.fields)
         self.quantile_at = tuple((i, q) for q in cfg.quantiles for i in range(len(cfg.fields)))
         self.time_based = cfg.half_life is not None and not cfg.half_life.by_count
         reg = cfg.regression
@@ -149,7 +151,7 @@ def series_state(s: Series) -> dict:
     cfg = s.stream.cfg
     return {
         "stream": cfg.name, "labels": list(s.labels), "fields": list(cfg.fields),
-        "kinds": _kinds(cfg), "observations": s.observations, "version": s.version,
+        "kinds": s.stream.kinds, "observations": s.observations, "version": s.version,
         "last_update": s.last_update, "outliers": list(s.outliers),
         "thresholds": list(cfg.outlier_sigmas),
         "moments": s.moments.to_dict(),
@@ -168,10 +170,10 @@ def restore_series(st: StreamState, d: dict) -> Series:
     cfg = st.cfg
     try:
         labels = tuple(str(v) for v in d["labels"])
-        if list(d["fields"]) != list(cfg.fields):
-            raise IncompatibleError("fields", d["fields"], f"the stream now has {list(cfg.fields)}")
-        if list(d["kinds"]) != _kinds(cfg):
-            raise IncompatibleError("kinds", d["kinds"], f"the stream now has {_kinds(cfg)}")
+        if list(d["fields"]) != st.field_list:
+            raise IncompatibleError("fields", d["fields"], f"the stream now has {st.field_list}")
+        if list(d["kinds"]) != st.kinds:
+            raise IncompatibleError("kinds", d["kinds"], f"the stream now has {st.kinds}")
         if len(labels) != len(cfg.topic.labels):
             raise IncompatibleError("labels", d["labels"],
                                     f"the topic template now has {list(cfg.topic.labels)}")
@@ -204,16 +206,20 @@ def view_of(s: Series) -> SeriesView:
     cfg = st.cfg
     m = s.moments
     corr = cfg.correction
-    cov = m.covariance(corr)
-    rho = m.correlation()
     d = st.dim
-    pairs = [(i, j) for i in range(d) for j in range(i + 1, d)]
-    quantiles = []
-    for q in cfg.quantiles:
-        if s.mixture is not None and s.mixture.warm:
-            quantiles.extend(float(s.mixture.quantile(q, field=i)) for i in range(d))
-        else:
-            quantiles.extend(_floats(m.quantile(q, corr)))
+    covariance = correlation = ()
+    if d > 1:
+        cov, rho = m.covariance(corr), m.correlation()
+        pairs = [(i, j) for i in range(d) for j in range(i + 1, d)]
+        covariance = tuple((i, j, float(cov[i, j])) for i, j in pairs)
+        correlation = tuple((i, j, float(rho[i, j])) for i, j in pairs)
+    if s.mixture is not None and s.mixture.warm:
+        quantiles = tuple(float(s.mixture.quantile(q, field=i))
+                          for q in cfg.quantiles for i in range(d))
+    elif cfg.quantiles:
+        quantiles = _floats(m.quantiles(cfg.quantiles, corr))
+    else:
+        quantiles = ()
     mixture = None
     if s.mixture is not None:
         mx = s.mixture
@@ -245,9 +251,8 @@ def view_of(s: Series) -> SeriesView:
         half_life=cfg.half_life, weight_sum=m.weight_sum, weight_sq_sum=m.weight_sq_sum,
         effective_samples=m.effective_samples, mean=_floats(m.mean),
         variance=_floats(m.variance(corr)),
-        covariance=tuple((i, j, float(cov[i, j])) for i, j in pairs),
-        correlation=tuple((i, j, float(rho[i, j])) for i, j in pairs),
-        quantile_at=st.quantile_at, quantile_values=tuple(quantiles),
+        covariance=covariance, correlation=correlation,
+        quantile_at=st.quantile_at, quantile_values=quantiles,
         thresholds=cfg.outlier_sigmas, outlier_counts=tuple(s.outliers),
         mixture=mixture, regression=regression, scatter=_floats(m.scatter))
 

@@ -266,6 +266,15 @@ class Moments:
             raise IncompatibleError("q", q, "must lie strictly between 0 and 1")
         return self.mean + self.stddev(correction) * _STD_NORMAL.inv_cdf(q)
 
+    def quantiles(self, qs: tuple[float, ...] | list[float],
+                  correction: Correction = "reliability") -> np.ndarray:
+        """``quantile`` for several q at once: an array (len(qs), d). O(len(qs) d)."""
+        for q in qs:
+            if not 0.0 < q < 1.0:
+                raise IncompatibleError("q", q, "must lie strictly between 0 and 1")
+        z = np.array([_STD_NORMAL.inv_cdf(q) for q in qs])
+        return self.mean + np.outer(z, self.stddev(correction))
+
     def mahalanobis(self, x: object, correction: Correction = "reliability") -> np.ndarray:
         """Distance of rows x (n, d) from the mean in units of the covariance: |z| for
         d = 1. NaN while the covariance is undefined or singular. O(n d**2 + d**3)."""
