@@ -31,7 +31,7 @@ _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this 
 
 
 def _floats(a) -> tuple[float, ...]:
-    return tuple(float(v) for v in np.asarray(a, dtype=np.float64).ravel())
+    return tuple(np.asarray(a, dtype=np.float64).ravel().tolist())
 
 
 def _where(series: Series) -> str:

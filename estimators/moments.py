@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import math
 from statistics import NormalDist
 from typing import Literal
@@ -15,6 +16,17 @@ from .validation import as_rows, check_batch
 Correction = Literal["none", "frequency", "reliability"]
 CORRECTIONS: tuple[str, ...] = ("none", "frequency", "reliability")
 _STD_NORMAL = NormalDist()
+
+
+@functools.lru_cache(maxsize=256)
+def _normal_scores(qs: tuple[float, ...]) -> np.ndarray:
+    """Phi^-1(q) for each q (a stream's quantile list is fixed: cached)."""
+    for q in qs:
+        if not 0.0 < q < 1.0:
+            raise IncompatibleError("q", q, "must lie strictly between 0 and 1")
+    z = np.array([_STD_NORMAL.inv_cdf(q) for q in qs])
+    z.flags.writeable = False
+    return z
 
 
 class Moments:
@@ -211,7 +223,7 @@ class Moments:
     @property
     def scatter(self) -> np.ndarray:
         """Per-field centred scatter sum(w (x - mu)**2) (d,), the diagonal of C."""
-        return np.diagonal(self._scatter).copy()
+        return self._scatter.diagonal().copy()
 
     @property
     def mean(self) -> np.ndarray:
@@ -237,7 +249,7 @@ class Moments:
 
     def variance(self, correction: Correction = "reliability") -> np.ndarray:
         """Per-field variances (d,): the diagonal of ``covariance``."""
-        return np.diagonal(self._scatter) / self.scatter_divisor(correction)
+        return self._scatter.diagonal() / self.scatter_divisor(correction)
 
     def stddev(self, correction: Correction = "reliability") -> np.ndarray:
         """Per-field standard deviations (d,)."""
@@ -269,10 +281,7 @@ class Moments:
     def quantiles(self, qs: tuple[float, ...] | list[float],
                   correction: Correction = "reliability") -> np.ndarray:
         """``quantile`` for several q at once: an array (len(qs), d). O(len(qs) d)."""
-        for q in qs:
-            if not 0.0 < q < 1.0:
-                raise IncompatibleError("q", q, "must lie strictly between 0 and 1")
-        z = np.array([_STD_NORMAL.inv_cdf(q) for q in qs])
+        z = _normal_scores(tuple(qs))
         return self.mean + np.outer(z, self.stddev(correction))
 
     def mahalanobis(self, x: object, correction: Correction = "reliability") -> np.ndarray:
