@@ -286,8 +286,9 @@ class Engine:
         self._max_skew = d.max_clock_skew
         # the hot path unpacks with fixed limits (the general path's are tighter)
         self._unpack_one = functools.partial(
-            msgpack.unpackb, max_str_len=d.max_message_bytes, max_bin_len=d.max_message_bytes,
-            max_ext_len=0, max_array_len=d.max_batch_rows, max_map_len=d.max_message_bytes // 2)
+            msgpack.unpackb, use_list=False, max_str_len=d.max_message_bytes,
+            max_bin_len=d.max_message_bytes, max_ext_len=0, max_array_len=d.max_batch_rows,
+            max_map_len=d.max_message_bytes // 2)
 
     # ------------------------------------------------------------- ingest
     @property
@@ -329,13 +330,16 @@ class Engine:
             log.warning("rejected %d observation(s) from %s: %s%s", count, where, reason,
                         f" ({detail})" if detail else "")
 
-    def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "") -> int:
+    def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "",
+               unpacked: dict | None = None) -> int:
         """Decode one message and queue its rows for the next flush.
 
         Returns the number of rows queued (0 when the message was rejected). Never
         raises on bad input: every rejection is counted by reason. A single
         observation of plain numbers takes a short path that builds no arrays;
-        its row waits in a list until the flush. O(len(body)).
+        its row waits in a list until the flush. ``unpacked`` is the body already
+        unpacked without error by the caller (unpacking twice is what it saves).
+        O(len(body)).
         """
         self.messages[endpoint] += 1
         route = self._routes.get(topic, _UNSEEN)
@@ -346,7 +350,8 @@ class Engine:
             return 0
         st, labels = route
         try:
-            msg = unpack(body, max_bytes=self._max_bytes, max_rows=self._max_rows)
+            msg = unpacked if type(unpacked) is dict else \
+                unpack(body, max_bytes=self._max_bytes, max_rows=self._max_rows)
             one = single(msg, st.fields)
             dec = interpret(msg, st.fields, max_rows=self._max_rows) if one is None else None
             source, seq = origin(msg)
@@ -407,6 +412,7 @@ class Engine:
                 continue
             st, labels = route
             series = st.series.get(labels)
+            msg = None
             try:
                 msg = unpackb(body)
                 values = msg["values"]
@@ -419,14 +425,14 @@ class Engine:
                 source, seq = msg.get("source"), msg.get("seq")
             except Exception:   # anything unusual: let the general path judge and count it
                 row = series = None
-            if (series is None
-                    or not (type(row) is float or type(row) is int
-                            or (type(row) is tuple and _PLAIN.issuperset(map(type, row))))
+            if (series is None or row is None
+                    or not ((type(row) is float or type(row) is int) if st.dim == 1
+                            else _PLAIN.issuperset(map(type, row)))
                     or (weight is not None and type(weight) is not float
                         and type(weight) is not int)
                     or (when is not None and (type(when) is not float and type(when) is not int
                                               or abs(when - now) > max_skew))):
-                queued += slow(topic, body, now, endpoint)
+                queued += slow(topic, body, now, endpoint, msg)
                 continue
             if source is not None or seq is not None:
                 if type(source) is not str or type(seq) is not int:

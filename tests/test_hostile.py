@@ -217,3 +217,22 @@ def test_atheris_fuzz_of_ingest_finds_nothing(tmp_path):
                        env=dict(os.environ, PYTHONPATH=str(ROOT)))
     assert r.returncode == 0, r.stderr[-3000:]
     assert "Done" in r.stderr
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(messages)
+def test_the_hot_path_judges_fuzzed_messages_exactly_as_the_general_path(batch):
+    # Engine.ingest_many (the daemon's drain) must never raise and must end in the
+    # same state, counts and rejections as feeding the same messages one by one
+    one, many = engine(), engine()
+    for e in (one, many):
+        e.ingest(b"a.x", encode({"v": [1.0, 2.0, 4.0]}), NOW)
+        e.ingest(b"p.z", encode({"x": [1.0, 2.0, 3.0], "y": [2.0, 4.1, 5.9]}), NOW)
+        e.flush(NOW)
+    for topic, body in batch:
+        one.ingest(topic, body, NOW)
+    many.ingest_many(list(batch), NOW)
+    one.flush(NOW)
+    many.flush(NOW)
+    assert state(many) == state(one)
+    assert many.rejected == one.rejected and many.gaps == one.gaps

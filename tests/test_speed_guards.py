@@ -1,0 +1,50 @@
+"""Loose regression guards for the throughput targets of ``sigmad bench``.
+
+Each guard runs a small version of a bench row and asserts half of its target
+(the machine is shared and noisy; ``sigmad bench`` reports the real figures).
+A guard that fails means something collapsed, not that a target was missed by a
+little. The references are measured in the same run, as in the bench.
+"""
+
+from __future__ import annotations
+
+import pytest
+from conftest import need_module
+
+from daemon import bench
+
+
+def test_single_observations_keep_at_least_a_quarter_of_the_bare_loop_rate():
+    row = bench.bench_single(30_000)           # target 0.5 of the bare loop
+    assert row.ratio >= 0.25, row.cells()
+
+
+def test_binary_batches_keep_an_eighth_of_numpy_two_pass_rate():
+    row = bench.bench_batches(1_000)           # target 0.25 of numpy
+    assert row.ratio >= 0.125, row.cells()
+
+
+def test_mixture_stream_keeps_half_the_rate_of_one_scikit_learn_em_iteration():
+    need_module("sklearn")
+    row = bench.bench_mixture(500)             # target 1.0
+    assert row.met is not None and row.ratio >= 0.5, row.cells()
+
+
+def test_a_scrape_of_cached_series_takes_at_most_0_6_of_generate_latest():
+    row = bench.bench_scrape(2_000)            # target 0.3
+    assert row.ratio <= 0.6, row.cells()
+
+
+@pytest.mark.skipif(not bench.os.path.exists("/proc/self/status"), reason="needs /proc")
+def test_memory_per_scalar_series_stays_under_4_kib():
+    per_series, _ = bench.bench_memory(20_000)  # target 2 KiB
+    assert per_series.met is not None and per_series.ratio <= 2.0, per_series.cells()
+
+
+def test_checkpoint_of_20000_series_writes_and_restores_within_the_guard():
+    # target: 100,000 series in 2 s each way (0.4 s per 20,000). The restore does not
+    # meet it yet (see DEVELOPERS.md, "Targets not met"), so this guard is set at
+    # twice today's figure instead of half the target: it catches a collapse only.
+    write, restore = bench.bench_checkpoint(20_000)
+    assert write.ratio * 2.0 <= 0.8, write.cells()          # half the scaled target
+    assert restore.ratio * 2.0 <= 3.0, restore.cells()      # about 2x today's 1.5 s
