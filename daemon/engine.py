@@ -10,7 +10,7 @@ import functools
 import logging
 import math
 from collections import Counter
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import msgpack
 import numpy as np
@@ -26,6 +26,7 @@ log = logging.getLogger("sigmad.engine")
 
 _ROUTE_CACHE_LIMIT = 65_536
 _UNSEEN = object()
+_F8 = np.dtype("<f8")
 _PLAIN = frozenset((float, int))   # value types a single observation may use
 _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
 
@@ -73,7 +74,7 @@ class Series:
     last_update: float = 0.0
     key: tuple = ()                               # (stream, ((label, value), ...)), shared
     pending: list | tuple = ()                    # (values, weights|None, times|None, arrival)
-    rows: list = field(default_factory=list)      # single observations waiting: floats (d = 1)
+    rows: list | tuple = ()                       # single observations waiting: floats (d = 1)
     #                                               or tuples of d, all from one arrival
     extras: list | tuple = ()                     # (row index, weight|None, time|None)
     # () until needed: an idle series should cost as little memory as it can
@@ -100,7 +101,7 @@ class Series:
                 t = np.full(x.shape[0], arrival)
                 t[list(idx)] = [arrival if v is None else v for v in ts]
         self.queue((x, w, t, arrival))
-        self.rows, self.extras = [], ()
+        self.rows, self.extras = (), ()
 
 
 class StreamState:
@@ -379,7 +380,7 @@ class Engine:
                 return 0
             series = st.series[labels] = st.new_series(labels)
         if dec is None:
-            series.rows.append(row[0] if st.dim == 1 else row)
+            series.rows = [*series.rows, row[0] if st.dim == 1 else row]
             if weight is not None or when is not None:
                 series.extras = [*series.extras, (len(series.rows) - 1, weight, when)]
             series.seal_rows(now)
@@ -404,7 +405,8 @@ class Engine:
         max_bytes, max_skew = self._max_bytes, self._max_skew
         last_seq, gaps, slow = self._last_seq, self.gaps, self.ingest
         touched: dict[int, Series] = {}
-        fast = queued = 0
+        fast = queued = batches = batch_rows = 0
+        max_bin = self._max_rows * 8
         for topic, body in frames:
             route = routes.get(topic)
             if route is None or len(body) > max_bytes:
@@ -425,13 +427,19 @@ class Engine:
                 source, seq = msg.get("source"), msg.get("seq")
             except Exception:   # anything unusual: let the general path judge and count it
                 row = series = None
+            # a one-field batch of little-endian float64 (bin), weights likewise, no times
+            binned = (type(row) is bytes and st.dim == 1 and when is None
+                      and 0 < len(row) <= max_bin and len(row) % 8 == 0
+                      and (weight is None or type(weight) is bytes and len(weight) == len(row)))
             if (series is None or row is None
-                    or not ((type(row) is float or type(row) is int) if st.dim == 1
-                            else _PLAIN.issuperset(map(type, row)))
-                    or (weight is not None and type(weight) is not float
-                        and type(weight) is not int)
-                    or (when is not None and (type(when) is not float and type(when) is not int
-                                              or abs(when - now) > max_skew))):
+                    or not binned and (
+                        not ((type(row) is float or type(row) is int) if st.dim == 1
+                             else _PLAIN.issuperset(map(type, row)))
+                        or (weight is not None and type(weight) is not float
+                            and type(weight) is not int)
+                        or (when is not None and (type(when) is not float
+                                                  and type(when) is not int
+                                                  or abs(when - now) > max_skew)))):
                 queued += slow(topic, body, now, endpoint, msg)
                 continue
             if source is not None or seq is not None:
@@ -453,7 +461,19 @@ class Engine:
                 else:
                     queued += slow(topic, body, now, endpoint)
                     continue
+            if binned:
+                series.seal_rows(now)   # keep arrival order
+                x = np.frombuffer(row, _F8).reshape(-1, 1)
+                series.queue((x, None if weight is None else np.frombuffer(weight, _F8),
+                              None, now))
+                touched[id(series)] = series
+                fast += 1
+                batches += 1
+                batch_rows += x.shape[0]
+                continue
             rows = series.rows
+            if not rows:
+                rows = series.rows = []
             rows.append(row)
             if weight is not None or when is not None:
                 if not series.extras:
@@ -465,8 +485,9 @@ class Engine:
             series.seal_rows(now)
         self._dirty.update(touched)
         self.messages[endpoint] += fast
-        self.pending_rows += fast
-        return queued + fast
+        singles = fast - batches
+        self.pending_rows += singles + batch_rows
+        return queued + singles + batch_rows
 
     def _drop_skewed(self, dec, now: float, topic: bytes):
         """The decoded batch without rows whose event time is too far from ``now``."""

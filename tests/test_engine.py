@@ -85,6 +85,10 @@ def test_many_at_once_equals_one_by_one_for_every_message_shape():
         encode({"ms": 6.5}, source="p", seq=1), encode({"ms": 7.5}, source="p", seq=4),
         msgpack.packb({"values": {"ms": True}}), msgpack.packb({"values": {"ms": "x"}}),
         b"\xc1", encode({"ms": -1.0}),
+        encode({"ms": rng.lognormal(1, .5, 4)}, weight=rng.uniform(.5, 2, 4)),
+        encode({"ms": rng.lognormal(1, .5, 4)}, weight=rng.uniform(.5, 2, 3)),
+        encode({"ms": rng.lognormal(1, .5, 4)}, weight=2.0),
+        encode({"ms": [1.0, float("nan"), 3.0]}, weight=[1.0, 1.0, 0.0]),
     ]
     pair = [encode({"a": 1.0, "b": 2.0}), encode(3.0), encode([1.0, 2.0]),
             encode({"a": [1.0, 2.0], "b": [3.0, 4.0]}), encode({"a": 1.0}),
