@@ -133,3 +133,22 @@ def catch_up(half_life: HalfLife | None, clock: float | None,
     if clock is None or t <= clock:
         return (t if clock is None else clock), 1.0
     return t, 2.0 ** (-(t - clock) / half_life.length)
+
+
+def take_batch(state, n: int, times: np.ndarray | None,
+               weights: np.ndarray | None) -> np.ndarray | None:
+    """Age ``state`` to a batch of n rows and count them; return the rows' effective
+    weights (their own weight times their decay; None means all ones).
+
+    ``state`` has ``half_life``, ``clock``, ``count`` and a ``_scale(f)`` method that
+    multiplies its weights by f (and squared weights by f**2): the shape every
+    estimator shares. O(n).
+    """
+    clock, f, rf = advance(state.half_life, state.clock, n, times)
+    if f != 1.0:
+        state._scale(f)
+    state.clock = clock
+    state.count += n
+    if rf is None:
+        return weights
+    return rf if weights is None else weights * rf

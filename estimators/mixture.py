@@ -8,7 +8,7 @@ from typing import Literal
 import numpy as np
 
 from .errors import DomainError, IncompatibleError, ShapeError
-from .forgetting import HalfLife, advance, catch_up
+from .forgetting import HalfLife, catch_up, take_batch
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
 from .mixture_reduce import runnalls_reduce
 from .validation import check_batch
@@ -198,13 +198,9 @@ class Mixture:
         if n == 0:
             return
         y = np.log(x) if self.log else x
-        clock, f, rf = advance(self.half_life, self.clock, n, t)
-        if f != 1.0:
-            self._scale(f)
-        self.clock = clock
-        self.count += n
-        v = np.ones(n) if w is None and rf is None else (rf if w is None else
-                                                           (w if rf is None else w * rf))
+        v = take_batch(self, n, t, w)
+        if v is None:
+            v = np.ones(n)
         vsum = float(v.sum())
         if not vsum > 0.0:        # every row has decayed to nothing
             return

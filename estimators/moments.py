@@ -10,7 +10,7 @@ from typing import Literal
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, advance, catch_up
+from .forgetting import HalfLife, catch_up, take_batch
 from .validation import as_rows, check_batch
 
 Correction = Literal["none", "frequency", "reliability"]
@@ -117,12 +117,7 @@ class Moments:
         n = x.shape[0]
         if n == 0:
             return
-        clock, f, rf = advance(self.half_life, self.clock, n, t)
-        if f != 1.0:
-            self._scale(f)
-        self.clock = clock
-        self.count += n
-        v = w if rf is None else (rf if w is None else w * rf)
+        v = take_batch(self, n, t, w)
         if v is None:
             wb, w2b = float(n), float(n)
             mb = x.mean(axis=0)

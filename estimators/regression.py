@@ -8,7 +8,7 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError, ShapeError
-from .forgetting import HalfLife, advance, catch_up
+from .forgetting import HalfLife, catch_up, take_batch
 from .moments import Correction
 from .validation import as_rows, check_xy
 
@@ -148,13 +148,8 @@ class Regression:
         n = xy.shape[0]
         if n == 0:
             return
-        clock, f, rf = advance(self.half_life, self.clock, n, t)
-        if f != 1.0:
-            self._scale(f)
-        self.clock = clock
-        self.count += n
+        v = take_batch(self, n, t, w)
         self._fit = None
-        v = w if rf is None else (rf if w is None else w * rf)
         if self.has_intercept:
             rows = np.empty((n, self.p + 2))
             rows[:, 0] = 1.0
