@@ -33,6 +33,7 @@ from .state import snapshot_json
 log = logging.getLogger("sigmad")
 
 HOUSEKEEPING_EVERY = 1.0   # seconds between idle-expiry sweeps
+IDLE_FLUSH_ROWS = 10_000   # rows waiting that are folded as soon as the sources go quiet
 
 
 class Daemon:
@@ -169,6 +170,9 @@ class Daemon:
                         by_socket[sock].drain(engine, now)
                         if engine.pending_rows >= cfg.max_batch_rows:
                             self._flush(now)   # keep each flush's arrays bounded
+            if (engine.pending_rows >= IDLE_FLUSH_ROWS and by_socket
+                    and not poller.poll(0)):
+                self._flush(now)   # a backlog waits and the input went quiet: fold it now
             if now >= next_flush or engine.pending_rows >= cfg.max_batch_rows:
                 self._flush(now)
                 if merger is not None:

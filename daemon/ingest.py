@@ -88,7 +88,7 @@ class Source:
                 self._stray(engine, topic, now)
                 break
             size += len(body)
-            if routes.get(topic) is not None and _looks_like_body(body):
+            if body and body[0] & 0xF0 == 0x80 and routes.get(topic) is not None:
                 append((topic, body))
                 continue
             pair = self._realign(engine, topic, body, now)

@@ -21,9 +21,9 @@ def test_single_observations_keep_a_fifth_of_the_bare_loop_rate():
     assert row.ratio >= 0.2, row.cells()
 
 
-def test_binary_batches_keep_a_twelfth_of_numpy_two_pass_rate():
-    row = bench.bench_batches(3_000)           # target 0.25; today about 0.15 at this size
-    assert row.ratio >= 0.08, row.cells()
+def test_binary_batches_keep_an_eighth_of_numpy_two_pass_rate():
+    row = bench.bench_batches(3_000)           # target 0.25
+    assert row.ratio >= 0.125, row.cells()
 
 
 def test_mixture_stream_keeps_half_the_rate_of_one_scikit_learn_em_iteration():
