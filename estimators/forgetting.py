@@ -152,3 +152,11 @@ def take_batch(state, n: int, times: np.ndarray | None,
     if rf is None:
         return weights
     return rf if weights is None else weights * rf
+
+
+def age_to(state, t: float) -> None:
+    """Age ``state`` (the shape ``take_batch`` describes) to event time t, never
+    backwards. Count-based forgetting and none do not move with time. O(state)."""
+    state.clock, f = catch_up(state.half_life, state.clock, float(t))
+    if f != 1.0:
+        state._scale(f)

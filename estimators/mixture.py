@@ -8,10 +8,10 @@ from typing import Literal
 import numpy as np
 
 from .errors import DomainError, IncompatibleError, ShapeError
-from .forgetting import HalfLife, catch_up, take_batch
+from .forgetting import HalfLife, age_to, take_batch
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
 from .mixture_reduce import runnalls_reduce
-from .validation import check_batch
+from .validation import check_batch, check_saved
 
 CovarianceType = Literal["full", "diag"]
 _LOG_2PI = math.log(2.0 * math.pi)
@@ -300,9 +300,7 @@ class Mixture:
 
         With count-based forgetting or none, time alone changes nothing. O(1).
         """
-        self.clock, f = catch_up(self.half_life, self.clock, float(t))
-        if f != 1.0:
-            self._scale(f)
+        age_to(self, t)
         return self
 
     # ----------------------------------------------------------- initialisation
@@ -661,11 +659,7 @@ class Mixture:
     @classmethod
     def from_dict(cls, d: dict) -> Mixture:
         """Rebuild a state from ``to_dict``; raises IncompatibleError on a foreign form."""
-        if not isinstance(d, dict) or d.get("kind") != cls.kind:
-            raise IncompatibleError("kind", d.get("kind") if isinstance(d, dict) else d,
-                                    f'must be "{cls.kind}"')
-        if d.get("version") != cls.version:
-            raise IncompatibleError("version", d.get("version"), f"must be {cls.version}")
+        check_saved(d, cls.kind, cls.version)
         try:
             k, dim = int(d["components"]), int(d["dim"])
             m = cls(k, dim, d["covariance"], bool(d["log"]), HalfLife.from_dict(d["half_life"]),

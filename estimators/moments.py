@@ -10,8 +10,8 @@ from typing import Literal
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, catch_up, take_batch
-from .validation import as_rows, check_batch
+from .forgetting import HalfLife, age_to, take_batch
+from .validation import as_rows, check_batch, check_saved
 
 Correction = Literal["none", "frequency", "reliability"]
 CORRECTIONS: tuple[str, ...] = ("none", "frequency", "reliability")
@@ -164,9 +164,7 @@ class Moments:
 
         With count-based forgetting or none, time alone changes nothing. O(d**2).
         """
-        self.clock, f = catch_up(self.half_life, self.clock, float(t))
-        if f != 1.0:
-            self._scale(f)
+        age_to(self, t)
         return self
 
     def merge(self, other: Moments) -> Moments:
@@ -311,12 +309,7 @@ class Moments:
     @classmethod
     def from_dict(cls, d: dict) -> Moments:
         """Rebuild a state from ``to_dict``; raises IncompatibleError on a foreign form."""
-        if not isinstance(d, dict) or d.get("kind") != cls.kind:
-            raise IncompatibleError("kind", d.get("kind") if isinstance(d, dict) else d,
-                                    f'must be "{cls.kind}"')
-        if d.get("version") != cls.version:
-            raise IncompatibleError("version", d.get("version"),
-                                    f"must be {cls.version}")
+        check_saved(d, cls.kind, cls.version)
         try:
             m = cls(int(d["dim"]), HalfLife.from_dict(d["half_life"]))
             m.clock = None if d["clock"] is None else float(d["clock"])

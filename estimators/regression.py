@@ -8,9 +8,9 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError, ShapeError
-from .forgetting import HalfLife, catch_up, take_batch
+from .forgetting import HalfLife, age_to, take_batch
 from .moments import Correction
-from .validation import as_rows, check_xy
+from .validation import as_rows, check_saved, check_xy
 
 # Past this (column-equilibrated) condition number the solution carries fewer
 # than about four correct digits (Householder QR error grows as cond * eps), so
@@ -190,9 +190,7 @@ class Regression:
 
         With count-based forgetting or none, time alone changes nothing. O(k**2).
         """
-        self.clock, f = catch_up(self.half_life, self.clock, float(t))
-        if f != 1.0:
-            self._scale(f)
+        age_to(self, t)
         return self
 
     def merge(self, other: Regression) -> Regression:
@@ -387,11 +385,7 @@ class Regression:
     @classmethod
     def from_dict(cls, d: dict) -> Regression:
         """Rebuild a state from ``to_dict``; raises IncompatibleError on a foreign form."""
-        if not isinstance(d, dict) or d.get("kind") != cls.kind:
-            raise IncompatibleError("kind", d.get("kind") if isinstance(d, dict) else d,
-                                    f'must be "{cls.kind}"')
-        if d.get("version") != cls.version:
-            raise IncompatibleError("version", d.get("version"), f"must be {cls.version}")
+        check_saved(d, cls.kind, cls.version)
         try:
             r = cls(int(d["p"]), bool(d["intercept"]), HalfLife.from_dict(d["half_life"]))
             r.clock = None if d["clock"] is None else float(d["clock"])

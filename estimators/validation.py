@@ -11,7 +11,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .errors import NonFiniteError, ShapeError, TimeError, WeightError
+from .errors import IncompatibleError, NonFiniteError, ShapeError, TimeError, WeightError
 from .forgetting import check_times
 
 
@@ -177,3 +177,14 @@ def check_xy(x: object, y: object, dim: int, weights: object = None,
             i = int(np.argmin(ok))
             raise WeightError("weights", float(w[i]), f"row {i} must be finite and > 0")
     return Batch(np.column_stack((a, b)), w, check_times(times, n))
+
+
+def check_saved(d: object, kind: str, version: int) -> dict:
+    """A saved state (``to_dict`` form) of the given kind and version, or
+    IncompatibleError naming the field at fault."""
+    if not isinstance(d, dict) or d.get("kind") != kind:
+        raise IncompatibleError("kind", d.get("kind") if isinstance(d, dict) else d,
+                                f'must be "{kind}"')
+    if d.get("version") != version:
+        raise IncompatibleError("version", d.get("version"), f"must be {version}")
+    return d
