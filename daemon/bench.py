@@ -311,6 +311,7 @@ def bench_checkpoint(n_series: int) -> list[Row]:
         Checkpointer,
         encode_checkpoint,
         read_checkpoint,
+        restore_checkpoint,
         stream_definitions,
         write_atomically,
     )
@@ -327,7 +328,7 @@ def bench_checkpoint(n_series: int) -> list[Row]:
         wrote = time.perf_counter() - t0
         fresh = Engine(engine.config)
         t0 = time.perf_counter()
-        dropped = fresh.restore_state(read_checkpoint(path).series, 2000.0)
+        _, dropped = restore_checkpoint(fresh, read_checkpoint(path), 2000.0)
         read = time.perf_counter() - t0
     if dropped or len(fresh.snapshot.series) != n_series:
         raise RuntimeError(f"restore kept {len(fresh.snapshot.series)} of {n_series} series")

@@ -1,12 +1,15 @@
 """Checkpoints: the file format, atomic replacement, restore, faults and SIGKILL.
 
 Restored estimates are compared with numpy on the prefix of the stream that
-the checkpoint says it holds (its observation count identifies the prefix).
+the checkpoint says it holds (its observation count identifies the prefix),
+and with the saved state bit for bit (msgpack packs floats as their float64
+bits, so equal packed bytes mean equal bits).
 """
 
 from __future__ import annotations
 
 import errno
+import hashlib
 import logging
 import math
 import os
@@ -17,28 +20,35 @@ import subprocess
 import sys
 import time
 
+import msgpack
 import numpy as np
 import pytest
 from harness import ROOT, Sigmad, free_port, value
 from prometheus_client import CollectorRegistry
 
 from daemon import checkpoint as cpmod
+from daemon import columns
 from daemon.checkpoint import (
     Checkpointer,
     CheckpointError,
+    collect_columns,
     decode_checkpoint,
     encode_checkpoint,
     move_aside,
     read_checkpoint,
+    restore_checkpoint,
+    stream_definitions,
     write_atomically,
 )
 from daemon.client import Producer
 from daemon.config import parse_config
-from daemon.engine import Engine
+from daemon.engine import Engine, view_of
 from daemon.wire import encode
 from estimators import Moments
 
 NOW = 1.7e9
+# written by the format-1 encoder of commit 43f9e18 from filled_engine()
+FORMAT_1 = ROOT / "tests" / "data" / "checkpoint-format-1.bin"
 
 ENGINE_CONFIG = """
 [[source]]
@@ -70,21 +80,105 @@ def filled_engine(config: str = ENGINE_CONFIG) -> Engine:
     return e
 
 
+def checkpoint_bytes(e: Engine, written_at: float = NOW) -> bytes:
+    return encode_checkpoint(collect_columns(e), stream_definitions(e), written_at)
+
+
+def bits(states: list[dict]) -> bytes:
+    """The states' exact bits (msgpack writes every float as its float64 bits)."""
+    return msgpack.packb(states, use_bin_type=True)
+
+
+def views_repr(e: Engine) -> list[str]:
+    """Every read-out of the engine's snapshot; repr tells NaNs and -0.0 apart exactly."""
+    return [repr(v) for _, v in sorted(e.snapshot.series.items())]
+
+
 # ------------------------------------------------------------------ the format
 def test_round_trip_restores_equal_state(tmp_path):
     e = filled_engine()
     path = tmp_path / "s.state"
-    write_atomically(path, encode_checkpoint(e.export_state(), [], NOW))
+    write_atomically(path, checkpoint_bytes(e))
     cp = read_checkpoint(path)
+    assert cp.version == 2 and cp.written_at == NOW
     fresh = Engine(e.config)
-    assert fresh.restore_state(cp.series, NOW) == []
-    assert fresh.export_state() == e.export_state()
-    assert cp.written_at == NOW
+    assert restore_checkpoint(fresh, cp, NOW) == (3, [])
+    assert bits(fresh.export_state()) == bits(e.export_state())
+    assert views_repr(fresh) == views_repr(e)
+    assert bits(cp.series()) == bits(e.export_state())
+
+
+def test_round_trip_is_exact_for_many_scalar_series_with_odd_states(tmp_path):
+    # decayed-to-nothing, single-row, never-timed and negative-zero states: the bits survive
+    e = Engine(parse_config(MANY_CONFIG))
+    rng = np.random.default_rng(5)
+    for i in range(300):
+        n = int(rng.integers(1, 4))
+        body = {"v": rng.normal(0.0, 10.0 ** rng.integers(-3, 6), n).tolist()}
+        if i % 3 == 0:
+            body = {"values": body, "time": (NOW - 8e4 * rng.random()) if i % 2 else NOW}
+            e.ingest(f"m.{i}".encode(), msgpack.packb(body), NOW)
+        else:
+            e.ingest(f"m.{i}".encode(), encode(body), NOW)
+    e.ingest(b"m.zero", encode({"v": [-0.0]}), NOW)
+    for i in range(40):                  # d = 3: covariances and correlations, some of one row
+        rows = rng.normal(size=(1 + i % 4, 3)) * [1.0, 1e-3, 1e5]
+        e.ingest(f"p.{i}".encode(), encode({"a": rows[:, 0], "b": rows[:, 1],
+                                            "c": rows[:, 2]}), NOW)
+    e.flush(NOW)
+    old = next(s for s in e.all_series() if s.labels == ("0",))
+    old.moments.decay_to(NOW + 1e9)      # every weight decays to nothing: W = 0
+    e.flush(NOW)
+    fresh = Engine(e.config)
+    restored, dropped = restore_checkpoint(fresh, decode_checkpoint(checkpoint_bytes(e)), NOW)
+    assert (restored, dropped) == (341, [])
+    assert bits(fresh.export_state()) == bits(e.export_state())
+    # the bulk read-outs of the restore equal view_of, series by series
+    assert [repr(v) for _, v in sorted(fresh.snapshot.series.items())] == \
+        [repr(view_of(s)) for s in sorted(e.all_series(), key=lambda s: s.key)]
+
+
+MANY_CONFIG = """
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:1"
+
+[[stream]]
+name = "m"
+topic = "m.{i}"
+fields = ["v"]
+half_life = "1h"
+quantiles = [0.5, 0.99]
+outlier_sigmas = [3.0]
+correction = "frequency"
+
+[[stream]]
+name = "pairs"
+topic = "p.{i}"
+fields = ["a", "b", "c"]
+quantiles = [0.1]
+"""
+
+
+def test_a_version_1_file_is_still_read_and_restored_exactly():
+    cp = read_checkpoint(FORMAT_1)
+    assert cp.version == 1 and len(cp.states) == 3 and cp.blocks == []
+    fresh = Engine(parse_config(ENGINE_CONFIG))
+    assert restore_checkpoint(fresh, cp, NOW) == (3, [])
+    assert bits(fresh.export_state()) == bits(cp.states)
+    # reference: numpy's mean of the same draws (seed 3, the first 200 lognormals)
+    api = np.random.default_rng(3).lognormal(3, 0.5, 200)
+    (state,) = [d for d in fresh.export_state() if d["labels"] == ["api"]]
+    assert math.isclose(state["moments"]["mean"][0], float(np.mean(api)), rel_tol=1e-12)
+    # and it is written back in the current format, equal bit for bit
+    again = Engine(fresh.config)
+    restore_checkpoint(again, decode_checkpoint(checkpoint_bytes(fresh)), NOW)
+    assert bits(again.export_state()) == bits(cp.states)
 
 
 @pytest.mark.parametrize("damage", ["flip", "truncate", "magic", "version", "empty"])
 def test_damaged_files_are_refused_with_the_reason(damage):
-    data = bytearray(encode_checkpoint(filled_engine().export_state(), [], NOW))
+    data = bytearray(checkpoint_bytes(filled_engine()))
     if damage == "flip":
         data[len(data) // 2] ^= 0x40
     elif damage == "truncate":
@@ -102,15 +196,101 @@ def test_damaged_files_are_refused_with_the_reason(damage):
     assert words in str(err.value) and "x.state" in str(err.value)
 
 
-def test_a_payload_claiming_a_huge_map_is_refused_at_the_header():
+def with_header(payload: bytes, version: int = cpmod.FORMAT_VERSION) -> bytes:
+    return cpmod._HEADER.pack(cpmod.MAGIC, version, len(payload),
+                              hashlib.sha256(payload).digest()) + payload
+
+
+@pytest.mark.parametrize("version", [1, 2])
+def test_a_payload_claiming_a_huge_map_is_refused_at_the_header(version):
     # a valid header and checksum over a payload whose map32 header claims 2**31 - 1 entries
     payload = b"\xdf" + struct.pack(">I", 2**31 - 1) + b"\xa1k" * 4
-    import hashlib
-
-    data = cpmod._HEADER.pack(cpmod.MAGIC, 1, len(payload),
-                              hashlib.sha256(payload).digest()) + payload
+    data = with_header(payload, version)
     with pytest.raises(CheckpointError, match="not valid msgpack"):
         decode_checkpoint(data)
+
+
+def blocks_file(blocks: list) -> bytes:
+    """A checkpoint with a valid header and checksum around these (maybe damaged) blocks."""
+    return with_header(msgpack.packb({"written_at": NOW, "streams": [], "blocks": blocks,
+                                      "health": {}}, use_bin_type=True))
+
+
+def _set(key, value):
+    return lambda b: b.__setitem__(key, value)
+
+
+BLOCK_DAMAGE = {   # damage to the "lat" block -> the field the refusal names
+    "not a map": (None, "stream block"),
+    "negative count": (_set("n", -1), "n"),
+    "short label column": (lambda b: b["labels"][0].pop(), "labels"),
+    "label not a string": (lambda b: b["labels"][0].__setitem__(0, 7), "labels"),
+    "thresholds not numbers": (_set("thresholds", ["x"]), "thresholds"),
+    "counters not a blob": (_set("observations", [200, 200]), "observations"),
+    "short outlier blob": (_set("outliers", b"\0" * 3), "outliers"),
+    "short weight blob": (lambda b: b["moments"].__setitem__("W", b"\0" * 8), "W"),
+    "moments of another kind": (lambda b: b["moments"].__setitem__("kind", "sums"), "kind"),
+    "moments of another version": (lambda b: b["moments"].__setitem__("version", 9),
+                                   "version"),
+    "clock flags not 0/1": (lambda b: b["moments"].__setitem__("has_clock", b"\2\2"),
+                            "has_clock"),
+    "mixtures missing": (_set("mixture", None), "mixture"),
+    "mixture list too short": (_set("mixture", []), "mixture"),
+}
+
+
+@pytest.mark.parametrize("damage", sorted(BLOCK_DAMAGE))
+def test_a_malformed_stream_block_is_dropped_with_the_field_and_the_rest_restored(damage):
+    e = filled_engine()
+    blocks = [columns.pack(c) for c in collect_columns(e)]
+    assert [b["stream"] for b in blocks] == ["lat", "pair"]
+    hurt, field = BLOCK_DAMAGE[damage]
+    if hurt is None:
+        blocks[0] = 5
+    else:
+        hurt(blocks[0])
+    fresh = Engine(e.config)
+    restored, dropped = restore_checkpoint(fresh, decode_checkpoint(blocks_file(blocks)), NOW)
+    assert restored == 1 and [d["stream"] for d in fresh.export_state()] == ["pair"]
+    assert len(dropped) in (1, 2)           # the block as one, or each of its two series
+    assert all(reason.startswith(f"{field}:") for _, reason in dropped), dropped
+
+
+def test_a_malformed_mixture_drops_only_its_series():
+    e = filled_engine()
+    blocks = [columns.pack(c) for c in collect_columns(e)]
+    blocks[0]["mixture"][0]["pi"] = "not numbers"
+    fresh = Engine(e.config)
+    restored, dropped = restore_checkpoint(fresh, decode_checkpoint(blocks_file(blocks)), NOW)
+    assert restored == 2
+    assert [(where, reason.split(":")[0]) for where, reason in dropped] == \
+        [("lat['api']", "mixture")]
+
+
+@pytest.mark.parametrize("version", [1, 2])
+def test_random_damage_under_a_valid_checksum_never_crashes_restore_or_inspect(version):
+    e = filled_engine()
+    if version == 1:
+        good = FORMAT_1.read_bytes()[cpmod.HEADER_SIZE:]
+    else:
+        good = msgpack.packb({"written_at": NOW, "streams": stream_definitions(e),
+                              "blocks": [columns.pack(c) for c in collect_columns(e)],
+                              "health": {}}, use_bin_type=True)
+    rng = random.Random(7)
+    outcomes = {"refused": 0, "restored": 0}
+    for _ in range(400):
+        payload = bytearray(good)
+        for _ in range(rng.randint(1, 4)):
+            payload[rng.randrange(len(payload))] = rng.randrange(256)
+        try:
+            cp = decode_checkpoint(with_header(bytes(payload), version))
+        except CheckpointError:
+            outcomes["refused"] += 1
+            continue
+        restore_checkpoint(Engine(e.config), cp, NOW)   # drops what is bad, never raises
+        cpmod.describe_checkpoint(cp, "fuzzed")
+        outcomes["restored"] += 1
+    assert outcomes["refused"] > 0 and outcomes["restored"] > 0, outcomes
 
 
 def test_a_file_over_the_size_limit_is_not_read(tmp_path):
@@ -140,18 +320,54 @@ def test_atomic_write_leaves_no_temporary_and_a_private_file(tmp_path):
 
 
 # ------------------------------------------------------------------- restore
-def test_changed_stream_is_dropped_with_a_warning_and_the_rest_restored(tmp_path, caplog):
+@pytest.mark.parametrize("version", [1, 2])
+def test_changed_stream_is_dropped_with_a_warning_and_the_rest_restored(tmp_path, caplog,
+                                                                        version):
     e = filled_engine()
     path = tmp_path / "s.state"
-    write_atomically(path, encode_checkpoint(e.export_state(), [], NOW))
+    if version == 1:       # the same engine's state, written by the format-1 encoder
+        path.write_bytes(FORMAT_1.read_bytes())
+    else:
+        write_atomically(path, checkpoint_bytes(e))
     changed = ENGINE_CONFIG.replace('fields = ["a", "b"]', 'fields = ["a", "b", "c"]')
     fresh = Engine(parse_config(changed))
-    cpr = Checkpointer(str(path), 1.0, CollectorRegistry())
+    reg = CollectorRegistry()
+    cpr = Checkpointer(str(path), 1.0, reg)
     with caplog.at_level(logging.WARNING, "sigmad.checkpoint"):
         cpr.restore(fresh, NOW, strict=False)
     assert {d["stream"] for d in fresh.export_state()} == {"lat"}
     assert len(fresh.export_state()) == 2
     assert any("pair" in r.message and "fields" in r.message for r in caplog.records)
+    assert reg.get_sample_value("sigmad_checkpoint_restored_series") == 2.0
+    assert reg.get_sample_value("sigmad_checkpoint_dropped_series") == 1.0
+
+
+def test_changed_outlier_thresholds_reset_the_counts_and_keep_the_series():
+    config = ENGINE_CONFIG.replace('fields = ["ms"]', 'fields = ["ms"]\noutlier_sigmas = [2.0]')
+    e = filled_engine(config)
+    e.ingest(b"lat.api", encode({"ms": [1e4]}), NOW)      # far out: counted at 2 sigmas
+    e.flush(NOW)
+    assert [s.outliers for s in e.streams[0].series.values()] == [[1], [0]]
+    data = checkpoint_bytes(e)
+    same = Engine(e.config)
+    restore_checkpoint(same, decode_checkpoint(data), NOW)
+    assert [s.outliers for s in same.streams[0].series.values()] == [[1], [0]]
+    moved = Engine(parse_config(config.replace("[2.0]", "[2.5]")))
+    assert restore_checkpoint(moved, decode_checkpoint(data), NOW) == (3, [])
+    assert [s.outliers for s in moved.streams[0].series.values()] == [[0], [0]]
+
+
+def test_series_over_max_series_are_dropped_with_the_reason():
+    e = Engine(parse_config(MANY_CONFIG))
+    for i in range(10):
+        e.ingest(f"m.{i}".encode(), encode({"v": [float(i)]}), NOW)
+    e.flush(NOW)
+    smaller = Engine(parse_config(MANY_CONFIG.replace('topic = "m.{i}"',
+                                                      'topic = "m.{i}"\nmax_series = 4')))
+    restored, dropped = restore_checkpoint(smaller, decode_checkpoint(checkpoint_bytes(e)), NOW)
+    assert restored == 4 and len(dropped) == 6
+    assert all("max_series" in reason for _, reason in dropped)
+    assert len(smaller.snapshot.series) == 4
 
 
 def test_corrupt_checkpoint_is_moved_aside_counted_and_strict_refuses(tmp_path):
@@ -184,15 +400,18 @@ def test_strict_restore_makes_the_cli_exit_2_with_one_sentence(tmp_path):
     assert r.stderr.count("\n") == 1 and "refusing to start" in r.stderr
 
 
-def test_unchanged_series_are_not_serialised_again():
-    e = filled_engine()
-    cpr = Checkpointer("unused", 1.0, CollectorRegistry())
-    first = cpr.collect(e)
-    e.ingest(b"lat.api", encode({"ms": [10.0]}), NOW)
-    e.flush(NOW)
-    second = cpr.collect(e)
-    same = [a is b for a, b in zip(first, second, strict=True)]
-    assert same.count(False) == 1 and len(same) == 3
+def test_what_the_engine_thread_collects_is_not_changed_by_later_updates():
+    # the writer thread packs the columns while the engine thread goes on updating
+    e = filled_engine(ENGINE_CONFIG.replace('fields = ["ms"]',
+                                            'fields = ["ms"]\noutlier_sigmas = [2.0]'))
+    before = bits(e.export_state())
+    collected = Checkpointer("unused", 1.0, CollectorRegistry()).collect(e)
+    for _ in range(3):
+        e.ingest(b"lat.api", encode({"ms": [1e4, 10.0]}), NOW + 5)
+        e.ingest(b"px", encode({"a": [1.0], "b": [9.0]}), NOW + 5)
+        e.flush(NOW + 5)
+    assert bits(e.export_state()) != before
+    assert bits(decode_checkpoint(encode_checkpoint(collected, [], NOW)).series()) == before
 
 
 def test_a_failed_write_is_counted_and_keeps_the_old_file(tmp_path, monkeypatch):
@@ -217,16 +436,17 @@ def test_a_failed_write_is_counted_and_keeps_the_old_file(tmp_path, monkeypatch)
 def test_inspect_prints_series_and_estimates(tmp_path):
     e = filled_engine()
     path = tmp_path / "s.state"
-    write_atomically(path, encode_checkpoint(e.export_state(), [], NOW))
-    r = subprocess.run([sys.executable, "-m", "daemon", "inspect", str(path)],
-                       capture_output=True, text=True, timeout=30,
-                       env=dict(os.environ, PYTHONPATH=str(ROOT)))
-    assert r.returncode == 0, r.stderr
-    assert "3 series" in r.stdout
+    write_atomically(path, checkpoint_bytes(e))
     api = Moments.from_dict(next(d for d in e.export_state()
                                  if d["labels"] == ["api"])["moments"])
-    assert f"{api.mean[0]:.6g}" in r.stdout
-    assert "regression coefficients" in r.stdout and "mixture weights" in r.stdout
+    for state_file, version in ((path, 2), (FORMAT_1, 1)):
+        r = subprocess.run([sys.executable, "-m", "daemon", "inspect", str(state_file)],
+                           capture_output=True, text=True, timeout=30,
+                           env=dict(os.environ, PYTHONPATH=str(ROOT)))
+        assert r.returncode == 0, r.stderr
+        assert f"format {version}," in r.stdout and "3 series" in r.stdout
+        assert f"{api.mean[0]:.6g}" in r.stdout
+        assert "regression coefficients" in r.stdout and "mixture weights" in r.stdout
 
 
 # -------------------------------------------------------- daemon-level faults
@@ -268,7 +488,7 @@ def test_unwritable_state_directory_is_retried_while_ingest_goes_on(tmp_path):
     finally:
         assert d.stop() == 0
     cp = read_checkpoint(missing / "s.state")
-    assert [s["observations"] for s in cp.series] == [3]
+    assert [s["observations"] for s in cp.series()] == [3]
     assert "checkpoint to" in d.log.read_text() and "retrying" in d.log.read_text()
 
 
@@ -316,8 +536,9 @@ def test_sigkill_during_ingest_and_checkpointing_never_tears_the_file(tmp_path):
         d.stop()
         mid_write += any(tmp_path.glob(".s.state.tmp-*"))
         cp = read_checkpoint(state)              # never torn: raises on any damage
-        (main,) = [s for s in cp.series if s["stream"] == "k"] or [None]
-        assert sum(1 for s in cp.series if s["stream"] == "f") == 2000
+        series = cp.series()
+        (main,) = [s for s in series if s["stream"] == "k"] or [None]
+        assert sum(1 for s in series if s["stream"] == "f") == 2000
         if main is None:                         # killed before the first batch arrived
             assert restored == 0
             continue

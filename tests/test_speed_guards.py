@@ -49,9 +49,10 @@ def test_memory_per_scalar_series_stays_under_4_kib():
     assert per_series.met is not None and per_series.ratio <= 2.0, per_series.cells()
 
 
-def test_checkpoint_of_20000_series_writes_and_restores_within_the_guard():
-    # target: 100,000 series in 2 s each way (0.4 s per 20,000). Neither meets it yet,
-    # so the guard is set at twice today's figures (about 0.8 s and 1.4 s here)
+def test_checkpoint_of_20000_series_writes_and_restores_at_half_the_target_rate():
+    # target: 100,000 series in 2 s each way, so 0.4 s per 20,000; the guard is half
+    # that rate, 0.8 s (today about 0.05 s to write and 0.2 s to restore here)
     write, restore = bench.bench_checkpoint(20_000)
-    assert write.ratio * 2.0 <= 1.6, write.cells()
-    assert restore.ratio * 2.0 <= 3.0, restore.cells()
+    wrote, read = write.ratio * 2.0, restore.ratio * 2.0     # ratio = seconds / 2 s budget
+    assert wrote <= 0.8, write.cells()
+    assert read <= 0.8, restore.cells()
