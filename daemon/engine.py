@@ -10,7 +10,9 @@ import functools
 import logging
 import math
 from collections import Counter
+from collections.abc import Sequence
 from dataclasses import dataclass
+from itertools import compress
 
 import msgpack
 import numpy as np
@@ -19,6 +21,7 @@ from estimators import IncompatibleError, Mixture, Moments, Regression, clean_ba
 from estimators.validation import bound_batch
 
 from .config import Config, StreamConfig
+from .layouts import LayoutTable, Readout, learn, runs
 from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
 from .wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 
@@ -29,6 +32,14 @@ _UNSEEN = object()
 _F8 = np.dtype("<f8")
 _PLAIN = frozenset((float, int))   # value types a single observation may use
 _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
+# Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES go message
+# by message, and so does a drain that misfits cut into more than MAX_RUNS blocks.
+# At most LEARN_PER_DRAIN layouts are learnt per drain, and a (topic, length) whose
+# body taught none is not tried again for RETRY_AFTER drains.
+LAYOUT_MIN_MESSAGES = 16
+MAX_RUNS = 16
+LEARN_PER_DRAIN = 64
+RETRY_AFTER = 64
 
 
 def _floats(a) -> tuple[float, ...]:
@@ -38,6 +49,12 @@ def _floats(a) -> tuple[float, ...]:
 def _where(series: Series) -> str:
     """How a series is named in the rejection log."""
     return f"{series.stream.name}{dict(series.key[1]) or ''}"
+
+
+def _route_name(route: tuple) -> str:
+    """How a (stream, labels) route is named in the rejection log."""
+    st, labels = route
+    return f"{st.name}{dict(zip(st.cfg.topic.labels, labels, strict=True)) or ''}"
 
 
 def _concat(chunks: list, time_based: bool):
@@ -285,6 +302,9 @@ class Engine:
         d = config.daemon
         self._max_bytes, self._max_rows = d.max_message_bytes, d.max_batch_rows
         self._max_skew = d.max_clock_skew
+        self._layouts = LayoutTable(max(st.dim for st in self.streams) if self.streams else 1)
+        self._not_learnt: dict[tuple[bytes, int], int] = {}
+        self._drains = 0
         # the hot path unpacks with fixed limits (the general path's are tighter)
         self._unpack_one = functools.partial(
             msgpack.unpackb, use_list=False, max_str_len=d.max_message_bytes,
@@ -391,9 +411,189 @@ class Engine:
         self._dirty[id(series)] = series
         return n
 
-    def ingest_many(self, frames: list[tuple[bytes, bytes]], now: float,
+    def ingest_many(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
                     endpoint: str = "") -> int:
-        """``ingest`` for many messages that arrived together: the daemon's hot path.
+        """``ingest`` for many messages that arrived together (message i is
+        ``[topics[i], bodies[i]]``): the daemon's hot path.
+
+        Bodies that fit a learnt byte layout (:mod:`daemon.layouts`: the same
+        keys, encodings and fixed bytes as an earlier body of their topic and
+        length) are read together with numpy, with no msgpack call and no Python
+        per message; the rest go through :meth:`_ingest_each`. Arrival order is
+        kept: each block of messages that fit no layout is fed in its place, and a
+        drain cut into more than MAX_RUNS blocks is left to ``_ingest_each`` whole.
+        The result equals feeding every message to ``ingest`` in order (rows,
+        rejections, sequence gaps, series created). Returns the rows queued.
+        O(total body length).
+        """
+        n = len(bodies)
+        if n < LAYOUT_MIN_MESSAGES:
+            return self._ingest_each(topics, bodies, now, endpoint)
+        table = self._layouts
+        lengths = np.fromiter(map(len, bodies), np.int64, n)
+        rows = table.find(topics, lengths)
+        missing = rows < 0
+        if missing.any() and self._learn_layouts(topics, bodies, lengths, missing):
+            rows = table.find(topics, lengths)
+            missing = rows < 0
+        if missing.all():
+            return self._ingest_each(topics, bodies, now, endpoint)
+        found = self._read_layouts(topics, bodies, lengths, rows)
+        queued = start = 0
+        misfit = ~found.ok
+        if misfit.any():   # blocks of messages that fit no layout go message by message
+            edges = np.flatnonzero(np.diff(np.r_[0, misfit.view(np.int8), 0])).tolist()
+            if len(edges) > 2 * MAX_RUNS:   # too cut up: one pass, message by message
+                return self._ingest_each(topics, bodies, now, endpoint)
+            for first, stop in zip(edges[::2], edges[1::2], strict=True):
+                if first > start:
+                    queued += self._queue_fitting(found, start, first, now, endpoint)
+                queued += self._ingest_each(topics[first:stop], bodies[first:stop], now,
+                                            endpoint)
+                start = stop
+        if start < n:
+            queued += self._queue_fitting(found, start, n, now, endpoint)
+        return queued
+
+    def _learn_layouts(self, topics: tuple, bodies: tuple, lengths: np.ndarray,
+                       missing: np.ndarray) -> bool:
+        """Learn the layouts of up to LEARN_PER_DRAIN (topic, length) pairs that have
+        none; True if any was learnt. A pair whose body taught no layout is not
+        tried again for RETRY_AFTER drains."""
+        self._drains += 1
+        tried, budget, learnt = self._not_learnt, LEARN_PER_DRAIN, False
+        if len(tried) > _ROUTE_CACHE_LIMIT:
+            tried.clear()
+        m = missing.tolist()
+        keys = zip(compress(topics, m), compress(lengths.tolist(), m), strict=True)
+        for key, body in dict(zip(keys, compress(bodies, m), strict=True)).items():
+            if self._drains - tried.get(key, -RETRY_AFTER) < RETRY_AFTER:
+                continue
+            topic, length = key
+            route = self._routes.get(topic, _UNSEEN)
+            if route is _UNSEEN:
+                route = self.route(topic)
+            layout = None
+            if route is not None and length <= self._max_bytes:
+                layout = learn(body, route[0].fields, self._max_rows)
+            if layout is None:
+                tried[key] = self._drains
+            else:
+                self._layouts.add(topic, layout, route)
+                tried.pop(key, None)
+                learnt = True
+            budget -= 1
+            if not budget:
+                break
+        return learnt
+
+    def _read_layouts(self, topics: tuple, bodies: tuple, lengths: np.ndarray,
+                      rows: np.ndarray) -> Readout:
+        """Read every body that has a layout, one numpy pass per body length; the
+        result is in arrival order (``ok`` False for a body without a fitting one)."""
+        n = len(bodies)
+        table = self._layouts
+        out = Readout(ok=np.zeros(n, bool), values=np.empty((n, table.width)),
+                      weight=np.empty(n), has_weight=np.zeros(n, bool),
+                      time=np.empty(n), has_time=np.zeros(n, bool),
+                      seq=np.zeros(n, np.uint64), has_seq=np.zeros(n, bool),
+                      route=np.zeros(n, np.intp), source=np.zeros(n, np.intp))
+        known = rows >= 0
+        sizes = lengths[known]
+        for size in runs(sizes)[1].tolist():
+            at = np.flatnonzero(known & (lengths == size))
+            whole = at.size == n   # the usual drain: one length, every body known
+            part = table.read(size, rows if whole else rows[at],
+                              bodies if whole else [bodies[i] for i in at.tolist()])
+            for name in Readout.__slots__:
+                if whole:
+                    setattr(out, name, getattr(part, name))
+                else:
+                    getattr(out, name)[at] = getattr(part, name)
+            for i in at[~part.ok].tolist():   # the layout went stale: learn it anew
+                table.forget(topics[i], size)
+        return out
+
+    def _queue_fitting(self, r: Readout, start: int, stop: int, now: float,
+                       endpoint: str) -> int:
+        """Queue messages ``start:stop`` of ``r`` (all fit their layouts), as ``ingest``
+        would one by one: count sequence gaps, reject event times too far from now,
+        create series in order of first arrival (up to max_series). O(messages)
+        in numpy; Python per series touched."""
+        part = slice(start, stop)
+        self.messages[endpoint] += stop - start
+        counted = r.has_seq[part] & (r.source[part] >= 0)
+        if counted.any():
+            self._count_gaps(r.source[part][counted], r.seq[part][counted])
+        route = r.route[part]
+        keep = None
+        if r.has_time[part].any():
+            t = r.time[part]
+            with np.errstate(invalid="ignore"):
+                skewed = r.has_time[part] & np.isfinite(t) & (np.abs(t - now) > self._max_skew)
+            if skewed.any():
+                keep = ~skewed
+                _, ids, _, counts = runs(route[skewed])
+                for rid, count in zip(ids.tolist(), counts.tolist(), strict=True):
+                    self.reject("clock_skew", int(count),
+                                topic=_route_name(self._layouts.routes[rid]), now=now)
+        at = np.arange(start, stop) if keep is None else np.flatnonzero(keep) + start
+        if not at.size:
+            return 0
+        order, ids, starts, counts = runs(r.route[at])
+        queued = 0
+        routes, dirty = self._layouts.routes, self._dirty
+        for rid, begin, count in zip(ids.tolist(), starts.tolist(), counts.tolist(),
+                                     strict=True):   # series in order of first arrival
+            st, labels = routes[rid]
+            rows = at[order[begin:begin + count]]
+            series = st.series.get(labels)
+            if series is None:
+                if len(st.series) >= st.cfg.max_series:
+                    self.reject("series_limit", count, topic=_route_name(routes[rid]),
+                                now=now)
+                    continue
+                series = st.series[labels] = st.new_series(labels)
+            x = r.values[rows, :st.dim]
+            has = r.has_weight[rows]
+            w = None if not has.any() else np.where(has, r.weight[rows], 1.0)
+            has = r.has_time[rows]
+            t = None if not has.any() else np.where(has, r.time[rows], now)
+            series.seal_rows(now)   # keep arrival order
+            series.queue((x, w, t, now))
+            dirty[id(series)] = series
+            queued += rows.size
+        self.pending_rows += queued
+        return queued
+
+    def _count_gaps(self, source: np.ndarray, seq: np.ndarray) -> None:
+        """``_count_gap`` for many (source id, seq) pairs in arrival order, vectorised."""
+        names = self._layouts.sources
+        last_seq = self._last_seq
+        order, ids, starts, counts = runs(source)
+        who = [names[i] for i in ids.tolist()]
+        last = list(map(last_seq.get, who))
+        new = last.count(None)
+        if (new and len(last_seq) + new > _MAX_PRODUCERS) or int(seq.max()) >= 2**53:
+            for i, q in zip(source.tolist(), seq.tolist(), strict=True):  # rare: exact, slow
+                self._count_gap(names[i], q)
+            return
+        q = seq[order].astype(np.int64)
+        prev = np.empty_like(q)
+        prev[1:] = q[:-1]
+        known = np.ones(q.size, bool)
+        prev[starts] = [-1 if v is None else v for v in last]
+        known[starts] = [v is not None for v in last]
+        step = np.where(known & (q > prev + 1), q - prev - 1, 0)
+        lost = np.add.reduceat(step, starts)
+        gaps = self.gaps
+        for k in np.flatnonzero(lost).tolist():
+            gaps[who[k]] += int(lost[k])
+        last_seq.update(zip(who, q[starts + counts - 1].tolist(), strict=True))
+
+    def _ingest_each(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
+                     endpoint: str = "") -> int:
+        """``ingest`` for many messages, one message at a time.
 
         A plain single observation (numbers only, scalar or absent weight and time,
         a valid or absent source/seq, for a series that exists) is queued here with
@@ -407,7 +607,7 @@ class Engine:
         touched: dict[int, Series] = {}
         fast = queued = batches = batch_rows = 0
         max_bin = self._max_rows * 8
-        for topic, body in frames:
+        for topic, body in zip(topics, bodies, strict=True):
             route = routes.get(topic)
             if route is None or len(body) > max_bytes:
                 queued += slow(topic, body, now, endpoint)

@@ -60,8 +60,8 @@ class Source:
         A message is two frames, read with two plain ``recv`` calls. Asking ZeroMQ
         whether more frames follow (RCVMORE) costs more than a receive in pyzmq, so
         it is asked only when a pair does not look like [topic, body]: the first
-        frame is not a topic routed before, or the second does not start like a
-        msgpack map of at most 15 keys. If RCVMORE then says the pair did not end a
+        frame is not a topic that a stream takes, or the second does not start like
+        a msgpack map of at most 15 keys. If RCVMORE then says the pair did not end a
         message, and the pair still does not look like one, its first frame is
         counted as ``bad_frames`` and the pair slides on by one frame. A topic is
         UTF-8 text and never starts like a map, so a good message that follows a
@@ -72,30 +72,39 @@ class Source:
         """
         recv = self.socket.recv
         routes = engine.routes_seen
+        route = engine.route
         noblock = zmq.NOBLOCK
-        frames = []
-        append = frames.append
+        topics: list[bytes] = []
+        bodies: list[bytes] = []
+        add_topic, add_body = topics.append, bodies.append
         n = size = 0
-        while n < limit and size < DRAIN_BYTES:
+        for n in range(1, limit + 1):   # noqa: B007  (n is the count read)
             try:
                 topic = recv(noblock)
             except zmq.Again:
+                n -= 1
                 break
-            n += 1
             try:
                 body = recv(noblock)
             except zmq.Again:   # messages arrive whole: this was a one-frame message
                 self._stray(engine, topic, now)
                 break
+            # a routed topic and a body that starts like a map: a [topic, body] pair
+            # (a topic not seen yet is routed here, so RCVMORE is not asked for it)
+            if body and body[0] & 0xF0 == 0x80 and (routes.get(topic) is not None
+                                                     or route(topic) is not None):
+                add_topic(topic)
+                add_body(body)
+            else:
+                pair = self._realign(engine, topic, body, now)
+                if pair is not None:
+                    add_topic(pair[0])
+                    add_body(pair[1])
             size += len(body)
-            if body and body[0] & 0xF0 == 0x80 and routes.get(topic) is not None:
-                append((topic, body))
-                continue
-            pair = self._realign(engine, topic, body, now)
-            if pair is not None:
-                append(pair)
-        if frames:
-            engine.ingest_many(frames, now, self.label)
+            if size >= DRAIN_BYTES:
+                break
+        if topics:
+            engine.ingest_many(topics, bodies, now, self.label)
         return n
 
     def _realign(self, engine, first: bytes, second: bytes,

@@ -100,7 +100,7 @@ def test_many_at_once_equals_one_by_one_for_every_message_shape():
         e.ingest(b"px.pair", encode({"a": 0.5, "b": 1.5}), now=1000.0)
     for topic, body in frames:
         one.ingest(topic, body, now=1001.0)
-    many.ingest_many(frames, now=1001.0)
+    many.ingest_many(*zip(*frames, strict=True), now=1001.0)
     one.flush(1002.0)
     many.flush(1002.0)
     assert many.snapshot.series == one.snapshot.series

@@ -231,7 +231,7 @@ def test_the_hot_path_judges_fuzzed_messages_exactly_as_the_general_path(batch):
         e.flush(NOW)
     for topic, body in batch:
         one.ingest(topic, body, NOW)
-    many.ingest_many(list(batch), NOW)
+    many.ingest_many(*zip(*batch, strict=True), NOW)
     one.flush(NOW)
     many.flush(NOW)
     assert state(many) == state(one)
