@@ -32,15 +32,15 @@ def _get(name: str, states: Sequence[Moments]) -> list:
 
 
 def _stack(arrays: list[np.ndarray], shape: tuple[int, ...]) -> np.ndarray:
-    """The float64 arrays of a state joined into one of ``shape``: by their buffers
-    (3x faster than numpy.concatenate on 100,000 small arrays here), as a state's
-    arrays are always contiguous float64; by numpy when one is not."""
-    try:
-        flat = np.frombuffer(b"".join(arrays), dtype=np.float64)
-    except (BufferError, TypeError):
-        flat = np.concatenate([np.ravel(a) for a in arrays]).astype(np.float64) if arrays \
-            else np.zeros(0)
-    return flat.reshape(shape)
+    """The float64 arrays of n states (each of shape ``shape[1:]``) joined into one.
+
+    numpy.concatenate, not ``b"".join`` of their buffers: twice as fast here, but
+    numpy keeps a buffer description on every array whose buffer was taken,
+    about 64 bytes per state that would stay until the state next changes.
+    """
+    if not arrays:
+        return np.zeros(shape)
+    return np.concatenate(arrays).astype(np.float64, copy=False).reshape(shape)
 
 
 def _blob(a: np.ndarray, dtype: np.dtype) -> bytes:
