@@ -821,7 +821,7 @@ class Engine:
     def restore_state(self, states: list[dict], now: float) -> list[tuple[str, str]]:
         """Restore series saved by ``export_state``; returns (series, reason) for each one
         dropped because its stream is gone or changed incompatibly. The rest are live."""
-        dropped = []
+        dropped, restored = [], []
         for d in states:
             name = d.get("stream") if isinstance(d, dict) else None
             st = self.stream(name) if isinstance(name, str) else None
@@ -830,16 +830,26 @@ class Engine:
                 dropped.append((where, "its stream is no longer configured"))
                 continue
             try:
-                s = restore_series(st, d)
+                restored.append(restore_series(st, d))
             except IncompatibleError as exc:
                 dropped.append((where, str(exc)))
-                continue
+        refused = self.adopt(restored, [view_of(s) for s in restored], now)
+        return dropped + [(f"{s.stream.name}{list(s.labels)}", "the stream's max_series is "
+                           "reached") for s in refused]
+
+    def adopt(self, series: list[Series], views: list[SeriesView], now: float) -> list[Series]:
+        """Make restored series live with their read-outs (``views[i]`` is ``series[i]``'s);
+        a series replaces a live one of the same labels. Returns the series refused
+        because their stream's max_series is reached. O(len(series) + live series)."""
+        refused = []
+        fresh = {}
+        for s, v in zip(series, views, strict=True):
+            st = s.stream
             if s.labels not in st.series and len(st.series) >= st.cfg.max_series:
-                dropped.append((where, "the stream's max_series is reached"))
+                refused.append(s)
                 continue
             st.series[s.labels] = s
-            self._dirty[id(s)] = s
-        self._views = {**self._views, **{s.key: view_of(s) for s in self._dirty.values()}}
-        self._dirty = {}
+            fresh[s.key] = v
+        self._views = {**self._views, **fresh}
         self.snapshot = self._make_snapshot(now)
-        return dropped
+        return refused
