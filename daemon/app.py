@@ -17,6 +17,7 @@ from prometheus_client import (
 
 from .allocator import keep_freed_blocks
 from .auth import RefusedCollector, stop_authenticator
+from .blas import set_threads as set_blas_threads
 from .checkpoint import Checkpointer
 from .config import Config, ConfigError
 from .engine import Engine
@@ -46,6 +47,7 @@ class Daemon:
 
     def __init__(self, config: Config) -> None:
         keep_freed_blocks()
+        set_blas_threads(1)          # the engine is one thread: BLAS workers only spin
         disable_created_metrics()   # no *_created samples beside our counters
         self.config = config
         self.engine = Engine(config)

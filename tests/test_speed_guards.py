@@ -22,9 +22,9 @@ def _better_of_two(measure, higher_is_better: bool = True):
     return max(rows, key=lambda r: r.ratio if higher_is_better else -r.ratio)
 
 
-def test_single_observations_keep_a_fifth_of_the_bare_loop_rate():
-    row = _better_of_two(lambda: bench.bench_single(100_000))   # target 0.5; today 0.31-0.46
-    assert row.ratio >= 0.2, row.cells()
+def test_single_observations_keep_half_the_target_share_of_the_bare_loop_rate():
+    row = bench.bench_single(50_000)    # target 0.5 (best of 3 interleaved runs each side)
+    assert row.ratio >= 0.25, row.cells()
 
 
 def test_binary_batches_keep_an_eighth_of_numpy_two_pass_rate():
