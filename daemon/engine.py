@@ -34,7 +34,8 @@ _PLAIN = frozenset((float, int))   # value types a single observation may use
 _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
 # Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES go message
 # by message, and so does a drain that misfits cut into more than MAX_RUNS blocks.
-# At most LEARN_PER_DRAIN layouts are learnt per drain, and a (topic, length) whose
+# A drain of n messages learns at most max(LEARN_PER_DRAIN, n // 8) layouts (one
+# costs about what 20 messages do message by message), and a (topic, length) whose
 # body taught none is not tried again for RETRY_AFTER drains.
 LAYOUT_MIN_MESSAGES = 16
 MAX_RUNS = 16
@@ -457,11 +458,12 @@ class Engine:
 
     def _learn_layouts(self, topics: tuple, bodies: tuple, lengths: np.ndarray,
                        missing: np.ndarray) -> bool:
-        """Learn the layouts of up to LEARN_PER_DRAIN (topic, length) pairs that have
-        none; True if any was learnt. A pair whose body taught no layout is not
+        """Learn the layouts of (topic, length) pairs that have none, up to the budget
+        above; True if any was learnt. A pair whose body taught no layout is not
         tried again for RETRY_AFTER drains."""
         self._drains += 1
-        tried, budget, learnt = self._not_learnt, LEARN_PER_DRAIN, False
+        tried, learnt = self._not_learnt, False
+        budget = max(LEARN_PER_DRAIN, len(bodies) // 8)
         if len(tried) > _ROUTE_CACHE_LIMIT:
             tried.clear()
         m = missing.tolist()
@@ -541,12 +543,20 @@ class Engine:
         if not at.size:
             return 0
         order, ids, starts, counts = runs(r.route[at])
+        rows = at[order]   # grouped by series, arrival order kept within each
+        # gathered once for the whole run; each series takes slices (views), so a
+        # series costs a few Python operations, not numpy calls of its own
+        values = r.values[rows]
+        has_w, has_t = r.has_weight[rows], r.has_time[rows]
+        weighted = np.add.reduceat(has_w, starts).tolist() if has_w.any() else None
+        timed = np.add.reduceat(has_t, starts).tolist() if has_t.any() else None
+        weights = np.where(has_w, r.weight[rows], 1.0) if weighted else None
+        times = np.where(has_t, r.time[rows], now) if timed else None
         queued = 0
         routes, dirty = self._layouts.routes, self._dirty
-        for rid, begin, count in zip(ids.tolist(), starts.tolist(), counts.tolist(),
-                                     strict=True):   # series in order of first arrival
-            st, labels = routes[rid]
-            rows = at[order[begin:begin + count]]
+        for k, (rid, begin, count) in enumerate(zip(ids.tolist(), starts.tolist(),
+                                                    counts.tolist(), strict=True)):
+            st, labels = routes[rid]   # series in order of first arrival
             series = st.series.get(labels)
             if series is None:
                 if len(st.series) >= st.cfg.max_series:
@@ -554,15 +564,13 @@ class Engine:
                                 now=now)
                     continue
                 series = st.series[labels] = st.new_series(labels)
-            x = r.values[rows, :st.dim]
-            has = r.has_weight[rows]
-            w = None if not has.any() else np.where(has, r.weight[rows], 1.0)
-            has = r.has_time[rows]
-            t = None if not has.any() else np.where(has, r.time[rows], now)
+            end = begin + count
             series.seal_rows(now)   # keep arrival order
-            series.queue((x, w, t, now))
+            series.queue((values[begin:end, :st.dim],
+                          weights[begin:end] if weighted and weighted[k] else None,
+                          times[begin:end] if timed and timed[k] else None, now))
             dirty[id(series)] = series
-            queued += rows.size
+            queued += count
         self.pending_rows += queued
         return queued
 
