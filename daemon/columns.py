@@ -17,9 +17,9 @@ from typing import NamedTuple
 import numpy as np
 
 from estimators import IncompatibleError, Mixture, Regression
-from estimators.moments_columns import MomentsColumns
+from estimators.moments_columns import MomentsColumns, blob, from_blob
 
-from .engine import Series, StreamState, view_of
+from .engine import Series, StreamState, check_estimators, view_of
 from .snapshot import SeriesView
 
 _LE_F8 = np.dtype("<f8")
@@ -82,22 +82,11 @@ def pack(c: StreamColumns) -> dict:
         "stream": c.stream, "fields": c.fields, "kinds": c.kinds, "thresholds": c.thresholds,
         "n": c.n, "label_count": width,
         "labels": [list(map(itemgetter(k), c.labels)) for k in range(width)],
-        "observations": c.observations.astype(_LE_I8).tobytes(),
-        "version": c.version.astype(_LE_I8).tobytes(),
-        "last_update": c.last_update.astype(_LE_F8).tobytes(),
-        "outliers": c.outliers.astype(_LE_I8).tobytes(),
+        "observations": blob(c.observations, _LE_I8), "version": blob(c.version, _LE_I8),
+        "last_update": blob(c.last_update, _LE_F8), "outliers": blob(c.outliers, _LE_I8),
         "moments": c.moments.to_dict(),
         "regression": c.regression, "mixture": c.mixture,
     }
-
-
-def _blob(d: dict, key: str, dtype: np.dtype, shape: tuple[int, ...]) -> np.ndarray:
-    raw = d.get(key)
-    want = int(np.prod(shape)) * dtype.itemsize
-    if not isinstance(raw, bytes) or len(raw) != want:
-        got = f"{len(raw)} bytes" if isinstance(raw, bytes) else type(raw).__name__
-        raise IncompatibleError(key, got, f"must be a binary blob of {want} bytes")
-    return np.frombuffer(raw, dtype=dtype).astype(dtype.newbyteorder("=")).reshape(shape)
 
 
 def _strings(d: dict, key: str) -> list[str]:
@@ -128,15 +117,16 @@ def unpack(d: object) -> StreamColumns:
     if not isinstance(thresholds, list) or \
             not all(type(t) in (int, float) for t in thresholds):
         raise IncompatibleError("thresholds", thresholds, "must be a list of numbers")
+    # the moments first: their blobs bound n by the payload's size before n sizes anything
+    moments = MomentsColumns.from_dict(d.get("moments"))
+    if moments.n != n:
+        raise IncompatibleError("moments.n", moments.n, f"must equal the series count {n}")
     cols = d.get("labels")
     if not isinstance(cols, list) or len(cols) != width or not all(
             isinstance(col, list) and len(col) == n and all(type(v) is str for v in col)
             for col in cols):
         raise IncompatibleError("labels", f"{name}", f"must be {width} lists of {n} strings")
     labels = list(zip(*cols, strict=True)) if width else [()] * n
-    moments = MomentsColumns.from_dict(d.get("moments"))
-    if moments.n != n:
-        raise IncompatibleError("moments.n", moments.n, f"must equal the series count {n}")
     per_series = []
     for key in ("regression", "mixture"):
         v = d.get(key)
@@ -145,9 +135,9 @@ def unpack(d: object) -> StreamColumns:
         per_series.append(v)
     return StreamColumns(
         name, _strings(d, "fields"), _strings(d, "kinds"), thresholds, labels,
-        _blob(d, "observations", _LE_I8, (n,)), _blob(d, "version", _LE_I8, (n,)),
-        _blob(d, "last_update", _LE_F8, (n,)),
-        _blob(d, "outliers", _LE_I8, (n, len(thresholds))), moments, *per_series)
+        from_blob(d, "observations", _LE_I8, (n,)), from_blob(d, "version", _LE_I8, (n,)),
+        from_blob(d, "last_update", _LE_F8, (n,)),
+        from_blob(d, "outliers", _LE_I8, (n, len(thresholds))), moments, *per_series)
 
 
 def _check_stream(st: StreamState, c: StreamColumns) -> None:
@@ -176,8 +166,9 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     Returns the series and (series, reason) for each one dropped: all of them
     when the stream's definition changed incompatibly (fields, estimator kinds,
     label count, dimension, half-life), one when its regression or mixture
-    state is malformed. Outlier counts are kept only when the thresholds are
-    unchanged, as ``restore_series`` does. O(n d**2).
+    state is malformed or does not fit the stream (``check_estimators``).
+    Outlier counts are kept only when the thresholds are unchanged, as
+    ``restore_series`` does. O(n d**2).
     """
     try:
         _check_stream(st, c)
@@ -197,6 +188,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
         try:
             reg = None if reg is None else Regression.from_dict(reg)
             mix = None if mix is None else Mixture.from_dict(mix)
+            check_estimators(st, reg, mix)
         except IncompatibleError as exc:
             dropped.append((c.where(i), str(exc)))
             continue

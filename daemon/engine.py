@@ -205,6 +205,7 @@ def restore_series(st: StreamState, d: dict) -> Series:
             s.regression = Regression.from_dict(d["regression"])
         if s.mixture is not None:
             s.mixture = Mixture.from_dict(d["mixture"])
+        check_estimators(st, s.regression, s.mixture)
         outliers = [int(c) for c in d["outliers"]]
         if list(d["thresholds"]) == list(cfg.outlier_sigmas):
             s.outliers = outliers
@@ -217,6 +218,25 @@ def restore_series(st: StreamState, d: dict) -> Series:
         raise IncompatibleError("series", type(exc).__name__, f"malformed state: {exc}") \
             from None
     return s
+
+
+def check_estimators(st: StreamState, reg: Regression | None, mix: Mixture | None) -> None:
+    """Raise IncompatibleError when a restored regression or mixture does not fit stream
+    ``st`` as configured now (other terms, components, log or covariance form, or
+    half-life): the first flush would fail on it. O(1)."""
+    cfg = st.cfg
+    if reg is not None:
+        want = (len(cfg.regression.x), cfg.regression.intercept, cfg.half_life)
+        if (reg.p, reg.has_intercept, reg.half_life) != want:
+            raise IncompatibleError("regression", f"{reg.p} terms", "terms, intercept or "
+                                    "half-life differ from the stream's")
+    if mix is not None:
+        m = cfg.mixture
+        want = (m.components, st.dim, m.log, m.covariance, cfg.half_life)
+        if (mix.components, mix.dim, mix.log, mix.covariance, mix.half_life) != want:
+            raise IncompatibleError("mixture", f"{mix.components} components",
+                                    "components, dimension, log, covariance or half-life "
+                                    "differ from the stream's")
 
 
 def view_of(s: Series) -> SeriesView:

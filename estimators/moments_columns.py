@@ -10,6 +10,7 @@ same name on each ``Moments``: the same IEEE operations in the same order.
 
 from __future__ import annotations
 
+import math
 import operator
 from collections.abc import Sequence
 from itertools import repeat
@@ -43,21 +44,21 @@ def _stack(arrays: list[np.ndarray], shape: tuple[int, ...]) -> np.ndarray:
     return np.concatenate(arrays).astype(np.float64, copy=False).reshape(shape)
 
 
-def _blob(a: np.ndarray, dtype: np.dtype) -> bytes:
+def blob(a: np.ndarray, dtype: np.dtype) -> bytes:
+    """The bytes of ``a`` as ``dtype`` (little-endian for saved forms), C order."""
     return np.ascontiguousarray(a, dtype=dtype).tobytes()
 
 
-def _column(d: dict, key: str, dtype: np.dtype, shape: tuple[int, ...]) -> np.ndarray:
-    """A little-endian blob of ``d[key]`` as a writable native array of ``shape``."""
+def from_blob(d: dict, key: str, dtype: np.dtype, shape: tuple[int, ...]) -> np.ndarray:
+    """``d[key]``, a blob of ``dtype`` values, as a writable native array of ``shape``;
+    IncompatibleError naming ``key`` when it is not bytes of exactly that size."""
     raw = d.get(key)
-    if not isinstance(raw, bytes):
-        raise IncompatibleError(key, type(raw).__name__, "must be a binary blob")
-    want = int(np.prod(shape)) * dtype.itemsize
-    if len(raw) != want:
-        raise IncompatibleError(key, f"{len(raw)} bytes", f"must hold {want} bytes "
-                                                          f"(shape {shape})")
-    return np.frombuffer(raw, dtype=dtype).astype(dtype.newbyteorder("="), copy=True) \
-        .reshape(shape)
+    want = math.prod(shape) * dtype.itemsize      # Python ints: a huge claim cannot wrap
+    if not isinstance(raw, bytes) or len(raw) != want:
+        got = f"{len(raw)} bytes" if isinstance(raw, bytes) else type(raw).__name__
+        raise IncompatibleError(key, got, f"must be a binary blob of {want} bytes "
+                                          f"(shape {shape})")
+    return np.frombuffer(raw, dtype=dtype).astype(dtype.newbyteorder("=")).reshape(shape)
 
 
 class MomentsColumns(NamedTuple):
@@ -233,10 +234,10 @@ class MomentsColumns(NamedTuple):
         return {
             "kind": self.kind, "version": self.version, "dim": self.dim, "n": self.n,
             "half_life": None if self.half_life is None else self.half_life.to_dict(),
-            "has_clock": _blob(self.has_clock, np.dtype("u1")),
-            "clock": _blob(self.clock, _LE_F8), "count": _blob(self.count, _LE_I8),
-            "W": _blob(self.W, _LE_F8), "W2": _blob(self.W2, _LE_F8),
-            "mean": _blob(self.mean, _LE_F8), "scatter": _blob(self.scatter, _LE_F8),
+            "has_clock": blob(self.has_clock, np.dtype("u1")),
+            "clock": blob(self.clock, _LE_F8), "count": blob(self.count, _LE_I8),
+            "W": blob(self.W, _LE_F8), "W2": blob(self.W2, _LE_F8),
+            "mean": blob(self.mean, _LE_F8), "scatter": blob(self.scatter, _LE_F8),
         }
 
     @classmethod
@@ -254,10 +255,10 @@ class MomentsColumns(NamedTuple):
         except (KeyError, TypeError, ValueError) as exc:
             raise IncompatibleError("half_life", d.get("half_life"), f"malformed: {exc}") \
                 from None
-        has_clock = _column(d, "has_clock", np.dtype("u1"), (n,))
+        has_clock = from_blob(d, "has_clock", np.dtype("u1"), (n,))
         if (has_clock > 1).any():
             raise IncompatibleError("has_clock", int(has_clock.max()), "must be 0 or 1")
-        return cls(dim, half_life, has_clock.astype(bool), _column(d, "clock", _LE_F8, (n,)),
-                   _column(d, "count", _LE_I8, (n,)), _column(d, "W", _LE_F8, (n,)),
-                   _column(d, "W2", _LE_F8, (n,)), _column(d, "mean", _LE_F8, (n, dim)),
-                   _column(d, "scatter", _LE_F8, (n, dim, dim)))
+        return cls(dim, half_life, has_clock.astype(bool), from_blob(d, "clock", _LE_F8, (n,)),
+                   from_blob(d, "count", _LE_I8, (n,)), from_blob(d, "W", _LE_F8, (n,)),
+                   from_blob(d, "W2", _LE_F8, (n,)), from_blob(d, "mean", _LE_F8, (n, dim)),
+                   from_blob(d, "scatter", _LE_F8, (n, dim, dim)))

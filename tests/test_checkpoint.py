@@ -223,6 +223,7 @@ def _set(key, value):
 BLOCK_DAMAGE = {   # damage to the "lat" block -> the field the refusal names
     "not a map": (None, "stream block"),
     "negative count": (_set("n", -1), "n"),
+    "huge count claimed": (_set("n", 2**62), "moments.n"),
     "short label column": (lambda b: b["labels"][0].pop(), "labels"),
     "label not a string": (lambda b: b["labels"][0].__setitem__(0, 7), "labels"),
     "thresholds not numbers": (_set("thresholds", ["x"]), "thresholds"),
@@ -340,6 +341,39 @@ def test_changed_stream_is_dropped_with_a_warning_and_the_rest_restored(tmp_path
     assert any("pair" in r.message and "fields" in r.message for r in caplog.records)
     assert reg.get_sample_value("sigmad_checkpoint_restored_series") == 2.0
     assert reg.get_sample_value("sigmad_checkpoint_dropped_series") == 1.0
+
+
+ESTIMATOR_CHANGES = {   # a change to the config -> the estimator the refusal names
+    "regression terms": ('x = ["a"]', 'x = ["a", "c"]', "regression"),
+    "regression intercept": ('x = ["a"]', 'x = ["a"], intercept = false', "regression"),
+    "mixture components": ("components = 2", "components = 3", "mixture"),
+    "mixture in log space": ("components = 2", "components = 2, log = true", "mixture"),
+}
+
+
+@pytest.mark.parametrize("version", [1, 2])
+@pytest.mark.parametrize("change", sorted(ESTIMATOR_CHANGES))
+def test_an_estimator_that_no_longer_fits_its_stream_is_dropped_not_run(version, change):
+    # restored as it was, the first flush would have raised in the engine thread
+    config = ENGINE_CONFIG.replace('fields = ["a", "b"]', 'fields = ["a", "b", "c"]')
+    e = Engine(parse_config(config))
+    rng = np.random.default_rng(8)
+    e.ingest(b"lat.api", encode({"ms": rng.lognormal(3, 0.5, 50)}), NOW)
+    e.ingest(b"px", encode({k: rng.normal(size=40) for k in "abc"}), NOW)
+    e.flush(NOW)
+    old, new, kind = ESTIMATOR_CHANGES[change]
+    fresh = Engine(parse_config(config.replace(old, new)))
+    if version == 1:
+        dropped = fresh.restore_state(e.export_state(), NOW)
+    else:
+        restored, dropped = restore_checkpoint(fresh, decode_checkpoint(checkpoint_bytes(e)),
+                                               NOW)
+        assert restored == 1
+    assert [reason.split(":")[0] for _, reason in dropped] == [kind]
+    fresh.ingest(b"lat.api", encode({"ms": rng.lognormal(3, 0.5, 50)}), NOW + 1)
+    fresh.ingest(b"px", encode({k: rng.normal(size=40) for k in "abc"}), NOW + 1)
+    fresh.flush(NOW + 1)
+    assert {d["stream"] for d in fresh.export_state()} == {"lat", "pair"}
 
 
 def test_changed_outlier_thresholds_reset_the_counts_and_keep_the_series():
