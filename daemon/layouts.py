@@ -14,9 +14,10 @@ A layout is learnt only from a body that the general decoder
 (:mod:`daemon.wire`) reads as one observation of plain numbers with valid
 ``source`` and ``seq``, and reading a body that fits a layout gives exactly the
 values, weight, time, source and seq that the general decoder gives: anything
-else (batches, booleans, small integers whose value lives in the type byte, a
-map key the general decoder refuses, an ext type, extra bytes) is simply not
-learnt and takes the general path, which judges it. ``tests/test_layouts.py``
+else (batches, booleans, a negative seq, a map key the general decoder
+refuses, an ext type, extra bytes) is simply not learnt and takes the general
+path, which judges it. A fixint (an integer from -32 to 127, held in its type
+byte) is a slot too: its layout asks only for the type bits. ``tests/test_layouts.py``
 checks that equivalence on fuzzed bodies.
 """
 
@@ -30,13 +31,18 @@ import numpy as np
 from .wire import MAX_SOURCE
 
 # Slot codes: how a number is encoded in a body (big-endian, after its type byte).
-ABSENT, CONST, F8, F4, U1, U2, U4, U8, I1, I2, I4, I8 = range(12)
+ABSENT, F8, F4, U1, U2, U4, U8, I1, I2, I4, I8, FIXPOS, FIXNEG = range(13)
 _SLOT_TYPES = {0xCB: (F8, 8), 0xCA: (F4, 4), 0xCC: (U1, 1), 0xCD: (U2, 2), 0xCE: (U4, 4),
                0xCF: (U8, 8), 0xD0: (I1, 1), 0xD1: (I2, 2), 0xD2: (I4, 4), 0xD3: (I8, 8)}
-_UNSIGNED = (U1, U2, U4, U8)
-_WIDTH = {F8: 8, F4: 4, U1: 1, U2: 2, U4: 4, U8: 8, I1: 1, I2: 2, I4: 4, I8: 8}
-_SIGNED_VIEW = {I1: np.int8, I2: np.int16, I4: np.int32, I8: np.int64}
-_UNSIGNED_VIEW = {I1: np.uint8, I2: np.uint16, I4: np.uint32, I8: np.uint64}
+# A fixint is its own type byte: FIXPOS 0x00-0x7f (the slot starts at the type byte,
+# whose top bit must be 0), FIXNEG 0xe0-0xff (top three bits 1).
+_FIXINT_MASK = {FIXPOS: (0x80, 0x00), FIXNEG: (0xE0, 0xE0)}   # code -> (mask, bits)
+_UNSIGNED = (U1, U2, U4, U8, FIXPOS)
+_WIDTH = {F8: 8, F4: 4, U1: 1, U2: 2, U4: 4, U8: 8, I1: 1, I2: 2, I4: 4, I8: 8, FIXPOS: 1,
+          FIXNEG: 1}
+_SIGNED_VIEW = {I1: np.int8, I2: np.int16, I4: np.int32, I8: np.int64, FIXNEG: np.int8}
+_UNSIGNED_VIEW = {I1: np.uint8, I2: np.uint16, I4: np.uint32, I8: np.uint64,
+                  FIXNEG: np.uint8}
 _MAX_DEPTH = 32          # nesting accepted inside ignored keys
 _TABLE_LIMIT = 65_536    # layouts kept before the table starts afresh
 
@@ -49,16 +55,16 @@ class _NotLearnt(Exception):
 class Layout:
     """The fixed bytes of a body and where its numbers sit.
 
-    ``slots`` holds one ``(offset, code, constant)`` per role: the stream's
-    fields in order, then weight, time and seq. ``offset`` is where the
-    number's payload starts (after its type byte); ``code`` is one of the slot
-    codes above, ``CONST`` for a number held in its type byte (``constant``),
-    ``ABSENT`` for a weight, time or seq the body does not carry.
+    ``slots`` holds one ``(offset, code)`` per role: the stream's fields in
+    order, then weight, time and seq. ``offset`` is where the number's payload
+    starts (after its type byte; at the type byte itself for a fixint);
+    ``code`` is one of the slot codes above, ``ABSENT`` for a weight, time or
+    seq the body does not carry.
     """
 
     fixed: bytes          # the body with every slot payload zeroed
-    mask: bytes           # 0xff where a byte must equal ``fixed``, 0x00 in slots
-    slots: tuple[tuple[int, int, float], ...]
+    mask: bytes           # the bits of each byte that must equal ``fixed``
+    slots: tuple[tuple[int, int], ...]
     source: str | None
 
 
@@ -129,16 +135,18 @@ def _skip(buf: bytes, p: int, max_rows: int, depth: int = 0) -> int:
     raise _NotLearnt   # 0xc1 and the ext types
 
 
-def _number(buf: bytes, p: int, constants: bool) -> tuple[tuple[int, int, float], int]:
-    """A slot for the number at p: a typed payload, or (``constants``) a fixint."""
+def _number(buf: bytes, p: int) -> tuple[tuple[int, int], int]:
+    """A slot for the number at p (a typed payload or a fixint) and where it ends."""
     b = buf[p] if p < len(buf) else 0xC1
     if b in _SLOT_TYPES:
         code, width = _SLOT_TYPES[b]
         if p + 1 + width > len(buf):
             raise _NotLearnt
-        return (p + 1, code, 0.0), p + 1 + width
-    if constants and (b <= 0x7F or b >= 0xE0):
-        return (p, CONST, float(b if b <= 0x7F else b - 0x100)), p + 1
+        return (p + 1, code), p + 1 + width
+    if b <= 0x7F:
+        return (p, FIXPOS), p + 1
+    if b >= 0xE0:
+        return (p, FIXNEG), p + 1
     raise _NotLearnt
 
 
@@ -146,14 +154,13 @@ def learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None:
     """The layout of ``body`` for a stream with ``fields``, or None when the body is not
     one observation of plain numbers (the general decoder then reads or rejects it).
 
-    Values must be typed numbers (a float, or an integer with a payload); weight
-    and time may also be small integers held in the type byte; seq must be an
-    unsigned integer with a payload; source a valid source string. O(len(body)).
+    Values, weight and time must be numbers (floats or integers; not booleans);
+    seq a non-negative integer; source a valid source string. O(len(body)).
 
     >>> from daemon.wire import encode
     >>> lay = learn(encode({"ms": 12.5}, source="a", seq=300), ("ms",), 10)
-    >>> [code for _, code, _ in lay.slots], lay.source     # ms: float64, seq: uint16
-    ([2, 0, 0, 5], 'a')
+    >>> [code for _, code in lay.slots], lay.source     # ms: float64, seq: uint16
+    ([1, 0, 0, 4], 'a')
     """
     try:
         return _learn(body, fields, max_rows)
@@ -162,7 +169,7 @@ def learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None:
 
 
 def _learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None:
-    absent = (0, ABSENT, 0.0)
+    absent = (0, ABSENT)
     found: dict[str, object] = {}
     count, p = _map_header(body, 0)
     for _ in range(count):
@@ -171,14 +178,14 @@ def _learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None
             raise _NotLearnt   # a repeated key: leave the general decoder to judge
         if key == "values":
             if p < len(body) and (0x80 <= body[p] <= 0x8F or body[p] in (0xDE, 0xDF)):
-                inner: dict[str, tuple[int, int, float]] = {}
+                inner: dict[str, tuple[int, int]] = {}
                 n, p = _map_header(body, p)
                 for _ in range(n):
                     name, p = _text(body, p)
                     if name in inner:
                         raise _NotLearnt
                     if name in fields:
-                        inner[name], p = _number(body, p, constants=False)
+                        inner[name], p = _number(body, p)
                     else:
                         inner[name] = absent
                         p = _skip(body, p, max_rows)
@@ -186,7 +193,7 @@ def _learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None
                     raise _NotLearnt
                 found[key] = tuple(inner[f] for f in fields)
             elif len(fields) == 1:
-                slot, p = _number(body, p, constants=False)
+                slot, p = _number(body, p)
                 found[key] = (slot,)
             else:
                 raise _NotLearnt
@@ -194,12 +201,12 @@ def _learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None
             if p < len(body) and body[p] == 0xC0:
                 found[key], p = absent, p + 1
             else:
-                found[key], p = _number(body, p, constants=True)
+                found[key], p = _number(body, p)
         elif key == "seq":
             if p < len(body) and body[p] == 0xC0:
                 found[key], p = absent, p + 1
             else:
-                slot, p = _number(body, p, constants=False)
+                slot, p = _number(body, p)
                 if slot[1] not in _UNSIGNED:
                     raise _NotLearnt
                 found[key] = slot
@@ -220,8 +227,10 @@ def _learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None
              found.get("seq", absent))
     mask = bytearray(b"\xff" * len(body))
     fixed = bytearray(body)
-    for offset, code, _ in slots:
-        if code > CONST:
+    for offset, code in slots:
+        if code in _FIXINT_MASK:
+            mask[offset], fixed[offset] = _FIXINT_MASK[code]
+        elif code != ABSENT:
             width = _WIDTH[code]
             mask[offset:offset + width] = bytes(width)
             fixed[offset:offset + width] = bytes(width)
@@ -247,7 +256,7 @@ class Readout:
             setattr(self, name, value)
 
 
-def _decode(raw: np.ndarray, code: np.ndarray, const: np.ndarray) -> np.ndarray:
+def _decode(raw: np.ndarray, code: np.ndarray) -> np.ndarray:
     """Numbers from left-aligned payload words ``raw`` (native uint64) by slot code."""
     out = np.empty(raw.shape[0])
     uniform = bool((code == code[0]).all())
@@ -263,9 +272,7 @@ def _decode(raw: np.ndarray, code: np.ndarray, const: np.ndarray) -> np.ndarray:
         elif c in _SIGNED_VIEW:
             shifted = (r >> np.uint64(64 - 8 * _WIDTH[c])).astype(_UNSIGNED_VIEW[c])
             out[sel] = shifted.view(_SIGNED_VIEW[c])
-        elif c == CONST:   # a fixint held in the type byte
-            out[sel] = const[sel]
-        else:              # ABSENT: NaN, told apart from a sent NaN by the caller
+        else:   # ABSENT: NaN, told apart from a sent NaN by the caller
             out[sel] = np.nan
     return out
 
@@ -295,7 +302,7 @@ def runs(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarr
 class _Group:
     """Every layout of one body length, stacked for numpy (capacity doubles)."""
 
-    _ARRAYS = ("fixed", "mask", "offset", "code", "const", "route", "source")
+    _ARRAYS = ("fixed", "mask", "offset", "code", "route", "source")
 
     def __init__(self, length: int, roles: int) -> None:
         self.n = 0
@@ -303,7 +310,6 @@ class _Group:
         self.mask = np.zeros((4, length), np.uint8)
         self.offset = np.zeros((4, roles), np.intp)
         self.code = np.zeros((4, roles), np.intp)
-        self.const = np.zeros((4, roles))
         self.route = np.zeros(4, np.intp)
         self.source = np.zeros(4, np.intp)
 
@@ -317,7 +323,7 @@ class _Group:
         i = self.n
         self.fixed[i] = np.frombuffer(layout.fixed, np.uint8)
         self.mask[i] = np.frombuffer(layout.mask, np.uint8)
-        self.offset[i], self.code[i], self.const[i] = zip(*slots, strict=True)
+        self.offset[i], self.code[i] = zip(*slots, strict=True)
         self.route[i], self.source[i] = route, source
         self.n += 1
         return i
@@ -364,7 +370,7 @@ class LayoutTable:
             group = self._groups[length] = _Group(length, self.width + 3)
         d = len(layout.slots) - 3
         # field slots first, padded with ABSENT to the widest stream, then weight, time, seq
-        slots = layout.slots[:d] + ((0, ABSENT, 0.0),) * (self.width - d) + layout.slots[d:]
+        slots = layout.slots[:d] + ((0, ABSENT),) * (self.width - d) + layout.slots[d:]
         route_id = self._route_ids.setdefault(route, len(self.routes))
         if route_id == len(self.routes):
             self.routes.append(route)
@@ -411,7 +417,7 @@ class LayoutTable:
         stride = length + 8
         padded = np.zeros((m, stride), np.uint8)
         padded[:, :length] = raw
-        offset, code, const = g.offset[rows], g.code[rows], g.const[rows]
+        offset, code = g.offset[rows], g.code[rows]
 
         def words(role: int) -> np.ndarray:
             at = offset[:, role]
@@ -426,9 +432,7 @@ class LayoutTable:
             has = c != ABSENT
             if not has.any():
                 return np.full(m, np.nan), has
-            if ((c == CONST) | ~has).all():
-                return np.where(has, const[:, role], np.nan), has
-            return _decode(words(role), c, const[:, role]), has
+            return _decode(words(role), c), has
 
         w = self.width
         values = np.empty((m, w))
@@ -447,4 +451,4 @@ class LayoutTable:
 
 _EIGHT = np.arange(8)
 # right shifts that turn a left-aligned payload word into its unsigned value, by code
-_SHIFT = np.array([0] * 2 + [64 - 8 * _WIDTH[c] for c in range(F8, I8 + 1)], np.uint64)
+_SHIFT = np.array([0] + [64 - 8 * _WIDTH[c] for c in range(F8, FIXNEG + 1)], np.uint64)

@@ -71,7 +71,8 @@ def _packed(obj: dict, **kw) -> bytes:
 
 
 # every number encoding msgpack has for a value, built byte by byte from the spec's
-# type bytes (0xca float32 ... 0xd3 int64, big-endian payloads)
+# type bytes (0xca float32 ... 0xd3 int64, big-endian payloads; fixints 0x00-0x7f
+# and 0xe0-0xff hold the value in the type byte)
 ENCODED_NUMBERS = [
     (b"\xcb" + struct.pack(">d", -12.625), -12.625),
     (b"\xca" + struct.pack(">f", 3.5), 3.5),
@@ -80,6 +81,7 @@ ENCODED_NUMBERS = [
     (b"\xd0\x80", -128.0), (b"\xd1\x80\x00", -32768.0), (b"\xd2\x80\x00\x00\x00", -2.0**31),
     (b"\xd3\x80\x00\x00\x00\x00\x00\x00\x00", -2.0**63),
     (b"\xcb" + struct.pack(">d", math.inf), math.inf),
+    (b"\x00", 0.0), (b"\x05", 5.0), (b"\x7f", 127.0), (b"\xe0", -32.0), (b"\xff", -1.0),
 ]
 
 
@@ -100,6 +102,8 @@ def test_weight_time_source_and_seq_read_as_msgpack_reads_them():
         {"extra": [1, {"k": b"\x00"}, True], "values": {"v": -0.0}, "seq": 2**40,
          "time": float("nan")},
         {"values": {"v": 4.0}, "weight": 0.5, "seq": 2**64 - 1},
+        {"values": {"v": 7}, "weight": 2, "time": -5, "seq": 0},
+        {"values": {"v": -3}, "seq": 127, "source": "s"},
     ]
     for obj in cases:
         body = _packed(obj)
@@ -129,16 +133,31 @@ def test_a_body_of_the_same_length_with_other_fixed_bytes_does_not_fit():
     assert r.ok.tolist() == [True, False]
 
 
+def test_a_fixint_slot_fits_only_fixints_of_its_sign():
+    # one-byte msgpack objects (the spec's type bytes): 0x05 and 0x7f positive fixints,
+    # 0xe0 and 0xff negative fixints, 0xc0 nil, 0xc2 false, 0xc3 true, 0xc1 never used
+    one_byte = [b"\x05", b"\x7f", b"\xe0", b"\xff", b"\xc0", b"\xc2", b"\xc3", b"\xc1"]
+    bodies = [b"\x81\xa6values\x81\xa1v" + x for x in one_byte]
+    for learnt_from, fits in ((b"\x05", [True, True, False, False, False, False, False, False]),
+                              (b"\xff", [False, False, True, True, False, False, False, False])):
+        layout = learn(b"\x81\xa6values\x81\xa1v" + learnt_from, ("v",), 64)
+        table = LayoutTable(1)
+        table.add(b"t", layout, "route")
+        r = table.read(len(bodies[0]), np.zeros(len(bodies), np.intp), bodies)
+        assert r.ok.tolist() == fits
+        assert r.values[r.ok, 0].tolist() == [msgpack.unpackb(b)["values"]["v"]
+                                              for b, f in zip(bodies, fits, strict=True) if f]
+
+
 @pytest.mark.parametrize("body", [
     _packed({"values": {"v": True}}),                      # a bool is not a number here
-    _packed({"values": {"v": 5}}),                         # a fixint: its value is its type
     _packed({"values": {"v": None}}),
     _packed({"values": {"v": "1.0"}}),
     _packed({"values": {"w": 1.0}}),                       # the stream's field is missing
     _packed({"values": {"v": [1.0, 2.0]}}),                # a batch
     _packed({"values": {"v": 1.0}, "weight": True}),
-    _packed({"values": {"v": 1.0}, "seq": 5}),             # a fixint seq
     _packed({"values": {"v": 1.0}, "seq": -200}),          # a signed seq
+    _packed({"values": {"v": 1.0}, "seq": -1}),            # a negative fixint seq
     _packed({"values": {"v": 1.0}, "seq": 1.5}),
     _packed({"values": {"v": 1.0}, "source": ""}),
     _packed({"values": {"v": 1.0}, "source": "a\x00b"}),
