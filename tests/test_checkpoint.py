@@ -526,6 +526,25 @@ def test_unwritable_state_directory_is_retried_while_ingest_goes_on(tmp_path):
     assert "checkpoint to" in d.log.read_text() and "retrying" in d.log.read_text()
 
 
+def test_a_daemon_upgraded_over_a_version_1_file_keeps_its_state(tmp_path):
+    state = tmp_path / "s.state"
+    state.write_bytes(FORMAT_1.read_bytes())
+    config = (f'[daemon]\nhttp = "{{HTTP}}"\nstate_file = "{state}"\n'
+              'checkpoint_every = "1h"\n' + ENGINE_CONFIG.replace(
+                  "tcp://127.0.0.1:1", f"tcp://127.0.0.1:{free_port()}"))
+    d = Sigmad(tmp_path, config)
+    try:
+        parsed = d.metrics()
+        assert value(parsed, "sigmad_checkpoint_restored_series") == 3
+        assert value(parsed, "sigmad_checkpoint_dropped_series") == 0
+        assert value(parsed, "sigmad_series", stream="lat") == 2
+    finally:
+        assert d.stop() == 0                # the final checkpoint: now in format 2
+    cp = read_checkpoint(state)
+    assert cp.version == 2
+    assert bits(cp.series()) == bits(read_checkpoint(FORMAT_1).states)
+
+
 KILLS = 20
 BATCH = 50
 STATS: dict[str, int] = {}
