@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from test_hostile import CONFIG as HOSTILE_CONFIG
 
 from daemon import engine as engine_module
 from daemon.config import parse_config
@@ -24,37 +25,10 @@ from daemon.engine import Engine
 from daemon.layouts import LayoutTable, learn, runs
 from daemon.wire import encode
 
-CONFIG = """
-[daemon]
-max_batch_rows = 64
-max_clock_skew = "1h"
-
-[[source]]
-socket = "pull"
-bind = "tcp://127.0.0.1:1"
-
-[[stream]]
-name = "one"
-topic = "a.{k}"
-fields = ["v"]
-outlier_sigmas = [3.0]
-outlier_warmup = 2
-max_series = 3
-
-[[stream]]
-name = "pair"
-topic = "p.{k}"
-fields = ["x", "y"]
-regression = { y = "y", x = ["x"] }
-half_life = "10s"
-
-[[stream]]
-name = "mix"
-topic = "m"
-fields = ["v"]
-mixture = { components = 2, warmup = 8 }
-half_life = "50 obs"
-"""
+# the hostile-input tests' streams (one field, a regression pair, a count-forgetting
+# mixture), with a series limit on the one-field stream
+CONFIG = HOSTILE_CONFIG.replace("outlier_warmup = 2\n", "outlier_warmup = 2\nmax_series = 3\n")
+assert "max_series = 3" in CONFIG
 NOW = 1.7e9
 
 
