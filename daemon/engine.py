@@ -207,6 +207,9 @@ def restore_series(st: StreamState, d: dict) -> Series:
             s.mixture = Mixture.from_dict(d["mixture"])
         check_estimators(st, s.regression, s.mixture)
         outliers = [int(c) for c in d["outliers"]]
+        if len(outliers) != len(d["thresholds"]):
+            raise IncompatibleError("outliers", outliers,
+                                    f"must hold one count per threshold {d['thresholds']}")
         if list(d["thresholds"]) == list(cfg.outlier_sigmas):
             s.outliers = outliers
         s.observations = int(d["observations"])

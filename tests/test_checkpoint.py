@@ -378,6 +378,21 @@ def test_an_estimator_that_no_longer_fits_its_stream_is_dropped_not_run(version,
     assert {d["stream"] for d in fresh.export_state()} == {"lat", "pair"}
 
 
+def test_a_format_1_series_with_outlier_counts_not_matching_its_thresholds_is_dropped():
+    # the counts would be indexed by threshold at the next flush
+    e = Engine(parse_config(MANY_CONFIG))
+    e.ingest(b"m.1", encode({"v": np.arange(100.0)}), NOW)
+    e.flush(NOW)
+    states = e.export_state()
+    states[0]["outliers"] = []
+    fresh = Engine(e.config)
+    assert [reason.split(":")[0] for _, reason in fresh.restore_state(states, NOW)] == \
+        ["outliers"]
+    fresh.ingest(b"m.1", encode({"v": [1e6]}), NOW)
+    fresh.flush(NOW)
+    assert len(fresh.export_state()) == 1
+
+
 def test_changed_outlier_thresholds_reset_the_counts_and_keep_the_series():
     config = ENGINE_CONFIG.replace('fields = ["ms"]', 'fields = ["ms"]\noutlier_sigmas = [2.0]')
     e = filled_engine(config)
