@@ -408,6 +408,23 @@ def test_changed_outlier_thresholds_reset_the_counts_and_keep_the_series():
     assert [s.outliers for s in moved.streams[0].series.values()] == [[0], [0]]
 
 
+def test_many_dropped_series_are_logged_twenty_by_name_and_the_rest_counted(tmp_path, caplog):
+    e = Engine(parse_config(MANY_CONFIG))
+    for i in range(30):
+        e.ingest(f"m.{i}".encode(), encode({"v": [float(i)]}), NOW)
+    e.flush(NOW)
+    path = tmp_path / "s.state"
+    write_atomically(path, checkpoint_bytes(e))
+    fresh = Engine(parse_config(MANY_CONFIG.replace('fields = ["v"]', 'fields = ["w"]')))
+    reg = CollectorRegistry()
+    with caplog.at_level(logging.WARNING, "sigmad.checkpoint"):
+        Checkpointer(str(path), 1.0, reg).restore(fresh, NOW, strict=False)
+    named = [r for r in caplog.records if "dropped: fields" in r.getMessage()]
+    assert len(named) == 20
+    assert any("10 more series dropped" in r.getMessage() for r in caplog.records)
+    assert reg.get_sample_value("sigmad_checkpoint_dropped_series") == 30.0
+
+
 def test_series_over_max_series_are_dropped_with_the_reason():
     e = Engine(parse_config(MANY_CONFIG))
     for i in range(10):
