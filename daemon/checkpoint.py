@@ -189,7 +189,8 @@ def _restore_blocks(engine: Engine, blocks: list, now: float) -> tuple[int, list
             dropped += [(c.where(k), "its stream is no longer configured") for k in range(c.n)]
             continue
         series, bad = columns.restore(st, c)
-        refused = engine.adopt(series, columns.views(st, series), now)
+        stacked = c.moments if not bad else None   # row i is series i's moments
+        refused = engine.adopt(series, columns.views(st, series, stacked), now)
         dropped += bad + [(f"{s.stream.name}{list(s.labels)}",
                            "the stream's max_series is reached") for s in refused]
         restored += len(series) - len(refused)

@@ -192,22 +192,25 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
         except IncompatibleError as exc:
             dropped.append((c.where(i), str(exc)))
             continue
-        out.append(Series(st, labels, m, reg, mix,
-                          outliers[i] if keep_outliers else [0] * width,
-                          observations=obs, version=version, last_update=last,
-                          key=(name, tuple(zip(label_names, labels, strict=True)))))
+        out.append(Series(st, labels, m, reg, mix,   # positional: keywords cost here
+                          outliers[i] if keep_outliers else [0] * width, obs, version, last,
+                          (name, tuple(zip(label_names, labels, strict=True)))))
     return out, dropped
 
 
-def views(st: StreamState, series: list[Series]) -> list[SeriesView]:
+def views(st: StreamState, series: list[Series],
+          moments: MomentsColumns | None = None) -> list[SeriesView]:
     """``view_of`` every series of ``st`` in ``series``, the moments read-outs of all of
     them at once: equal, bit for bit, to ``[view_of(s) for s in series]``. Streams
-    with a regression or a mixture take ``view_of`` per series. O(n (d**2 + quantiles))."""
+    with a regression or a mixture take ``view_of`` per series. ``moments``, when
+    given, holds the series' moments row for row (a restore has them stacked
+    already). O(n (d**2 + quantiles))."""
     cfg = st.cfg
     if cfg.regression is not None or cfg.mixture is not None or not series:
         return [view_of(s) for s in series]
     n, d, corr = len(series), st.dim, cfg.correction
-    m = MomentsColumns.of([s.moments for s in series], d, cfg.half_life)
+    m = moments if moments is not None and moments.n == n else \
+        MomentsColumns.of([s.moments for s in series], d, cfg.half_life)
     means, variances = m.means().tolist(), m.variances(corr).tolist()
     scatters, effective = m.scatters().tolist(), m.effective_samples().tolist()
     quantiles = m.quantiles(cfg.quantiles, corr).reshape(n, -1).tolist() if cfg.quantiles \
@@ -222,15 +225,13 @@ def views(st: StreamState, series: list[Series]) -> list[SeriesView]:
                        for row in m.correlations()[:, iu, ju].tolist()]
     name, fields, half_life = st.name, st.fields, cfg.half_life
     quantile_at, thresholds = st.quantile_at, cfg.outlier_sigmas
+    # positional, in SeriesView's field order (as view_of): keywords cost 2 us a view
     return [SeriesView(
-        stream=name, labels=s.key[1], fields=fields, version=s.version,
-        observations=s.observations, last_update=s.last_update, clock=s.moments.clock,
-        half_life=half_life, weight_sum=s.moments.W, weight_sq_sum=s.moments.W2,
-        effective_samples=effective[k], mean=tuple(means[k]), variance=tuple(variances[k]),
-        covariance=covariance[k], correlation=correlation[k], quantile_at=quantile_at,
-        quantile_values=tuple(quantiles[k]), thresholds=thresholds,
-        outlier_counts=tuple(s.outliers), mixture=None, regression=None,
-        scatter=tuple(scatters[k])) for k, s in enumerate(series)]
+        name, s.key[1], fields, s.version, s.observations, s.last_update, s.moments.clock,
+        half_life, s.moments.W, s.moments.W2, effective[k], tuple(means[k]),
+        tuple(variances[k]), covariance[k], correlation[k], quantile_at, tuple(quantiles[k]),
+        thresholds, tuple(s.outliers), None, None, tuple(scatters[k]))
+        for k, s in enumerate(series)]
 
 
 def states(c: StreamColumns) -> list[dict]:
