@@ -17,8 +17,8 @@ from itertools import compress
 import msgpack
 import numpy as np
 
-from estimators import IncompatibleError, Mixture, Moments, Regression, clean_batch
-from estimators.validation import bound_batch
+from estimators import IncompatibleError, Mixture, Moments, Regression
+from estimators.validation import screen_batch
 
 from .config import Config, StreamConfig
 from .layouts import LayoutTable, Readout, learn, runs
@@ -721,7 +721,7 @@ class Engine:
         times = dec.times
         if times is None:
             return dec
-        # non-finite times are left for clean_batch to count as bad_time
+        # non-finite times are left for screen_batch to count as bad_time
         with np.errstate(invalid="ignore"):
             skew = np.isfinite(times) & (np.abs(times - now) > self._max_skew)
         if not skew.any():
@@ -765,9 +765,8 @@ class Engine:
         chunks, series.pending = series.pending, ()
         st = series.stream
         x, w, t = _concat(chunks, st.time_based)
-        batch, dropped = clean_batch(x, st.dim, w, t)
-        batch, out_of_bounds = bound_batch(batch, self.config.daemon.max_abs_value)
-        for reason, count in (dropped | out_of_bounds).items():
+        batch, dropped = screen_batch(x, st.dim, w, t, self.config.daemon.max_abs_value)
+        for reason, count in dropped.items():
             self.reject(reason, count, topic=_where(series), now=now)
         x, w, t = batch
         if st.log_mixture and x.shape[0] and not (x > 0.0).all():

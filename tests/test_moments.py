@@ -20,6 +20,7 @@ from estimators import (
     WeightError,
     clean_batch,
 )
+from estimators.validation import bound_batch, screen_batch
 
 # ----------------------------------------------------------------- NIST StRD
 # NIST StRD univariate summary statistics, NumAcc1-NumAcc4. Data regenerated
@@ -377,3 +378,36 @@ def test_clean_batch_drops_bad_rows_and_counts_them_by_reason():
     assert dropped == {"not_finite": 1, "bad_weight": 1, "bad_time": 1}
     np.testing.assert_array_equal(batch.x, [[1.0, 2.0], [7.0, 8.0]])
     np.testing.assert_array_equal(batch.weights, [1.0, 2.0])
+
+
+special = st.sampled_from([np.nan, np.inf, -np.inf, 1e308, -1e101, 0.0, 1e-31, 1e31, -1.0])
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.one_of(st.floats(-1e3, 1e3), special),
+                          st.one_of(st.floats(0.5, 2.0), special),
+                          st.one_of(st.floats(0.0, 10.0), special)), min_size=1, max_size=30),
+       st.booleans(), st.booleans())
+def test_screen_batch_keeps_and_counts_as_clean_then_bound(rows, weighted, timed):
+    # the reference is the two passes it shortens: clean_batch, then bound_batch,
+    # their counts added up ("bad_weight" can come from both)
+    x = np.array([r[0] for r in rows])
+    w = np.array([r[1] for r in rows]) if weighted else None
+    t = np.array([r[2] for r in rows]) if timed else None
+    kept, dropped = screen_batch(x, 1, w, t)
+    ref, counts = clean_batch(x, 1, w, t)
+    ref, bounded = bound_batch(ref)
+    for reason, count in bounded.items():
+        counts[reason] = counts.get(reason, 0) + count
+    assert dropped == counts
+    np.testing.assert_array_equal(kept.x, ref.x)
+    for a, b in ((kept.weights, ref.weights), (kept.times, ref.times)):
+        assert (a is None) == (b is None)
+        if a is not None:
+            np.testing.assert_array_equal(a, b)
+
+
+def test_screen_batch_adds_up_bad_weights_from_both_passes():
+    # one weight is negative (clean_batch), one is 1e31 (bound_batch): two in all
+    kept, dropped = screen_batch(np.array([1.0, 2.0, 3.0]), 1, np.array([1.0, -1.0, 1e31]))
+    assert dropped == {"bad_weight": 2} and kept.x.ravel().tolist() == [1.0]
