@@ -47,15 +47,14 @@ def _floats(a) -> tuple[float, ...]:
     return tuple(np.asarray(a, dtype=np.float64).ravel().tolist())
 
 
-def _where(series: Series) -> str:
-    """How a series is named in the rejection log."""
-    return f"{series.stream.name}{dict(series.key[1]) or ''}"
-
-
 def _route_name(route: tuple) -> str:
-    """How a (stream, labels) route is named in the rejection log."""
+    """How a (stream, labels) route, and so its series, is named in the rejection log."""
     st, labels = route
     return f"{st.name}{dict(zip(st.cfg.topic.labels, labels, strict=True)) or ''}"
+
+
+def _where(series: Series) -> str:
+    return _route_name((series.stream, series.labels))
 
 
 def _concat(chunks: list, time_based: bool):
