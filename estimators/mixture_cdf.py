@@ -51,21 +51,11 @@ def normal_mixture_cdf(x: object, weights: np.ndarray, means: np.ndarray,
     sd = np.asarray(sds, dtype=np.float64)
     with np.errstate(divide="ignore", invalid="ignore"):
         z = (flat - means) / (sd * _SQRT2)
-    z = np.where(sd > 0.0, z, np.where(flat >= means, -np.inf, np.inf))   # point masses
+    # a point mass at m: P(X <= x) is 1 from x = m on, so z = +inf there (-inf below)
+    z = np.where(sd > 0.0, z, np.where(flat >= means, np.inf, -np.inf))
     z = z if upper else -z
     tail = _erfc(z).astype(np.float64) * 0.5
     return (tail @ weights).reshape(xa.shape)
-
-
-def normal_mixture_pdf(x: float, weights: np.ndarray, means: np.ndarray,
-                       sds: np.ndarray) -> float:
-    """Density of the mixture at a scalar x; point masses contribute nothing. O(K)."""
-    live = sds > 0.0
-    if not live.any():
-        return 0.0
-    s = sds[live]
-    z = (x - means[live]) / s
-    return float(weights[live] @ (np.exp(-0.5 * z * z) / s)) * _INV_SQRT_2PI
 
 
 def normal_mixture_quantile(q: float, weights: np.ndarray, means: np.ndarray,
@@ -104,19 +94,37 @@ def normal_mixture_quantile(q: float, weights: np.ndarray, means: np.ndarray,
     1.959964
     """
     z = _STD_NORMAL.inv_cdf(q)
-    comp = means + sds * z
-    lo, hi = float(comp.min()), float(comp.max())
+    # scalar work on K numbers: plain floats and math, about 50x cheaper than numpy here
+    w, m, sd = (np.asarray(a, dtype=np.float64).tolist() for a in (weights, means, sds))
+    comp = [mk + sk * z for mk, sk in zip(m, sd, strict=True)]
+    lo, hi = min(comp), max(comp)
     if lo == hi:
         return lo
     upper = q > 0.5
     target = 1.0 - q if upper else q
+    sign = 1.0 if upper else -1.0         # erfc(+z)/2 is the upper tail, erfc(-z)/2 the lower
+    parts = list(zip(w, m, sd, strict=True))
 
     def excess(x: float) -> float:
         """Increasing in x; zero at the quantile."""
-        p = float(normal_mixture_cdf(x, weights, means, sds, upper=upper))
+        total = 0.0
+        for wk, mk, sk in parts:
+            if sk > 0.0:
+                total += wk * math.erfc(sign * (x - mk) / (sk * _SQRT2))
+            elif (x < mk) if upper else (x >= mk):   # a point mass: all or nothing
+                total += 2.0 * wk
+        p = 0.5 * total
         return target - p if upper else p - target
 
-    x = float(np.clip(weights @ comp, lo, hi))
+    def density(x: float) -> float:
+        total = 0.0
+        for wk, mk, sk in parts:
+            if sk > 0.0:
+                zk = (x - mk) / sk
+                total += wk * math.exp(-0.5 * zk * zk) / sk
+        return total * _INV_SQRT_2PI
+
+    x = min(max(math.fsum(wk * ck for wk, ck in zip(w, comp, strict=True)), lo), hi)
     for _ in range(max_iter):
         g = excess(x)
         if g == 0.0:
@@ -127,7 +135,7 @@ def normal_mixture_quantile(q: float, weights: np.ndarray, means: np.ndarray,
             hi = x
         if abs(g) <= 1e-15 * target or hi - lo <= 4.0 * math.ulp(max(abs(lo), abs(hi))):
             return x
-        dens = normal_mixture_pdf(x, weights, means, sds)
+        dens = density(x)
         step = x - g / dens if dens > 0.0 else math.nan
         x = step if lo < step < hi else 0.5 * (lo + hi)
     return x

@@ -205,6 +205,25 @@ def test_mixture_quantile_inverts_scipy_mixture_cdf_to_1e_9():
                                scipy_mixture_sf(grid, w, mu, sd), rtol=1e-12, atol=1e-300)
 
 
+def test_a_point_mass_holds_all_its_weight_from_its_value_on():
+    # Reference: the definition of a point mass at a (common practice): P(X <= x) is 0
+    # below a and 1 from a on; the normal half's CDF is scipy.stats.norm.cdf.
+    w, mu, sd = np.array([0.5, 0.5]), np.array([0.0, 5.0]), np.array([0.0, 1.0])
+    grid = np.array([-1.0, -1e-300, 0.0, 1e-300, 2.0, 5.0, 9.0])
+    expected = 0.5 * (grid >= 0.0) + 0.5 * stats.norm.cdf(grid, 5.0, 1.0)
+    np.testing.assert_allclose(normal_mixture_cdf(grid, w, mu, sd), expected, rtol=1e-12)
+    np.testing.assert_allclose(normal_mixture_cdf(grid, w, mu, sd, upper=True),
+                               0.5 * (grid < 0.0) + 0.5 * stats.norm.sf(grid, 5.0, 1.0),
+                               rtol=1e-12)
+    # the CDF jumps from about 0 to 0.5 at 0, so the quartile is 0; above it the normal
+    # half: 0.5 + 0.5 Phi(x - 5) = 0.75 at x = 5 + Phi^-1(0.5) = 5 (scipy.stats.norm.ppf)
+    assert normal_mixture_quantile(0.25, w, mu, sd) == pytest.approx(0.0, abs=1e-12)
+    assert normal_mixture_quantile(0.75, w, mu, sd) == pytest.approx(
+        5.0 + stats.norm.ppf(0.5), abs=1e-9)
+    assert normal_mixture_quantile(0.9, w, mu, sd) == pytest.approx(
+        5.0 + stats.norm.ppf(0.8), rel=1e-9)
+
+
 @settings(max_examples=60, deadline=None)
 @given(st.lists(st.tuples(st.floats(0.01, 1.0), st.floats(-50, 50), st.floats(1e-3, 20)),
                 min_size=1, max_size=5),
