@@ -21,7 +21,7 @@ from estimators import IncompatibleError, Mixture, Moments, Regression
 from estimators.validation import screen_batch
 
 from .config import Config, StreamConfig
-from .layouts import LayoutTable, Readout, learn, runs
+from .layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from .snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
 from .wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 
@@ -38,6 +38,9 @@ _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this 
 # costs about what 20 messages do message by message), and a (topic, length) whose
 # body taught none is not tried again for RETRY_AFTER drains.
 LAYOUT_MIN_MESSAGES = 16
+# One-field binary batches of at least this many bytes are read by a learnt
+# BatchLayout (no unpacking) once their (topic, length) has been seen twice.
+BATCH_LAYOUT_BYTES = 256
 MAX_RUNS = 16
 LEARN_PER_DRAIN = 64
 RETRY_AFTER = 64
@@ -323,6 +326,8 @@ class Engine:
         self._max_skew = d.max_clock_skew
         self._layouts = LayoutTable(max(st.dim for st in self.streams) if self.streams else 1)
         self._not_learnt: dict[tuple[bytes, int], int] = {}
+        self._batch_layouts: dict[tuple[bytes, int], BatchLayout] = {}
+        self._batch_lengths_seen: dict[tuple[bytes, int], bool] = {}
         self._drains = 0
         # the hot path unpacks with fixed limits (the general path's are tighter)
         self._unpack_one = functools.partial(
@@ -628,6 +633,7 @@ class Engine:
         rows queued. O(total body length).
         """
         routes, unpackb = self._routes, self._unpack_one
+        batch_layouts = self._batch_layouts
         max_bytes, max_skew = self._max_bytes, self._max_skew
         last_seq, gaps, slow = self._last_seq, self.gaps, self.ingest
         touched: dict[int, Series] = {}
@@ -640,23 +646,31 @@ class Engine:
                 continue
             st, labels = route
             series = st.series.get(labels)
-            msg = None
-            try:
-                msg = unpackb(body)
-                values = msg["values"]
-                if type(values) is dict:
-                    row = values[st.fields[0]] if st.dim == 1 else \
-                        tuple(map(values.__getitem__, st.fields))
-                else:
-                    row = values if st.dim == 1 else None
-                weight, when = msg.get("weight"), msg.get("time")
-                source, seq = msg.get("source"), msg.get("seq")
-            except Exception:   # anything unusual: let the general path judge and count it
-                row = series = None
-            # a one-field batch of little-endian float64 (bin), weights likewise, no times
-            binned = (type(row) is bytes and st.dim == 1 and when is None
-                      and 0 < len(row) <= max_bin and len(row) % 8 == 0
-                      and (weight is None or type(weight) is bytes and len(weight) == len(row)))
+            msg = found = None
+            if len(body) >= BATCH_LAYOUT_BYTES and series is not None and batch_layouts:
+                layout = batch_layouts.get((topic, len(body)))
+                found = None if layout is None else layout.read(body)
+            if found is not None:   # a binary batch read by its layout: no unpacking
+                row, weight, source, seq = found
+                when, binned = None, True
+            else:
+                try:
+                    msg = unpackb(body)
+                    values = msg["values"]
+                    if type(values) is dict:
+                        row = values[st.fields[0]] if st.dim == 1 else \
+                            tuple(map(values.__getitem__, st.fields))
+                    else:
+                        row = values if st.dim == 1 else None
+                    weight, when = msg.get("weight"), msg.get("time")
+                    source, seq = msg.get("source"), msg.get("seq")
+                except Exception:   # anything unusual: the general path judges and counts it
+                    row = series = None
+                # a one-field batch of little-endian float64 (bin), weights likewise, no times
+                binned = (type(row) is bytes and st.dim == 1 and when is None
+                          and 0 < len(row) <= max_bin and len(row) % 8 == 0
+                          and (weight is None or type(weight) is bytes
+                               and len(weight) == len(row)))
             if (series is None or row is None
                     or not binned and (
                         not ((type(row) is float or type(row) is int) if st.dim == 1
@@ -689,9 +703,13 @@ class Engine:
                     continue
             if binned:
                 series.seal_rows(now)   # keep arrival order
-                x = np.frombuffer(row, _F8).reshape(-1, 1)
-                series.queue((x, None if weight is None else np.frombuffer(weight, _F8),
-                              None, now))
+                if found is None:
+                    row = np.frombuffer(row, _F8)
+                    weight = None if weight is None else np.frombuffer(weight, _F8)
+                    if len(body) >= BATCH_LAYOUT_BYTES:
+                        self._learn_batch_layout(topic, body, st.fields[0])
+                x = row.reshape(-1, 1)
+                series.queue((x, weight, None, now))
                 touched[id(series)] = series
                 fast += 1
                 batches += 1
@@ -714,6 +732,24 @@ class Engine:
         singles = fast - batches
         self.pending_rows += singles + batch_rows
         return queued + singles + batch_rows
+
+    def _learn_batch_layout(self, topic: bytes, body: bytes, field: str) -> None:
+        """Learn the layout of a binary batch the second time its (topic, length) is
+        seen (batches of varying length teach nothing and cost one look-up each)."""
+        key = (topic, len(body))
+        if key in self._batch_layouts:
+            return
+        seen = self._batch_lengths_seen
+        if len(seen) >= _ROUTE_CACHE_LIMIT:
+            seen.clear()
+        if seen.pop(key, None) is None:
+            seen[key] = True
+            return
+        layout = learn_batch(body, field, self._max_rows)
+        if layout is not None:
+            if len(self._batch_layouts) >= _ROUTE_CACHE_LIMIT:
+                self._batch_layouts.clear()
+            self._batch_layouts[key] = layout
 
     def _drop_skewed(self, dec, now: float, topic: bytes):
         """The decoded batch without rows whose event time is too far from ``now``."""
