@@ -150,6 +150,24 @@ def _number(buf: bytes, p: int) -> tuple[tuple[int, int], int]:
     raise _NotLearnt
 
 
+def _origin_or_other(body: bytes, p: int, key: str,
+                     max_rows: int) -> tuple[tuple[int, int] | str | None, int]:
+    """The value of a top-level key other than values, weight and time, and where it
+    ends: seq as a slot (an unsigned integer), source as its string (valid as a
+    source), None for nil or for any other key (skipped, kept as fixed bytes)."""
+    if key not in ("seq", "source") or (p < len(body) and body[p] == 0xC0):
+        return None, _skip(body, p, max_rows)
+    if key == "seq":
+        slot, p = _number(body, p)
+        if slot[1] not in _UNSIGNED:
+            raise _NotLearnt
+        return slot, p
+    source, p = _text(body, p)
+    if not (0 < len(source) <= MAX_SOURCE and source.isprintable()):
+        raise _NotLearnt
+    return source, p
+
+
 def learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None:
     """The layout of ``body`` for a stream with ``fields``, or None when the body is not
     one observation of plain numbers (the general decoder then reads or rejects it).
@@ -202,29 +220,12 @@ def _learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None
                 found[key], p = absent, p + 1
             else:
                 found[key], p = _number(body, p)
-        elif key == "seq":
-            if p < len(body) and body[p] == 0xC0:
-                found[key], p = absent, p + 1
-            else:
-                slot, p = _number(body, p)
-                if slot[1] not in _UNSIGNED:
-                    raise _NotLearnt
-                found[key] = slot
-        elif key == "source":
-            if p < len(body) and body[p] == 0xC0:
-                found[key], p = None, p + 1
-            else:
-                source, p = _text(body, p)
-                if not (0 < len(source) <= MAX_SOURCE and source.isprintable()):
-                    raise _NotLearnt
-                found[key] = source
         else:
-            p = _skip(body, p, max_rows)
-            found[key] = None
+            found[key], p = _origin_or_other(body, p, key, max_rows)
     if p != len(body) or "values" not in found:
         raise _NotLearnt
     slots = (*found["values"], found.get("weight", absent), found.get("time", absent),
-             found.get("seq", absent))
+             found.get("seq") or absent)
     mask = bytearray(b"\xff" * len(body))
     fixed = bytearray(body)
     for offset, code in slots:
@@ -346,25 +347,8 @@ def _learn_batch(body: bytes, field: str, max_rows: int) -> BatchLayout | None:
             if p >= len(body) or body[p] != 0xC0:
                 raise _NotLearnt
             found[key], p = None, p + 1
-        elif key == "seq":
-            if p < len(body) and body[p] == 0xC0:
-                found[key], p = None, p + 1
-            else:
-                slot, p = _number(body, p)
-                if slot[1] not in _UNSIGNED:
-                    raise _NotLearnt
-                found[key] = slot
-        elif key == "source":
-            if p < len(body) and body[p] == 0xC0:
-                found[key], p = None, p + 1
-            else:
-                source, p = _text(body, p)
-                if not (0 < len(source) <= MAX_SOURCE and source.isprintable()):
-                    raise _NotLearnt
-                found[key] = source
         else:
-            p = _skip(body, p, max_rows)
-            found[key] = None
+            found[key], p = _origin_or_other(body, p, key, max_rows)
     values, weights = found.get("values"), found.get("weight")
     seq, source = found.get("seq"), found.get("source")
     if p != len(body) or values is None or (seq is None) != (source is None):
