@@ -38,12 +38,12 @@ _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this 
 # costs about what 20 messages do message by message), and a (topic, length) whose
 # body taught none is not tried again for RETRY_AFTER drains.
 LAYOUT_MIN_MESSAGES = 16
-# One-field binary batches of at least this many bytes are read by a learnt
-# BatchLayout (no unpacking) once their (topic, length) has been seen twice.
-BATCH_LAYOUT_BYTES = 256
 MAX_RUNS = 16
 LEARN_PER_DRAIN = 64
 RETRY_AFTER = 64
+# One-field binary batches of at least this many bytes are read by a learnt
+# BatchLayout (no unpacking) once their (topic, length) has been seen twice.
+BATCH_LAYOUT_BYTES = 256
 
 
 def _floats(a) -> tuple[float, ...]:
@@ -495,9 +495,7 @@ class Engine:
             if self._drains - tried.get(key, -RETRY_AFTER) < RETRY_AFTER:
                 continue
             topic, length = key
-            route = self._routes.get(topic, _UNSEEN)
-            if route is _UNSEEN:
-                route = self.route(topic)
+            route = self.route(topic)   # cached after the first time
             layout = None
             if route is not None and length <= self._max_bytes:
                 layout = learn(body, route[0].fields, self._max_rows)
