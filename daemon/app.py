@@ -14,22 +14,21 @@ from prometheus_client import (
     disable_created_metrics,
     generate_latest,
 )
-
-from .allocator import keep_freed_blocks
-from .auth import RefusedCollector, stop_authenticator
-from .blas import set_threads as set_blas_threads
-from .checkpoint import Checkpointer
-from .config import Config, ConfigError
-from .engine import Engine
-from .export import HealthCollector
-from .history import History
-from .http import HttpServer, json_bytes
-from .ingest import Source
-from .merge import Merger, ShardCollector
-from .page import render_page
-from .publish import Publisher
-from .render import SeriesRenderer
-from .state import snapshot_json
+from sigmad.daemon.cluster.merge import Merger, ShardCollector
+from sigmad.daemon.cluster.publish import Publisher
+from sigmad.daemon.config.load import Config, ConfigError
+from sigmad.daemon.engine.allocator import keep_freed_blocks
+from sigmad.daemon.engine.blas import set_threads as set_blas_threads
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.export.api_state import snapshot_json
+from sigmad.daemon.export.metrics_text import SeriesRenderer
+from sigmad.daemon.export.model import HealthCollector
+from sigmad.daemon.ingest.curve_auth import RefusedCollector, stop_authenticator
+from sigmad.daemon.ingest.source import Source
+from sigmad.daemon.storage.checkpoint import Checkpointer
+from sigmad.daemon.web.history import History
+from sigmad.daemon.web.page import render_page
+from sigmad.daemon.web.server import HttpServer, json_bytes
 
 log = logging.getLogger("sigmad")
 

@@ -9,7 +9,7 @@ messages. See :mod:`daemon.wire` for the full table.
 
 Example (the daemon's default PULL source listens on tcp://127.0.0.1:7410)::
 
-    from daemon.client import Producer
+    from sigmad.daemon.client import Producer
 
     with Producer("tcp://127.0.0.1:7410") as p:
         p.send("lat.checkout.eu", {"ms": 12.7})                  # one observation
@@ -31,8 +31,7 @@ from types import TracebackType
 
 import zmq
 import zmq.auth
-
-from .wire import encode
+from sigmad.daemon.ingest.wire import encode
 
 _SOCKETS = {"push": zmq.PUSH, "pub": zmq.PUB}
 

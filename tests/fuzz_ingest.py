@@ -16,9 +16,9 @@ import sys
 import atheris
 
 with atheris.instrument_imports():
-    from daemon.config import parse_config
-    from daemon.engine import Engine
-    from daemon.wire import encode
+    from sigmad.daemon.config.load import parse_config
+    from sigmad.daemon.engine.engine import Engine
+    from sigmad.daemon.ingest.wire import encode
 
 CONFIG = """
 [daemon]

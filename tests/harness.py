@@ -52,7 +52,7 @@ class Sigmad:
         env = dict(os.environ, PYTHONPATH=str(ROOT))
         self._log = open(self.log, "wb")  # noqa: SIM115 (closed in stop)
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "daemon", "run", "--config", str(self.config)],
+            [sys.executable, "-m", "sigmad.daemon", "run", "--config", str(self.config)],
             stdout=self._log, stderr=subprocess.STDOUT, env=env, cwd=tmp)
         self.wait_ready()
 

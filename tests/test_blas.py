@@ -3,10 +3,9 @@
 from __future__ import annotations
 
 import numpy as np
-
-from daemon import blas
-from daemon.app import Daemon
-from daemon.config import parse_config
+import sigmad.daemon.engine.blas as blas
+from sigmad.daemon.app import Daemon
+from sigmad.daemon.config.load import parse_config
 
 
 def test_set_threads_changes_openblas_and_reports_the_count_it_had():

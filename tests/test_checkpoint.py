@@ -23,12 +23,15 @@ import time
 import msgpack
 import numpy as np
 import pytest
+import sigmad.daemon.storage.checkpoint as cpmod
+import sigmad.daemon.storage.columns as columns
 from harness import ROOT, Sigmad, free_port, value
 from prometheus_client import CollectorRegistry
-
-from daemon import checkpoint as cpmod
-from daemon import columns
-from daemon.checkpoint import (
+from sigmad.daemon.client import Producer
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine, view_of
+from sigmad.daemon.ingest.wire import encode
+from sigmad.daemon.storage.checkpoint import (
     Checkpointer,
     CheckpointError,
     collect_columns,
@@ -40,11 +43,7 @@ from daemon.checkpoint import (
     stream_definitions,
     write_atomically,
 )
-from daemon.client import Producer
-from daemon.config import parse_config
-from daemon.engine import Engine, view_of
-from daemon.wire import encode
-from estimators import Moments
+from sigmad.estimators import Moments
 
 NOW = 1.7e9
 # written by the format-1 encoder of commit 43f9e18 from filled_engine()
@@ -461,7 +460,7 @@ def test_strict_restore_makes_the_cli_exit_2_with_one_sentence(tmp_path):
         f'[daemon]\nhttp = "127.0.0.1:{free_port()}"\nstate_file = "s.state"\n'
         'strict_restore = true\n' + ENGINE_CONFIG.replace("tcp://127.0.0.1:1",
                                                           f"tcp://127.0.0.1:{free_port()}"))
-    r = subprocess.run([sys.executable, "-m", "daemon", "run", "--config", "c.toml"],
+    r = subprocess.run([sys.executable, "-m", "sigmad.daemon", "run", "--config", "c.toml"],
                        cwd=tmp_path, capture_output=True, text=True, timeout=30,
                        env=dict(os.environ, PYTHONPATH=str(ROOT)))
     assert r.returncode == 2
@@ -508,7 +507,7 @@ def test_inspect_prints_series_and_estimates(tmp_path):
     api = Moments.from_dict(next(d for d in e.export_state()
                                  if d["labels"] == ["api"])["moments"])
     for state_file, version in ((path, 2), (FORMAT_1, 1)):
-        r = subprocess.run([sys.executable, "-m", "daemon", "inspect", str(state_file)],
+        r = subprocess.run([sys.executable, "-m", "sigmad.daemon", "inspect", str(state_file)],
                            capture_output=True, text=True, timeout=30,
                            env=dict(os.environ, PYTHONPATH=str(ROOT)))
         assert r.returncode == 0, r.stderr

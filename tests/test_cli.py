@@ -11,12 +11,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 from harness import ROOT, Sigmad, free_port, value
-
-from daemon import __version__
+from sigmad.daemon import __version__
 
 
 def test_python_m_daemon_prints_the_version():
-    out = subprocess.run([sys.executable, "-m", "daemon", "--version"],
+    out = subprocess.run([sys.executable, "-m", "sigmad.daemon", "--version"],
                          capture_output=True, text=True, check=True)
     assert out.stdout.strip() == f"sigmad {__version__}"
 
@@ -24,7 +23,7 @@ ENV = dict(os.environ, PYTHONPATH=str(ROOT))
 
 
 def _sigmad(*args: str, stdin: str | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "daemon", *args], input=stdin,
+    return subprocess.run([sys.executable, "-m", "sigmad.daemon", *args], input=stdin,
                           capture_output=True, text=True, env=ENV, timeout=60)
 
 

@@ -12,9 +12,8 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-
-from daemon.client import Producer, default_source
-from daemon.wire import decode
+from sigmad.daemon.client import Producer, default_source
+from sigmad.daemon.ingest.wire import decode
 
 LIMITS = {"max_bytes": 1 << 20, "max_rows": 100_000}
 WAIT_MS = 5000

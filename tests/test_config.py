@@ -8,8 +8,7 @@ import tomllib
 from pathlib import Path
 
 import pytest
-
-from daemon.config import (
+from sigmad.daemon.config.load import (
     RESERVED_LABELS,
     Config,
     ConfigError,
@@ -26,7 +25,7 @@ from daemon.config import (
     parse_duration,
     parse_half_life,
 )
-from estimators import HalfLife
+from sigmad.estimators import HalfLife
 
 ROOT = Path(__file__).resolve().parent.parent
 SOURCE = '[[source]]\nsocket = "pull"\nbind = "tcp://127.0.0.1:7410"\n'
@@ -404,7 +403,7 @@ def test_embedded_default_loads_with_the_documented_layout():
 
 
 def test_embedded_default_is_the_file_in_the_package():
-    text = (ROOT / "daemon" / "default.toml").read_text()
+    text = (ROOT / "daemon" / "config" / "default.toml").read_text()
     assert parse_config(text).streams == default_config().streams
 
 

@@ -7,9 +7,14 @@ import math
 import numpy as np
 import pytest
 from conftest import need_module
-
-from estimators.curves import ellipse, line_band, mixture_density, normal_density, normal_tail_rate
-from estimators.errors import DomainError, ShapeError
+from sigmad.estimators.curves import (
+    ellipse,
+    line_band,
+    mixture_density,
+    normal_density,
+    normal_tail_rate,
+)
+from sigmad.estimators.errors import DomainError, ShapeError
 
 
 def test_normal_density_matches_scipy_norm_pdf():

@@ -17,8 +17,7 @@ import pytest
 import zmq
 from conftest import need_binary, need_module
 from harness import Sigmad, free_port, scrape, value
-
-from daemon.client import Producer
+from sigmad.daemon.client import Producer
 
 CONFIG = """
 [daemon]

@@ -5,10 +5,9 @@ from __future__ import annotations
 import msgpack
 import numpy as np
 import pytest
-
-from daemon.config import parse_config
-from daemon.engine import Engine
-from daemon.wire import encode
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.ingest.wire import encode
 
 CONFIG = """
 [[source]]

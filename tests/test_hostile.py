@@ -22,10 +22,9 @@ from conftest import need_module
 from harness import ROOT
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-
-from daemon.config import parse_config
-from daemon.engine import Engine
-from daemon.wire import encode
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.ingest.wire import encode
 
 CONFIG = """
 [daemon]
@@ -182,7 +181,7 @@ def test_extreme_values_are_rejected_by_reason_or_kept_finite():
 
 
 def test_a_dwarfed_state_keeps_its_share_of_the_mean():
-    from estimators import Moments
+    from sigmad.estimators import Moments
 
     a = Moments()
     a.update([3e99], weights=[1e-60])

@@ -8,10 +8,9 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-
-from daemon.config import parse_config
-from daemon.engine import Engine
-from daemon.ingest import Source
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.ingest.source import Source
 
 CONFIG = """
 [[source]]

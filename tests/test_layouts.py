@@ -15,15 +15,14 @@ import struct
 import msgpack
 import numpy as np
 import pytest
+import sigmad.daemon.engine.engine as engine_module
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.ingest.layouts import LayoutTable, learn, learn_batch, runs
+from sigmad.daemon.ingest.wire import encode
 from test_hostile import CONFIG as HOSTILE_CONFIG
-
-from daemon import engine as engine_module
-from daemon.config import parse_config
-from daemon.engine import Engine
-from daemon.layouts import LayoutTable, learn, learn_batch, runs
-from daemon.wire import encode
 
 # the hostile-input tests' streams (one field, a regression pair, a count-forgetting
 # mixture), with a series limit on the one-field stream

@@ -15,12 +15,11 @@ import pytest
 import zmq
 from fleet import fan_out, start_shards, stop_all
 from harness import Sigmad, free_port, value
-
-from daemon.config import parse_config
-from daemon.engine import Engine, view_of
-from daemon.merge import Merger, StateError, decode_state, pool
-from daemon.publish import STATE_TOPIC, Publisher
-from daemon.wire import encode
+from sigmad.daemon.cluster.merge import Merger, StateError, decode_state, pool
+from sigmad.daemon.cluster.publish import STATE_TOPIC, Publisher
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine, view_of
+from sigmad.daemon.ingest.wire import encode
 
 STREAMS = """
 [[stream]]

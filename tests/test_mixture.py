@@ -16,10 +16,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import optimize, stats
-from sklearn.datasets import load_iris
-from sklearn.mixture import GaussianMixture
-
-from estimators import (
+from sigmad.estimators import (
     DomainError,
     HalfLife,
     IncompatibleError,
@@ -28,8 +25,10 @@ from estimators import (
     ShapeError,
     WeightError,
 )
-from estimators.mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
-from estimators.mixture_reduce import runnalls_reduce
+from sigmad.estimators.mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
+from sigmad.estimators.mixture_reduce import runnalls_reduce
+from sklearn.datasets import load_iris
+from sklearn.mixture import GaussianMixture
 
 
 def stream(mix: Mixture, x: np.ndarray, batch: int) -> Mixture:

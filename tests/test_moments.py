@@ -9,8 +9,7 @@ import pytest
 from conftest import lre, need_module
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from estimators import (
+from sigmad.estimators import (
     HalfLife,
     IncompatibleError,
     Moments,
@@ -20,7 +19,7 @@ from estimators import (
     WeightError,
     clean_batch,
 )
-from estimators.validation import bound_batch, screen_batch
+from sigmad.estimators.validation import bound_batch, screen_batch
 
 # ----------------------------------------------------------------- NIST StRD
 # NIST StRD univariate summary statistics, NumAcc1-NumAcc4. Data regenerated

@@ -11,9 +11,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from conftest import need_module
-
-from estimators import HalfLife, IncompatibleError, Moments
-from estimators.moments_columns import MomentsColumns
+from sigmad.estimators import HalfLife, IncompatibleError, Moments
+from sigmad.estimators.moments_columns import MomentsColumns
 
 HL = HalfLife(50.0)
 

@@ -13,8 +13,7 @@ import time
 
 import numpy as np
 from harness import Sigmad, free_port, scrape, value
-
-from daemon.client import Producer
+from sigmad.daemon.client import Producer
 
 CONFIG = """
 [daemon]

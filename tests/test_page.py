@@ -15,17 +15,16 @@ from html.parser import HTMLParser
 import numpy as np
 import pytest
 from conftest import need_module
-
-from daemon.config import parse_config
-from daemon.engine import Engine
-from daemon.history import History
-from daemon.http import json_bytes
-from daemon.page import CAUTION, render_page, series_id
-from daemon.plots import LEFT, RIGHT, W, density_range
-from daemon.snapshot import Snapshot
-from daemon.state import snapshot_json
-from daemon.svg import num
-from daemon.wire import encode
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.engine.snapshot import Snapshot
+from sigmad.daemon.export.api_state import snapshot_json
+from sigmad.daemon.ingest.wire import encode
+from sigmad.daemon.web.history import History
+from sigmad.daemon.web.page import CAUTION, render_page, series_id
+from sigmad.daemon.web.plots import LEFT, RIGHT, W, density_range
+from sigmad.daemon.web.server import json_bytes
+from sigmad.daemon.web.svg import num
 
 SVG = "{http://www.w3.org/2000/svg}"
 XHTML = "{http://www.w3.org/1999/xhtml}"
@@ -285,8 +284,8 @@ def test_api_state_carries_history_and_fitted_mixture_parameters(rendered):
 
 
 def test_history_follows_at_most_max_series_the_most_recently_updated():
-    from daemon.history import History
-    from daemon.snapshot import Snapshot
+    from sigmad.daemon.engine.snapshot import Snapshot
+    from sigmad.daemon.web.history import History
 
     class _View:
         def __init__(self, t):

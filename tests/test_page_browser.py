@@ -12,11 +12,10 @@ import xml.etree.ElementTree as ET
 
 import numpy as np
 import pytest
+from browser import console_messages, run_chromium
 from conftest import need_binary
 from harness import Sigmad, free_port, scrape
-
-from daemon.client import Producer
-from daemon.screenshot import console_messages, run_chromium
+from sigmad.daemon.client import Producer
 
 BROKEN = (b"<!DOCTYPE html><html><body><p id='x'>hello</p>"
           b"<script>console.error('deliberate-console-error'); notDefinedAnywhere();"

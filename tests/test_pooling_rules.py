@@ -17,11 +17,10 @@ from pathlib import Path
 
 import numpy as np
 from conftest import need_binary
-
-from daemon.config import parse_config
-from daemon.engine import Engine
-from daemon.export import families
-from daemon.wire import encode
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.export.model import families
+from sigmad.daemon.ingest.wire import encode
 
 ROOT = Path(__file__).resolve().parent.parent
 RULES = ROOT / "configs" / "prometheus" / "sigmad-pooling.rules.yml"

@@ -16,8 +16,7 @@ import zmq
 from conftest import need_binary
 from fleet import Prometheus, fan_out, start_shards, stop_all, wait_total
 from harness import Sigmad, free_port, value
-
-from daemon.wire import encode
+from sigmad.daemon.ingest.wire import encode
 
 CONFIG = """
 [daemon]

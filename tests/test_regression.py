@@ -15,9 +15,7 @@ import pytest
 import statsmodels.api as sm
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from statsmodels.datasets import longley, macrodata, stackloss
-
-from estimators import (
+from sigmad.estimators import (
     HalfLife,
     IncompatibleError,
     NonFiniteError,
@@ -26,6 +24,7 @@ from estimators import (
     TimeError,
     WeightError,
 )
+from statsmodels.datasets import longley, macrodata, stackloss
 
 
 def lre(estimate, certified) -> np.ndarray:

@@ -3,14 +3,13 @@
 from __future__ import annotations
 
 import numpy as np
+import sigmad.daemon.export.metrics_text as render
 from harness import samples
 from prometheus_client import CollectorRegistry, generate_latest
-
-import daemon.render as render
-from daemon.config import parse_config
-from daemon.engine import Engine
-from daemon.export import families
-from daemon.wire import encode
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.export.model import families
+from sigmad.daemon.ingest.wire import encode
 
 CONFIG = """
 [[source]]

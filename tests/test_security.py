@@ -17,8 +17,7 @@ import urllib.request
 import pytest
 from conftest import need_binary
 from harness import ROOT, Sigmad, free_port, samples, value
-
-from daemon.client import Producer
+from sigmad.daemon.client import Producer
 
 CURVE_CONFIG = """
 [daemon]
@@ -39,7 +38,7 @@ fields = ["v"]
 
 
 def keygen(directory, name: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "daemon", "keygen", str(directory),
+    return subprocess.run([sys.executable, "-m", "sigmad.daemon", "keygen", str(directory),
                            "--name", name], capture_output=True, text=True,
                           env=dict(os.environ, PYTHONPATH=str(ROOT)), timeout=30)
 

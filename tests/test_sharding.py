@@ -17,9 +17,8 @@ import numpy as np
 import pytest
 from fleet import fan_out, start_shards, stop_all, total, wait_total
 from harness import Sigmad, free_port, value
-
-from daemon.client import Producer
-from daemon.wire import encode
+from sigmad.daemon.client import Producer
+from sigmad.daemon.ingest.wire import encode
 
 STREAM = """
 [[stream]]

@@ -11,9 +11,8 @@ little. The references are measured in the same run, as in the bench.
 from __future__ import annotations
 
 import pytest
+import sigmad.daemon.bench.suite as bench
 from conftest import need_module
-
-from daemon import bench
 
 
 def _better_of_two(measure, higher_is_better: bool = True):

@@ -6,8 +6,7 @@ model's [a-zA-Z_][a-zA-Z0-9_]*."""
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from daemon.topics import MAX_LABEL_VALUE, TopicError, TopicTemplate
+from sigmad.daemon.ingest.topics import MAX_LABEL_VALUE, TopicError, TopicTemplate
 
 
 def test_labels_and_prefix_of_a_two_label_template():

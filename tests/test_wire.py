@@ -19,9 +19,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from daemon.wire import REASONS, Decoded, WireError, decode, encode
-from estimators import clean_batch
+from sigmad.daemon.ingest.wire import REASONS, Decoded, WireError, decode, encode
+from sigmad.estimators import clean_batch
 
 LIMITS = {"max_bytes": 1 << 20, "max_rows": 1000}
 ONE = ("ms",)

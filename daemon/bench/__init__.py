@@ -1,0 +1,1 @@
+"""``sigmad bench``: end-to-end throughput and memory against their references."""

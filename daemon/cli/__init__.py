@@ -1,0 +1,2 @@
+"""The command line: ``sigmad run``, ``send``, ``demo``, ``check-config``, ``inspect``,
+``keygen`` and ``bench``."""

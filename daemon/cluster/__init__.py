@@ -1,0 +1,1 @@
+"""Scale-out: a shard publishes its state snapshots; a merger pools them."""

@@ -1,0 +1,1 @@
+"""Configuration: TOML validated into frozen dataclasses, units, the embedded default."""

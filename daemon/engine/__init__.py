@@ -1,0 +1,1 @@
+"""The engine thread: series, routing, micro-batches, estimator updates, snapshots."""

@@ -1,0 +1,122 @@
+"""The immutable read model: what readers (HTTP, checkpoints, publishers) see.
+
+The engine thread builds a new ``Snapshot`` after each flush and swaps it in by
+reference; a reader holds whichever one it picked up, so it never sees a
+half-applied update and never takes a lock.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from sigmad.estimators import HalfLife
+from sigmad.estimators.forgetting import catch_up
+
+
+@dataclass(frozen=True, slots=True)
+class MixtureView:
+    warm: bool
+    weights: tuple[float, ...]
+    means: tuple[tuple[float, ...], ...]      # (K, d), in the stream's units
+    stddevs: tuple[tuple[float, ...], ...]    # (K, d), in the stream's units
+    average_loglik: float
+    reseeds: int
+    log: bool
+    # in the fitted space (of log x when ``log``, else equal to means/stddevs): to draw densities
+    log_means: tuple[tuple[float, ...], ...] = ()
+    log_stddevs: tuple[tuple[float, ...], ...] = ()
+
+
+@dataclass(frozen=True, slots=True)
+class RegressionView:
+    ok: bool
+    terms: tuple[str, ...]                    # x field names, then "intercept" when fitted
+    coefficients: tuple[float, ...]
+    stderr: tuple[float, ...]
+    residual_stddev: float
+    residual_dof: float
+    r_squared: float
+    y: str = ""                               # the response field
+
+
+@dataclass(frozen=True, slots=True)
+class SeriesView:
+    stream: str
+    labels: tuple[tuple[str, str], ...]       # template labels, in template order
+    fields: tuple[str, ...]
+    version: int                              # bumps on every update of the series
+    observations: int
+    last_update: float                        # wall-clock seconds of the last accepted row
+    clock: float | None                       # the estimators' event-time clock
+    half_life: HalfLife | None
+    weight_sum: float                         # as of ``clock``; see ``weights_at``
+    weight_sq_sum: float
+    effective_samples: float
+    mean: tuple[float, ...]
+    variance: tuple[float, ...]
+    covariance: tuple[tuple[int, int, float], ...]   # i < j
+    correlation: tuple[tuple[int, int, float], ...]  # i < j
+    # compact forms, so that an idle series costs little memory: the (field, q) and
+    # threshold tuples are the stream's own, shared by all its series
+    quantile_at: tuple[tuple[int, float], ...]       # (field index, q), per stream
+    quantile_values: tuple[float, ...]               # the values, in that order
+    thresholds: tuple[float, ...]                    # outlier thresholds, per stream
+    outlier_counts: tuple[int, ...]                  # counts, in that order
+    mixture: MixtureView | None = None
+    regression: RegressionView | None = None
+    scatter: tuple[float, ...] = ()           # centred Σw(x-μ)² per field, as of ``clock``
+
+    @property
+    def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
+        return self.stream, self.labels
+
+    @property
+    def stddev(self) -> tuple[float, ...]:
+        return tuple(math.sqrt(v) if v >= 0.0 else math.nan for v in self.variance)
+
+    @property
+    def quantiles(self) -> tuple[tuple[int, float, float], ...]:
+        """(field index, q, value) triples."""
+        return tuple((i, q, x) for (i, q), x in zip(self.quantile_at, self.quantile_values,
+                                                     strict=True))
+
+    @property
+    def outliers(self) -> tuple[tuple[float, int], ...]:
+        """(threshold, count) pairs."""
+        return tuple(zip(self.thresholds, self.outlier_counts, strict=True))
+
+    def weights_at(self, t: float) -> tuple[float, float]:
+        """(W, W2) aged to event time t, never backwards. The mean, the variances and
+        the effective sample size do not change under pure decay."""
+        _, f = catch_up(self.half_life, self.clock, t)
+        return self.weight_sum * f, self.weight_sq_sum * f * f
+
+    def scatter_at(self, t: float) -> tuple[float, ...]:
+        """The per-field centred scatter aged to event time t (it decays like W)."""
+        _, f = catch_up(self.half_life, self.clock, t)
+        return tuple(c * f for c in self.scatter)
+
+
+@dataclass(frozen=True, slots=True)
+class Health:
+    """The daemon's own counters, copied at snapshot time."""
+
+    messages: tuple[tuple[str, int], ...] = ()          # per source endpoint
+    rejected: tuple[tuple[str, int], ...] = ()          # per reason
+    sequence_gaps: tuple[tuple[str, int], ...] = ()     # per producer
+    flushes: int = 0
+
+
+@dataclass(frozen=True, slots=True)
+class Snapshot:
+    taken_at: float                                     # wall-clock seconds
+    series: dict = field(default_factory=dict)          # key -> SeriesView (never mutated)
+    series_per_stream: tuple[tuple[str, int], ...] = ()
+    health: Health = field(default_factory=Health)
+
+    def by_stream(self) -> dict[str, list[SeriesView]]:
+        out: dict[str, list[SeriesView]] = {}
+        for view in self.series.values():
+            out.setdefault(view.stream, []).append(view)
+        return out

@@ -1,0 +1,1 @@
+"""Export: the metric model of a snapshot, the /metrics text, the /api/state JSON."""

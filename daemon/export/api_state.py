@@ -1,0 +1,93 @@
+"""The JSON form of a snapshot, served at /api/state.
+
+Schema (version 1)::
+
+    {"schema": 1, "taken_at": unix seconds, "now": unix seconds,
+     "health": {"messages": {endpoint: n}, "rejected": {reason: n},
+                "sequence_gaps": {producer: n}, "flushes": n},
+     "streams": {name: {"series": n}},
+     "series": [{"stream": name, "labels": {label: value}, "fields": [..],
+                 "observations": n, "update_age_seconds": s,
+                 "weight_sum": W, "effective_samples": n_eff,
+                 "mean": [..], "stddev": [..], "variance": [..],
+                 "covariance": [[field, field_b, value], ..],
+                 "correlation": [[field, field_b, value], ..],
+                 "quantiles": [[field, q, value], ..],
+                 "outliers": [[threshold, count], ..],
+                 "mixture": null | {"warm": bool, "log": bool, "weights": [..],
+                                    "means": [[..]], "stddevs": [[..]],
+                                    "average_loglik": x, "reseeds": n,
+                                    "log_means": [[..]], "log_stddevs": [[..]]},
+                 "regression": null | {"ok": bool, "y": field, "terms": [..],
+                                       "coefficients": [..], "stderr": [..],
+                                       "residual_stddev": x, "residual_dof": x,
+                                       "r_squared": x},
+                 "history": [[unix seconds, [mean per field]], ..]}]}
+
+Values that are not defined yet (NaN) are written as null. ``history`` holds the
+series' mean sampled every few seconds over the last minutes (oldest first; empty
+until the first sample), the same points the status page's sparklines draw.
+"""
+
+from __future__ import annotations
+
+import math
+
+from sigmad.daemon.engine.snapshot import SeriesView, Snapshot
+from sigmad.daemon.web.history import History
+
+SCHEMA = 1
+
+
+def _num(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
+
+
+def _nums(xs) -> list:
+    return [_num(x) for x in xs]
+
+
+def series_json(v: SeriesView, now: float, history: History | None = None) -> dict:
+    f = v.fields
+    w, _ = v.weights_at(now)
+    out = {
+        "stream": v.stream, "labels": dict(v.labels), "fields": list(f),
+        "observations": v.observations,
+        "update_age_seconds": max(0.0, now - v.last_update),
+        "weight_sum": _num(w), "effective_samples": _num(v.effective_samples),
+        "mean": _nums(v.mean), "stddev": _nums(v.stddev), "variance": _nums(v.variance),
+        "covariance": [[f[i], f[j], _num(c)] for i, j, c in v.covariance],
+        "correlation": [[f[i], f[j], _num(r)] for i, j, r in v.correlation],
+        "quantiles": [[f[i], q, _num(x)] for i, q, x in v.quantiles],
+        "outliers": [[thr, n] for thr, n in v.outliers],
+        "mixture": None, "regression": None,
+        "history": ([[t, _nums(m)] for t, m in history.of(v.key)] if history is not None
+                    else []),
+    }
+    if v.mixture is not None:
+        m = v.mixture
+        out["mixture"] = {"warm": m.warm, "log": m.log, "weights": _nums(m.weights),
+                          "means": [_nums(r) for r in m.means],
+                          "stddevs": [_nums(r) for r in m.stddevs],
+                          "average_loglik": _num(m.average_loglik), "reseeds": m.reseeds,
+                          "log_means": [_nums(r) for r in m.log_means],
+                          "log_stddevs": [_nums(r) for r in m.log_stddevs]}
+    if v.regression is not None:
+        r = v.regression
+        out["regression"] = {"ok": r.ok, "y": r.y, "terms": list(r.terms),
+                             "coefficients": _nums(r.coefficients), "stderr": _nums(r.stderr),
+                             "residual_stddev": _num(r.residual_stddev),
+                             "residual_dof": _num(r.residual_dof),
+                             "r_squared": _num(r.r_squared)}
+    return out
+
+
+def snapshot_json(snap: Snapshot, now: float, history: History | None = None) -> dict:
+    h = snap.health
+    return {
+        "schema": SCHEMA, "taken_at": snap.taken_at, "now": now,
+        "health": {"messages": dict(h.messages), "rejected": dict(h.rejected),
+                   "sequence_gaps": dict(h.sequence_gaps), "flushes": h.flushes},
+        "streams": {name: {"series": n} for name, n in snap.series_per_stream},
+        "series": [series_json(v, now, history) for v in snap.series.values()],
+    }

@@ -1,0 +1,177 @@
+"""Prometheus export: the metric model of a snapshot.
+
+Every sample comes from one of three generators over the immutable
+``Snapshot`` (never live estimator state): ``static_samples`` (changes only
+when the series does), ``dynamic_samples`` (moves with the clock) and
+``health_samples`` (the daemon's own counters). ``HealthCollector`` yields the
+health families to prometheus-client; the per-series part is rendered by
+``render.SeriesRenderer``, which caches each series' text until it changes,
+and ``families`` gives the same samples as metric families (the reference the
+renderer is tested and benchmarked against). Non-finite values (an estimate
+not defined yet, such as a variance from one observation) are left out rather
+than exported as NaN.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterator
+
+from prometheus_client.metrics_core import Metric
+from sigmad.daemon.engine.snapshot import SeriesView, Snapshot
+
+# name -> (type, help). The names are the contract in DESIGN.md.
+METRICS: dict[str, tuple[str, str]] = {
+    "sigmad_mean": ("gauge", "Weighted, decayed mean of a field."),
+    "sigmad_stddev": ("gauge", "Standard deviation of a field under the stream's correction."),
+    "sigmad_variance": ("gauge", "Variance of a field under the stream's correction."),
+    "sigmad_weight": ("gauge", "Decayed sum of weights W (the pooling weight)."),
+    "sigmad_weight_squared": ("gauge", "Decayed sum of squared weights W2 (for exact pooling)."),
+    "sigmad_effective_samples": ("gauge", "Kish effective sample size W^2/W2."),
+    "sigmad_scatter": ("gauge", "Centred weighted sum of squares of a field, sum w (x - mean)^2 "
+                                "(for exact pooling under any correction)."),
+    "sigmad_covariance": ("gauge", "Covariance of two fields under the stream's correction."),
+    "sigmad_correlation": ("gauge", "Pearson correlation of two fields."),
+    "sigmad_quantile": ("gauge", "Estimated q-quantile of a field, in the stream's units."),
+    "sigmad_mixture_weight": ("gauge", "Weight of a mixture component."),
+    "sigmad_mixture_mean": ("gauge", "Mean of a mixture component, in the stream's units."),
+    "sigmad_mixture_stddev": ("gauge",
+                              "Standard deviation of a mixture component, in the stream's units."),
+    "sigmad_mixture_loglik": ("gauge", "Decayed average log-likelihood per observation."),
+    "sigmad_mixture_warm": ("gauge", "1 once the mixture is initialised, 0 while warming up."),
+    "sigmad_mixture_reseeds": ("counter", "Mixture components re-seeded after collapsing."),
+    "sigmad_regression_coefficient": ("gauge", "Least-squares coefficient of a term."),
+    "sigmad_regression_stderr": ("gauge", "Standard error of a least-squares coefficient."),
+    "sigmad_regression_residual_stddev": ("gauge", "Noise standard deviation of the fitted line."),
+    "sigmad_regression_r_squared": ("gauge", "Coefficient of determination of the fitted line."),
+    "sigmad_observations": ("counter", "Accepted observations."),
+    "sigmad_outliers": ("counter",
+                        "Observations beyond a distance threshold, scored before the update."),
+    "sigmad_update_age_seconds": ("gauge", "Seconds since the series last accepted a row."),
+    "sigmad_series": ("gauge", "Live series per stream."),
+    "sigmad_rejected": ("counter", "Rejected observations by reason."),
+    "sigmad_messages": ("counter", "Messages received per source endpoint."),
+    "sigmad_sequence_gaps": ("counter", "Messages missing from a producer's sequence numbers."),
+    "sigmad_merge_shards": ("gauge", "Shards whose snapshots a merger pools (live) or has "
+                                     "left out after they went silent (expired)."),
+    "sigmad_shard_age_seconds": ("gauge", "Seconds since a live shard's latest snapshot arrived."),
+}
+
+
+HEALTH = ("sigmad_series", "sigmad_rejected", "sigmad_messages", "sigmad_sequence_gaps")
+#: Exported by the merge tier's own collector (daemon/merge.py), not from a snapshot.
+MERGE_METRICS = ("sigmad_merge_shards", "sigmad_shard_age_seconds")
+SERIES = tuple(name for name in METRICS if name not in HEALTH and name not in MERGE_METRICS)
+
+Sample = tuple[str, dict[str, str], float]   # (family, labels, value)
+
+
+def series_labels(v: SeriesView) -> dict[str, str]:
+    labels = {"stream": v.stream}
+    labels.update(v.labels)
+    return labels
+
+
+def static_samples(v: SeriesView) -> Iterator[Sample]:
+    """The samples of a series that change only when the series does. O(samples)."""
+    base = series_labels(v)
+    yield "sigmad_effective_samples", base, v.effective_samples
+    yield "sigmad_observations", base, float(v.observations)
+    per_field = [dict(base, field=f) for f in v.fields]
+    for i, lab in enumerate(per_field):
+        yield "sigmad_mean", lab, v.mean[i]
+        yield "sigmad_stddev", lab, v.stddev[i]
+        yield "sigmad_variance", lab, v.variance[i]
+    for i, j, c in v.covariance:
+        yield "sigmad_covariance", dict(base, field=v.fields[i], field_b=v.fields[j]), c
+    for i, j, r in v.correlation:
+        yield "sigmad_correlation", dict(base, field=v.fields[i], field_b=v.fields[j]), r
+    for i, q, value in v.quantiles:
+        yield "sigmad_quantile", dict(per_field[i], q=_fmt_q(q)), value
+    for thr, count in v.outliers:
+        yield "sigmad_outliers", dict(base, threshold=_fmt_q(thr)), float(count)
+    mx = v.mixture
+    if mx is not None:
+        yield "sigmad_mixture_warm", base, 1.0 if mx.warm else 0.0
+        yield "sigmad_mixture_reseeds", base, float(mx.reseeds)
+        yield "sigmad_mixture_loglik", base, mx.average_loglik
+        for k, wk in enumerate(mx.weights):
+            comp = dict(base, component=str(k))
+            yield "sigmad_mixture_weight", comp, wk
+            for i, f in enumerate(v.fields):
+                yield "sigmad_mixture_mean", dict(comp, field=f), mx.means[k][i]
+                yield "sigmad_mixture_stddev", dict(comp, field=f), mx.stddevs[k][i]
+    rg = v.regression
+    if rg is not None and rg.ok:
+        for term, b, se in zip(rg.terms, rg.coefficients, rg.stderr, strict=True):
+            yield "sigmad_regression_coefficient", dict(base, term=term), b
+            yield "sigmad_regression_stderr", dict(base, term=term), se
+        yield "sigmad_regression_residual_stddev", base, rg.residual_stddev
+        yield "sigmad_regression_r_squared", base, rg.r_squared
+
+
+def dynamic_samples(v: SeriesView, now: float) -> Iterator[Sample]:
+    """The samples of a series that move with the clock: decayed weights, age. O(1)."""
+    base = series_labels(v)
+    w, w2 = v.weights_at(now)
+    yield "sigmad_weight", base, w
+    yield "sigmad_weight_squared", base, w2
+    yield "sigmad_update_age_seconds", base, max(0.0, now - v.last_update)
+    for f, c in zip(v.fields, v.scatter_at(now), strict=False):
+        yield "sigmad_scatter", dict(base, field=f), c
+
+
+def health_samples(snap: Snapshot) -> Iterator[Sample]:
+    for stream, count in snap.series_per_stream:
+        yield "sigmad_series", {"stream": stream}, float(count)
+    h = snap.health
+    for reason, count in h.rejected:
+        yield "sigmad_rejected", {"reason": reason}, float(count)
+    for endpoint, count in h.messages:
+        yield "sigmad_messages", {"endpoint": endpoint}, float(count)
+    for producer, count in h.sequence_gaps:
+        yield "sigmad_sequence_gaps", {"producer": producer}, float(count)
+
+
+def sample_name(family: str) -> str:
+    """The sample name of a family: counters take ``_total``."""
+    return family + "_total" if METRICS[family][0] == "counter" else family
+
+
+def _families(names: tuple[str, ...], samples) -> Iterator[Metric]:
+    fams = {name: Metric(name, METRICS[name][1], METRICS[name][0]) for name in names}
+    for family, labels, value in samples:
+        if math.isfinite(value):
+            fams[family].add_sample(sample_name(family), labels, value)
+    for fam in fams.values():
+        if fam.samples:
+            yield fam
+
+
+def families(snap: Snapshot, now: float) -> Iterator[Metric]:
+    """Every per-series metric family of a snapshot as of ``now``, as prometheus-client
+    metric families (the model the fast renderer in ``render.py`` must agree with).
+    O(samples)."""
+    def samples():
+        for v in snap.series.values():
+            yield from static_samples(v)
+            yield from dynamic_samples(v, now)
+    return _families(SERIES, samples())
+
+
+def _fmt_q(q: float) -> str:
+    """Label text for a quantile or threshold: 0.99 -> "0.99", 3.0 -> "3"."""
+    return repr(float(q)).removesuffix(".0")
+
+
+class HealthCollector:
+    """A prometheus-client collector of the daemon's own counters in the latest snapshot."""
+
+    def __init__(self, current: Callable[[], Snapshot]) -> None:
+        self._current = current
+
+    def collect(self) -> Iterator[Metric]:
+        return _families(HEALTH, health_samples(self._current()))
+
+    def describe(self) -> list:
+        return []   # unchecked collector: its samples depend on the traffic

@@ -1,0 +1,1 @@
+"""Persistence: the checksummed checkpoint file, its columnar blocks, ``sigmad inspect``."""

@@ -1,0 +1,249 @@
+"""A stream's series as columns: the unit of state in a checkpoint (format 2).
+
+The engine thread collects each stream's series into arrays (``collect``);
+the checkpoint writer packs them into one msgpack map per stream whose
+columns are little-endian binary blobs (``pack``). A restore checks a map's
+columns once (``unpack``), then builds the series (``restore``) and their
+read-outs in bulk (``views``). Regression and mixture states, rarer and
+larger, stay one ``to_dict`` map per series inside their stream's map.
+"""
+
+from __future__ import annotations
+
+from itertools import chain
+from operator import attrgetter, itemgetter
+from typing import NamedTuple
+
+import numpy as np
+from sigmad.daemon.engine.engine import Series, StreamState, check_estimators, view_of
+from sigmad.daemon.engine.snapshot import SeriesView
+from sigmad.estimators import IncompatibleError, Mixture, Regression
+from sigmad.estimators.moments_columns import MomentsColumns, blob, from_blob
+
+_LE_F8 = np.dtype("<f8")
+_LE_I8 = np.dtype("<i8")
+
+
+class StreamColumns(NamedTuple):
+    """The state of every series of one stream; row i is series i."""
+
+    stream: str
+    fields: list[str]
+    kinds: list[str]
+    thresholds: list[float]
+    labels: list[tuple[str, ...]]         # each series' label values, template order
+    observations: np.ndarray              # (n,) int64
+    version: np.ndarray                   # (n,) int64
+    last_update: np.ndarray               # (n,) float64
+    outliers: np.ndarray                  # (n, len(thresholds)) int64
+    moments: MomentsColumns
+    regression: list | None               # Regression.to_dict per series, when configured
+    mixture: list | None                  # Mixture.to_dict per series, when configured
+
+    @property
+    def n(self) -> int:
+        return len(self.labels)
+
+    def where(self, i: int) -> str:
+        """How series i is named when it is dropped (as format 1 named it)."""
+        return f"{self.stream}{list(self.labels[i])}"
+
+
+def _get(name: str, series: list) -> list:
+    return list(map(attrgetter(name), series))
+
+
+def collect(st: StreamState) -> StreamColumns:
+    """Copy the state of every series of ``st`` into columns (the engine thread's share
+    of a checkpoint: nothing here is shared with live state afterwards). O(n d**2)."""
+    series = list(st.series.values())
+    n = len(series)
+    cfg = st.cfg
+    width = len(cfg.outlier_sigmas)
+    return StreamColumns(
+        st.name, list(st.fields), list(st.kinds), list(cfg.outlier_sigmas),
+        _get("labels", series),
+        np.array(_get("observations", series), dtype=np.int64).reshape(n),
+        np.array(_get("version", series), dtype=np.int64).reshape(n),
+        np.array(_get("last_update", series), dtype=np.float64).reshape(n),
+        np.fromiter(chain.from_iterable(_get("outliers", series)), np.int64,
+                    n * width).reshape(n, width),   # copied: the counts change in place
+        MomentsColumns.of(_get("moments", series), st.dim, cfg.half_life),
+        None if cfg.regression is None else [s.regression.to_dict() for s in series],
+        None if cfg.mixture is None else [s.mixture.to_dict() for s in series])
+
+
+def pack(c: StreamColumns) -> dict:
+    """The msgpack-able map of a stream's columns (the checkpoint writer's share). O(n)."""
+    width = len(c.labels[0]) if c.labels else 0
+    return {
+        "stream": c.stream, "fields": c.fields, "kinds": c.kinds, "thresholds": c.thresholds,
+        "n": c.n, "label_count": width,
+        "labels": [list(map(itemgetter(k), c.labels)) for k in range(width)],
+        "observations": blob(c.observations, _LE_I8), "version": blob(c.version, _LE_I8),
+        "last_update": blob(c.last_update, _LE_F8), "outliers": blob(c.outliers, _LE_I8),
+        "moments": c.moments.to_dict(),
+        "regression": c.regression, "mixture": c.mixture,
+    }
+
+
+def _strings(d: dict, key: str) -> list[str]:
+    v = d.get(key)
+    if not isinstance(v, list) or not all(isinstance(s, str) for s in v):
+        raise IncompatibleError(key, v, "must be a list of strings")
+    return v
+
+
+def unpack(d: object) -> StreamColumns:
+    """Check a stream's map from ``pack`` and return its columns.
+
+    Raises IncompatibleError naming the field at fault: a missing or mistyped
+    key, a blob of the wrong length, a label column of the wrong length, a
+    moments block of another size. Estimator maps of regression and mixture
+    are checked per series by ``restore``. O(n d**2).
+    """
+    if not isinstance(d, dict):
+        raise IncompatibleError("stream block", type(d).__name__, "must be a map")
+    name, n, width = d.get("stream"), d.get("n"), d.get("label_count")
+    if not isinstance(name, str):
+        raise IncompatibleError("stream", name, "must be a string")
+    if type(n) is not int or n < 0:
+        raise IncompatibleError("n", n, "must be an integer >= 0")
+    if type(width) is not int or width < 0:
+        raise IncompatibleError("label_count", width, "must be an integer >= 0")
+    thresholds = d.get("thresholds")
+    if not isinstance(thresholds, list) or \
+            not all(type(t) in (int, float) for t in thresholds):
+        raise IncompatibleError("thresholds", thresholds, "must be a list of numbers")
+    # the moments first: their blobs bound n by the payload's size before n sizes anything
+    moments = MomentsColumns.from_dict(d.get("moments"))
+    if moments.n != n:
+        raise IncompatibleError("moments.n", moments.n, f"must equal the series count {n}")
+    cols = d.get("labels")
+    if not isinstance(cols, list) or len(cols) != width or not all(
+            isinstance(col, list) and len(col) == n and all(type(v) is str for v in col)
+            for col in cols):
+        raise IncompatibleError("labels", f"{name}", f"must be {width} lists of {n} strings")
+    labels = list(zip(*cols, strict=True)) if width else [()] * n
+    per_series = []
+    for key in ("regression", "mixture"):
+        v = d.get(key)
+        if v is not None and not (isinstance(v, list) and len(v) == n):
+            raise IncompatibleError(key, type(v).__name__, f"must be absent or a list of {n}")
+        per_series.append(v)
+    return StreamColumns(
+        name, _strings(d, "fields"), _strings(d, "kinds"), thresholds, labels,
+        from_blob(d, "observations", _LE_I8, (n,)), from_blob(d, "version", _LE_I8, (n,)),
+        from_blob(d, "last_update", _LE_F8, (n,)),
+        from_blob(d, "outliers", _LE_I8, (n, len(thresholds))), moments, *per_series)
+
+
+def _check_stream(st: StreamState, c: StreamColumns) -> None:
+    """The stream-wide checks ``restore_series`` makes per series, made once."""
+    cfg = st.cfg
+    if c.fields != st.field_list:
+        raise IncompatibleError("fields", c.fields, f"the stream now has {st.field_list}")
+    if c.kinds != st.kinds:
+        raise IncompatibleError("kinds", c.kinds, f"the stream now has {st.kinds}")
+    width = len(c.labels[0]) if c.labels else len(cfg.topic.labels)
+    if width != len(cfg.topic.labels):
+        raise IncompatibleError("labels", list(c.labels[0]),
+                                f"the topic template now has {list(cfg.topic.labels)}")
+    if c.moments.dim != st.dim or c.moments.half_life != cfg.half_life:
+        raise IncompatibleError("moments", c.moments.dim,
+                                "dimension or half-life differs from the stream's")
+    for kind, states in (("regression", c.regression), ("mixture", c.mixture)):
+        if (states is None) != (kind not in st.kinds):
+            raise IncompatibleError(kind, type(states).__name__,
+                                    f"does not match the stream's kinds {st.kinds}")
+
+
+def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple[str, str]]]:
+    """Rebuild the series of ``c`` for stream ``st``.
+
+    Returns the series and (series, reason) for each one dropped: all of them
+    when the stream's definition changed incompatibly (fields, estimator kinds,
+    label count, dimension, half-life), one when its regression or mixture
+    state is malformed or does not fit the stream (``check_estimators``).
+    Outlier counts are kept only when the thresholds are unchanged, as
+    ``restore_series`` does. O(n d**2).
+    """
+    try:
+        _check_stream(st, c)
+    except IncompatibleError as exc:
+        return [], [(c.where(i), str(exc)) for i in range(c.n)]
+    cfg = st.cfg
+    name, label_names = st.name, cfg.topic.labels
+    keep_outliers = c.thresholds == list(cfg.outlier_sigmas)
+    width = len(cfg.outlier_sigmas)
+    outliers = c.outliers.tolist() if keep_outliers else None
+    regs = c.regression or [None] * c.n
+    mixes = c.mixture or [None] * c.n
+    out, dropped = [], []
+    rows = zip(c.labels, c.moments.states(), c.observations.tolist(), c.version.tolist(),
+               c.last_update.tolist(), regs, mixes, strict=True)
+    for i, (labels, m, obs, version, last, reg, mix) in enumerate(rows):
+        try:
+            reg = None if reg is None else Regression.from_dict(reg)
+            mix = None if mix is None else Mixture.from_dict(mix)
+            check_estimators(st, reg, mix)
+        except IncompatibleError as exc:
+            dropped.append((c.where(i), str(exc)))
+            continue
+        out.append(Series(st, labels, m, reg, mix,   # positional: keywords cost here
+                          outliers[i] if keep_outliers else [0] * width, obs, version, last,
+                          (name, tuple(zip(label_names, labels, strict=True)))))
+    return out, dropped
+
+
+def views(st: StreamState, series: list[Series],
+          moments: MomentsColumns | None = None) -> list[SeriesView]:
+    """``view_of`` every series of ``st`` in ``series``, the moments read-outs of all of
+    them at once: equal, bit for bit, to ``[view_of(s) for s in series]``. Streams
+    with a regression or a mixture take ``view_of`` per series. ``moments``, when
+    given, holds the series' moments row for row (a restore has them stacked
+    already). O(n (d**2 + quantiles))."""
+    cfg = st.cfg
+    if cfg.regression is not None or cfg.mixture is not None or not series:
+        return [view_of(s) for s in series]
+    n, d, corr = len(series), st.dim, cfg.correction
+    m = moments if moments is not None and moments.n == n else \
+        MomentsColumns.of([s.moments for s in series], d, cfg.half_life)
+    means, variances = m.means().tolist(), m.variances(corr).tolist()
+    scatters, effective = m.scatters().tolist(), m.effective_samples().tolist()
+    quantiles = m.quantiles(cfg.quantiles, corr).reshape(n, -1).tolist() if cfg.quantiles \
+        else [()] * n
+    covariance = correlation = [()] * n
+    if d > 1:
+        iu, ju = np.triu_indices(d, 1)
+        pairs = list(zip(iu.tolist(), ju.tolist(), strict=True))
+        covariance = [tuple((i, j, v) for (i, j), v in zip(pairs, row, strict=True))
+                      for row in m.covariances(corr)[:, iu, ju].tolist()]
+        correlation = [tuple((i, j, v) for (i, j), v in zip(pairs, row, strict=True))
+                       for row in m.correlations()[:, iu, ju].tolist()]
+    name, fields, half_life = st.name, st.fields, cfg.half_life
+    quantile_at, thresholds = st.quantile_at, cfg.outlier_sigmas
+    # positional, in SeriesView's field order (as view_of): keywords cost 2 us a view
+    return [SeriesView(
+        name, s.key[1], fields, s.version, s.observations, s.last_update, s.moments.clock,
+        half_life, s.moments.W, s.moments.W2, effective[k], tuple(means[k]),
+        tuple(variances[k]), covariance[k], correlation[k], quantile_at, tuple(quantiles[k]),
+        thresholds, tuple(s.outliers), None, None, tuple(scatters[k]))
+        for k, s in enumerate(series)]
+
+
+def states(c: StreamColumns) -> list[dict]:
+    """The series of ``c`` as ``series_state`` dicts (for ``sigmad inspect`` and tests).
+    O(n d**2)."""
+    out = []
+    moments = c.moments.states()
+    for i in range(c.n):
+        out.append({
+            "stream": c.stream, "labels": list(c.labels[i]), "fields": c.fields,
+            "kinds": c.kinds, "observations": int(c.observations[i]),
+            "version": int(c.version[i]), "last_update": float(c.last_update[i]),
+            "outliers": c.outliers[i].tolist(), "thresholds": c.thresholds,
+            "moments": moments[i].to_dict(),
+            "regression": None if c.regression is None else c.regression[i],
+            "mixture": None if c.mixture is None else c.mixture[i]})
+    return out

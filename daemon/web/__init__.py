@@ -1,0 +1,1 @@
+"""The HTTP(S) server and the status page: plots, SVG, sparkline history."""
