@@ -367,7 +367,10 @@ class Mixture:
 
     # ------------------------------------------------------------------ pooling
     def merge(self, other: Mixture) -> Mixture:
-        """The pooled mixture of two states, as a new Mixture; neither input changes.
+        """Fold another state in, exactly as the weighted mixture of both; returns self.
+
+        ``other`` is not changed; like ``Moments.merge`` and ``Regression.merge``
+        this one changes ``self`` in place (``a.copy().merge(b)`` keeps ``a``).
 
         Both states are first aged to the later clock (with count-based
         forgetting the clocks add, as for ``Moments``). Each warm state
@@ -419,7 +422,9 @@ class Mixture:
         out._prep = None
         if not out.warm and out._buf.shape[0] >= out.warmup:
             out._initialise()
-        return out
+        for name in self.__slots__:
+            setattr(self, name, getattr(out, name))
+        return self
 
     def _as_components(self) -> tuple | None:
         """(absolute weights, means, raw covariances, floor) of this state's model."""

@@ -138,7 +138,7 @@ def test_pooled_mixture_is_reduced_to_k_and_keeps_the_pooled_mean():
     msgs = _messages(base=1000.0)
     shards = [_fed(msgs[i::3], 2000.0) for i in range(3)]
     parts = [sh.stream("lat").series[("checkout",)] for sh in shards]
-    merged = parts[0].mixture.merge(parts[1].mixture).merge(parts[2].mixture)
+    merged = parts[0].mixture.copy().merge(parts[1].mixture).merge(parts[2].mixture)
     assert merged.components == 6
     pooled = pool(parts).mixture
     assert pooled.components == 2 and len(pooled.weights) == 2

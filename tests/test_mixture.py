@@ -346,7 +346,7 @@ def test_merge_is_the_weighted_mixture_of_the_two_distributions():
     rng = np.random.default_rng(20)
     a = stream(Mixture(2, log=True), lognormal_shard(rng, 6000, 0.05), 1000)
     b = stream(Mixture(2, log=True), lognormal_shard(rng, 2000, 0.4), 1000)
-    m = a.merge(b)
+    m = a.copy().merge(b)
     assert m.components == 4 and m.weight_sum == a.weight_sum + b.weight_sum
     grid = np.array([1.0, 2.0, 5.0, 30.0, 80.0])
     want = (a.weight_sum * a.cdf(grid) + b.weight_sum * b.cdf(grid)) / m.weight_sum
@@ -360,7 +360,7 @@ def test_merge_and_reduce_preserve_pooled_mean_and_variance_and_pool_p99():
     rng = np.random.default_rng(11)
     xa, xb = lognormal_shard(rng, 30_000, 0.02), lognormal_shard(rng, 10_000, 0.3)
     a, b = stream(Mixture(2, log=True), xa, 1000), stream(Mixture(2, log=True), xb, 1000)
-    merged = a.merge(b)
+    merged = a.copy().merge(b)
     reduced = merged.reduce(2)
     mean_a, cov_a = mixture_moments(a)
     mean_b, cov_b = mixture_moments(b)
@@ -385,7 +385,7 @@ def test_merge_with_a_warming_state_adds_its_single_gaussian():
     warm = stream(Mixture(2), rng.normal(0, 1, 500), 100)
     warming = Mixture(2)
     warming.update(rng.normal(5, 1, 50))
-    m = warm.merge(warming)
+    m = warm.copy().merge(warming)
     assert m.warm and m.components == 3
     grid = np.array([-1.0, 0.0, 2.0, 5.0])
     want = (warm.weight_sum * warm.cdf(grid) + warming.weight_sum * warming.cdf(grid)) \
@@ -513,3 +513,4 @@ def test_read_outs_reject_bad_arguments():
         mix.quantile(0.5, field=2)
     with pytest.raises(IncompatibleError, match="other"):
         mix.merge(Mixture(2, dim=1))
+

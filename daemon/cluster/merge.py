@@ -118,13 +118,13 @@ def pool(parts: list[Series]) -> Series:
     out.moments = first.moments.copy()
     if first.regression is not None:
         out.regression = first.regression.copy()
-    mix = first.mixture
+    mix = None if first.mixture is None else first.mixture.copy()
     for p in parts[1:]:
         out.moments.merge(p.moments)
         if out.regression is not None:
             out.regression.merge(p.regression)
         if mix is not None:
-            mix = mix.merge(p.mixture)
+            mix.merge(p.mixture)
     if mix is not None and mix.components > st.cfg.mixture.components:
         mix = mix.reduce(st.cfg.mixture.components)
     out.mixture = mix
