@@ -135,6 +135,22 @@ def catch_up(half_life: HalfLife | None, clock: float | None,
     return t, 2.0 ** (-(t - clock) / half_life.length)
 
 
+
+def sums_at(half_life: HalfLife | None, clock: float | None, t: float,
+            weight_sum: float, weight_sq_sum: float,
+            scatter: tuple[float, ...] = ()) -> tuple[float, float, tuple[float, ...]]:
+    """A state's weight sums aged from ``clock`` to event time ``t`` without touching it.
+
+    W and the centred scatter decay by the factor f, W2 by f squared; the mean,
+    the variances and the Kish effective sample size W**2 / W2 do not change.
+
+    >>> sums_at(HalfLife(10.0), 0.0, 20.0, 8.0, 4.0, (2.0,))
+    (2.0, 0.25, (0.5,))
+    """
+    _, f = catch_up(half_life, clock, t)
+    return weight_sum * f, weight_sq_sum * f * f, tuple(c * f for c in scatter)
+
+
 def take_batch(state, n: int, times: np.ndarray | None,
                weights: np.ndarray | None) -> np.ndarray | None:
     """Age ``state`` to a batch of n rows and count them; return the rows' effective

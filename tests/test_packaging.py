@@ -3,6 +3,7 @@ distributions that own top-level `daemon` or `estimators` packages (python-daemo
 
 from __future__ import annotations
 
+import shutil
 import subprocess
 import sys
 import venv
@@ -17,8 +18,16 @@ ROOT = Path(__file__).resolve().parent.parent
 @pytest.fixture(scope="module")
 def wheel(tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("wheel")
+    # build from a copy of the committed tree, so no build/ folder lands in the checkout
+    tree = tmp_path_factory.mktemp("tree")
+    files = subprocess.run(["git", "ls-files", "-z"], cwd=ROOT, capture_output=True,
+                           check=True).stdout.decode().split("\0")
+    for name in filter(None, files):
+        if (ROOT / name).is_file():
+            (tree / name).parent.mkdir(parents=True, exist_ok=True)
+            shutil.copy2(ROOT / name, tree / name)
     subprocess.run([sys.executable, "-m", "pip", "wheel", "-q", "--no-deps",
-                    "-w", str(out), str(ROOT)], check=True, timeout=300)
+                    "-w", str(out), str(tree)], check=True, timeout=300)
     (built,) = out.glob("sigmad-*.whl")
     return built
 

@@ -106,11 +106,11 @@ class DaemonConfig:
 
     @property
     def http_host(self) -> str:
-        return _split_host_port(self.http, "daemon.http")[0]
+        return split_host_port(self.http, "daemon.http")[0]
 
     @property
     def http_port(self) -> int:
-        return _split_host_port(self.http, "daemon.http")[1]
+        return split_host_port(self.http, "daemon.http")[1]
 
 
 @dataclass(frozen=True, slots=True)
@@ -270,7 +270,8 @@ def parse_half_life(text: str, key: str) -> HalfLife:
     return HalfLife(parse_duration(text, key), "seconds")
 
 
-def _split_host_port(text: str, key: str) -> tuple[str, int]:
+def split_host_port(text: str, key: str = "daemon.http") -> tuple[str, int]:
+    """``"host:port"`` or ``"[v6]:port"`` as (host, port); the one reading of an address."""
     if not isinstance(text, str):
         raise ConfigError(key, text, 'must be a "host:port" string')
     host, sep, port = text.rpartition(":")
@@ -434,7 +435,7 @@ def _daemon(data: object) -> DaemonConfig:
     t = _Table(data, "daemon", _DAEMON_KEYS)
     d = DaemonConfig()
     http = t.string("http", d.http)
-    _split_host_port(http, t.key("http"))
+    split_host_port(http, t.key("http"))
     cfg = DaemonConfig(
         http=http,
         state_file=t.path_string("state_file"),

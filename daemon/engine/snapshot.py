@@ -11,7 +11,7 @@ import math
 from dataclasses import dataclass, field
 
 from sigmad.estimators import HalfLife
-from sigmad.estimators.forgetting import catch_up
+from sigmad.estimators.forgetting import sums_at
 
 
 @dataclass(frozen=True, slots=True)
@@ -89,13 +89,12 @@ class SeriesView:
     def weights_at(self, t: float) -> tuple[float, float]:
         """(W, W2) aged to event time t, never backwards. The mean, the variances and
         the effective sample size do not change under pure decay."""
-        _, f = catch_up(self.half_life, self.clock, t)
-        return self.weight_sum * f, self.weight_sq_sum * f * f
+        w, w2, _ = sums_at(self.half_life, self.clock, t, self.weight_sum, self.weight_sq_sum)
+        return w, w2
 
     def scatter_at(self, t: float) -> tuple[float, ...]:
         """The per-field centred scatter aged to event time t (it decays like W)."""
-        _, f = catch_up(self.half_life, self.clock, t)
-        return tuple(c * f for c in self.scatter)
+        return sums_at(self.half_life, self.clock, t, 0.0, 0.0, self.scatter)[2]
 
 
 @dataclass(frozen=True, slots=True)

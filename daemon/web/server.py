@@ -13,14 +13,10 @@ from collections.abc import Callable
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
 from prometheus_client import CONTENT_TYPE_LATEST
+from sigmad.daemon.config.load import split_host_port
 
 log = logging.getLogger("sigmad.http")
 
-
-def parse_address(text: str) -> tuple[str, int]:
-    """"host:port" or "[v6]:port" to (host, port)."""
-    host, _, port = text.rpartition(":")
-    return host.strip("[]") or "127.0.0.1", int(port)
 
 
 class _Handler(BaseHTTPRequestHandler):
@@ -76,7 +72,7 @@ class HttpServer:
             "/": lambda: (page(), "text/html; charset=utf-8"),
             "/api/state": lambda: (state(), "application/json"),
         }})
-        host, port = parse_address(address)
+        host, port = split_host_port(address)
         self._server = ThreadingHTTPServer((host, port), handler)
         self._server.daemon_threads = True
         if tls_cert and tls_key:
