@@ -4,6 +4,7 @@ library's tomllib; duration arithmetic (1 m = 60 s, 1 h = 3600 s, 1 d = 86400 s)
 common practice."""
 
 import glob
+import re
 import tomllib
 from pathlib import Path
 
@@ -18,12 +19,15 @@ from sigmad.daemon.config.load import (
     PublishConfig,
     RegressionConfig,
     SourceConfig,
+    StreamConfig,
     default_config,
     describe,
     load_config,
     parse_config,
     parse_duration,
     parse_half_life,
+    schema_defaults,
+    show_default,
 )
 from sigmad.estimators import HalfLife
 
@@ -446,3 +450,27 @@ def test_describe_lists_sources_streams_and_estimators():
 
 def test_describe_says_a_sub_source_without_topics_takes_everything():
     assert "sub  bind tcp://127.0.0.1:7412 topics (everything)" in describe(default_config())
+
+
+def _readme_key_table() -> dict[str, str]:
+    """README's table of configuration keys: first key of each row -> its default cell."""
+    text = (ROOT / "README.md").read_text()
+    rows = re.findall(r"^\| `(\w+)\.(\w+)`[^|]*\| ([^|]+) \|", text, flags=re.M)
+    return {f"{table}.{key}": default.strip() for table, key, default in rows}
+
+
+@pytest.mark.parametrize("table, schema", [("daemon", DaemonConfig), ("source", SourceConfig),
+                                           ("stream", StreamConfig)])
+def test_readme_key_table_shows_the_schema_defaults(table, schema):
+    # the dataclass fields are the one home of each default; the README must agree
+    documented = _readme_key_table()
+    inline = {"source.connect": "source.bind", "daemon.tls_key": "daemon.tls_cert",
+              "daemon.tls_client_ca": "daemon.tls_cert",
+              "source.curve_allow": "source.curve_secret"}
+    for key in schema_defaults(schema):
+        row = inline.get(f"{table}.{key}", f"{table}.{key}")
+        assert row in documented, f"README's table of keys has no row for {table}.{key}"
+        if row in ("source.bind", "stream.mixture", "stream.regression"):
+            continue    # "one required" / inline tables: shown in words, not as one value
+        if row == f"{table}.{key}":
+            assert documented[row].strip("`") == show_default(schema, key), row

@@ -1,4 +1,4 @@
-"""The examples in the estimators' docstrings run and give what they show."""
+"""The examples in docstrings (estimators and daemon) run and give what they show."""
 
 from __future__ import annotations
 
@@ -7,10 +7,11 @@ import importlib
 import pkgutil
 
 import pytest
+import sigmad.daemon
 import sigmad.estimators
 
-MODULES = sorted(m.name for m in pkgutil.iter_modules(sigmad.estimators.__path__,
-                                                      "sigmad.estimators.")
+MODULES = sorted(m.name for pkg in (sigmad.estimators, sigmad.daemon)
+                 for m in pkgutil.walk_packages(pkg.__path__, pkg.__name__ + ".")
                  if not m.name.endswith("__main__"))
 
 

@@ -44,6 +44,7 @@ _DURATION = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(ms|s|m|h|d)\s*")
 _COUNT = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(obs|observations)\s*")
 _ENDPOINT = re.compile(r"(tcp|ipc|inproc)://(.+)")
 _MISSING = object()
+_SCHEMA = object()   # "the default the schema's dataclass declares"
 _SHOW = reprlib.Repr()
 _SHOW.maxstring = 60
 _SHOW.maxother = 60
@@ -84,6 +85,13 @@ class ConfigError(ValueError):
 
 
 # --------------------------------------------------------------------------- dataclasses
+# Each key's default is declared once, here; the table reader and the README's table
+# of keys (checked by tests/test_config.py) take it from these fields.
+
+def _duration(seconds: float | None) -> Any:
+    """A field written in the TOML as a duration string (``"30s"``)."""
+    return field(default=seconds, metadata={"duration": True})
+
 
 @dataclass(frozen=True, slots=True)
 class DaemonConfig:
@@ -92,14 +100,14 @@ class DaemonConfig:
 
     http: str = "127.0.0.1:9410"
     state_file: str | None = None
-    checkpoint_every: float = 30.0
+    checkpoint_every: float = _duration(30.0)
     tls_cert: str | None = None
     tls_key: str | None = None
     tls_client_ca: str | None = None
     max_message_bytes: int = 1_048_576
     max_batch_rows: int = 100_000
-    flush_every: float = 0.05
-    max_clock_skew: float = 86400.0
+    flush_every: float = _duration(0.05)
+    max_clock_skew: float = _duration(86400.0)
     max_abs_value: float = 1e100
     strict_restore: bool = False
     log_rejected: int = 10
@@ -165,7 +173,7 @@ class StreamConfig:
     mixture: MixtureConfig | None = None
     regression: RegressionConfig | None = None
     max_series: int = 1000
-    idle_expiry: float | None = None
+    idle_expiry: float | None = _duration(None)
 
     @property
     def dim(self) -> int:
@@ -177,7 +185,7 @@ class PublishConfig:
     """``[publish]``: this daemon publishes its state snapshots (a shard)."""
 
     bind: tuple[str, ...]
-    every: float = 2.0
+    every: float = _duration(2.0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -185,7 +193,7 @@ class MergeConfig:
     """``[merge]``: this daemon pools other daemons' snapshots (a merger)."""
 
     connect: tuple[str, ...]
-    shard_expiry: float = 30.0
+    shard_expiry: float = _duration(30.0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -198,6 +206,48 @@ class Config:
     publish: PublishConfig | None = None
     merge: MergeConfig | None = None
     origin: str = "<string>"
+
+
+def schema_defaults(schema: type) -> dict[str, object]:
+    """Each key of a table's dataclass and its declared default (a sentinel: required)."""
+    out: dict[str, object] = {}
+    for f in dataclasses.fields(schema):
+        if f.default is not dataclasses.MISSING:
+            out[f.name] = f.default
+        elif f.default_factory is not dataclasses.MISSING:
+            out[f.name] = f.default_factory()
+        else:
+            out[f.name] = _MISSING
+    return out
+
+
+def show_default(schema: type, key: str) -> str:
+    """A key's declared default as the README's table of keys writes it.
+
+    >>> show_default(DaemonConfig, "checkpoint_every"), show_default(StreamConfig, "quantiles")
+    ('"30s"', '[0.5, 0.9, 0.99]')
+    """
+    value = schema_defaults(schema)[key]
+    duration = {f.name: f.metadata.get("duration", False) for f in dataclasses.fields(schema)}
+
+    def show(v: object) -> str:
+        if v is _MISSING:
+            return "required"
+        if v is None:
+            return "none"
+        if duration[key]:
+            return f'"{_show_duration(v)}"'
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str):
+            return f'"{v}"'
+        if isinstance(v, tuple):
+            return "[" + ", ".join(show(x) for x in v) + "]"
+        if isinstance(v, float):
+            return f"{v:g}".replace("e+", "e")
+        return str(v)
+
+    return show(value)
 
 
 # --------------------------------------------------------------------------- scalar parsers
@@ -314,11 +364,13 @@ def _check_endpoint(text: object, key: str, binding: bool) -> str:
 class _Table:
     """Typed reads from one TOML table, each error naming the key path."""
 
-    def __init__(self, data: object, path: str, allowed: tuple[str, ...]) -> None:
+    def __init__(self, data: object, path: str, schema: type | tuple[str, ...]) -> None:
         if not isinstance(data, dict):
             raise ConfigError(path, data, "must be a table")
         self.data = data
         self.path = path
+        self.defaults = schema_defaults(schema) if isinstance(schema, type) else {}
+        allowed = tuple(self.defaults) or schema
         for key, value in data.items():
             if key not in allowed:
                 close = difflib.get_close_matches(key, allowed, n=1)
@@ -329,13 +381,15 @@ class _Table:
     def key(self, name: str) -> str:
         return f"{self.path}.{name}" if self.path else name
 
-    def raw(self, name: str, default: object = _MISSING, why: str = "it is required") -> Any:
+    def raw(self, name: str, default: object = _SCHEMA, why: str = "it is required") -> Any:
+        if default is _SCHEMA:
+            default = self.defaults.get(name, _MISSING)
         value = self.data.get(name, default)
         if value is _MISSING:
             raise ConfigError(self.key(name), _MISSING, why)
         return value
 
-    def string(self, name: str, default: object = _MISSING,
+    def string(self, name: str, default: object = _SCHEMA,
                choices: tuple[str, ...] | None = None) -> Any:
         if name not in self.data:
             return self.raw(name, default)
@@ -353,7 +407,7 @@ class _Table:
             raise ConfigError(self.key(name), value, "must not be empty (leave the key out)")
         return value
 
-    def integer(self, name: str, default: object, minimum: int,
+    def integer(self, name: str, default: object = _SCHEMA, minimum: int = 0,
                 maximum: int | None = None) -> Any:
         if name not in self.data:
             return self.raw(name, default)
@@ -365,20 +419,20 @@ class _Table:
             raise ConfigError(self.key(name), value, f"must be an integer {bound}")
         return value
 
-    def boolean(self, name: str, default: bool) -> bool:
+    def boolean(self, name: str, default: object = _SCHEMA) -> Any:
         if name not in self.data:
-            return default
+            return self.raw(name, default)
         value = self.data[name]
         if not isinstance(value, bool):
             raise ConfigError(self.key(name), value, "must be true or false")
         return value
 
-    def duration(self, name: str, default: object) -> Any:
+    def duration(self, name: str, default: object = _SCHEMA) -> Any:
         if name not in self.data:
             return self.raw(name, default)
         return parse_duration(self.data[name], self.key(name))
 
-    def strings(self, name: str, default: object = _MISSING) -> Any:
+    def strings(self, name: str, default: object = _SCHEMA) -> Any:
         """A string or a list of strings, as a tuple."""
         if name not in self.data:
             return self.raw(name, default)
@@ -388,9 +442,9 @@ class _Table:
             raise ConfigError(self.key(name), value, "must be a string or a list of strings")
         return tuple(items)
 
-    def numbers(self, name: str, default: tuple[float, ...]) -> tuple[float, ...]:
+    def numbers(self, name: str, default: object = _SCHEMA) -> Any:
         if name not in self.data:
-            return default
+            return self.raw(name, default)
         value = self.data[name]
         if not isinstance(value, list) or not all(
                 isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
@@ -418,38 +472,27 @@ def _names(table: _Table, name: str, what: str) -> tuple[str, ...]:
 
 # --------------------------------------------------------------------------- sections
 
-_DAEMON_KEYS = ("http", "state_file", "checkpoint_every", "tls_cert", "tls_key", "tls_client_ca",
-                "max_message_bytes", "max_batch_rows", "flush_every", "max_clock_skew",
-                "strict_restore", "log_rejected", "max_abs_value")
-_SOURCE_KEYS = ("socket", "bind", "connect", "topics", "curve_secret", "curve_allow",
-                "high_water_mark")
-_STREAM_KEYS = ("name", "topic", "fields", "half_life", "correction", "quantiles",
-                "outlier_sigmas", "outlier_warmup", "mixture", "regression", "max_series",
-                "idle_expiry")
-_MIXTURE_KEYS = ("components", "log", "covariance", "warmup", "seed")
-_REGRESSION_KEYS = ("y", "x", "intercept")
 _TOP_KEYS = ("daemon", "source", "stream", "publish", "merge")
 
 
 def _daemon(data: object) -> DaemonConfig:
-    t = _Table(data, "daemon", _DAEMON_KEYS)
-    d = DaemonConfig()
-    http = t.string("http", d.http)
+    t = _Table(data, "daemon", DaemonConfig)
+    http = t.string("http")
     split_host_port(http, t.key("http"))
     cfg = DaemonConfig(
         http=http,
         state_file=t.path_string("state_file"),
-        checkpoint_every=t.duration("checkpoint_every", d.checkpoint_every),
+        checkpoint_every=t.duration("checkpoint_every"),
         tls_cert=t.path_string("tls_cert"),
         tls_key=t.path_string("tls_key"),
         tls_client_ca=t.path_string("tls_client_ca"),
-        max_message_bytes=t.integer("max_message_bytes", d.max_message_bytes, 16, 2**31 - 1),
-        max_batch_rows=t.integer("max_batch_rows", d.max_batch_rows, 1, 2**31 - 1),
-        flush_every=t.duration("flush_every", d.flush_every),
-        max_clock_skew=t.duration("max_clock_skew", d.max_clock_skew),
-        strict_restore=t.boolean("strict_restore", d.strict_restore),
-        log_rejected=t.integer("log_rejected", d.log_rejected, 0),
-        max_abs_value=_max_abs_value(t, d.max_abs_value),
+        max_message_bytes=t.integer("max_message_bytes", minimum=16, maximum=2**31 - 1),
+        max_batch_rows=t.integer("max_batch_rows", minimum=1, maximum=2**31 - 1),
+        flush_every=t.duration("flush_every"),
+        max_clock_skew=t.duration("max_clock_skew"),
+        strict_restore=t.boolean("strict_restore"),
+        log_rejected=t.integer("log_rejected", minimum=0),
+        max_abs_value=_max_abs_value(t),
     )
     if (cfg.tls_cert is None) != (cfg.tls_key is None):
         present = "tls_cert" if cfg.tls_cert is not None else "tls_key"
@@ -461,9 +504,9 @@ def _daemon(data: object) -> DaemonConfig:
     return cfg
 
 
-def _max_abs_value(t: _Table, default: float) -> float:
+def _max_abs_value(t: _Table) -> float:
     """Largest accepted |value|; above 1e100 squares times weights could overflow float64."""
-    value = t.raw("max_abs_value", default)
+    value = t.raw("max_abs_value")
     if isinstance(value, bool) or not isinstance(value, (int, float)) \
             or not 0 < value <= 1e100:
         raise ConfigError(t.key("max_abs_value"), value,
@@ -481,8 +524,8 @@ def _endpoints(t: _Table, name: str, binding: bool) -> tuple[str, ...]:
 
 
 def _source(data: object, path: str) -> SourceConfig:
-    t = _Table(data, path, _SOURCE_KEYS)
-    socket = t.string("socket", _MISSING, ("pull", "sub"))
+    t = _Table(data, path, SourceConfig)
+    socket = t.string("socket", choices=("pull", "sub"))
     bind = _endpoints(t, "bind", True)
     connect = _endpoints(t, "connect", False)
     if bool(bind) == bool(connect):
@@ -492,7 +535,7 @@ def _source(data: object, path: str) -> SourceConfig:
     if "topics" in t.data and socket == "pull":
         raise ConfigError(t.key("topics"), t.data["topics"],
                           'applies only to socket = "sub" (a PULL socket takes everything)')
-    topics = t.strings("topics", ("",))
+    topics = t.strings("topics")
     if not topics:
         raise ConfigError(t.key("topics"), [], 'must hold at least one prefix ("" = everything)')
     curve_secret = t.path_string("curve_secret")
@@ -502,29 +545,29 @@ def _source(data: object, path: str) -> SourceConfig:
                           "needs curve_secret (the server key that authenticates producers)")
     return SourceConfig(socket=socket, bind=bind, connect=connect, topics=topics,
                         curve_secret=curve_secret, curve_allow=curve_allow,
-                        high_water_mark=t.integer("high_water_mark", 10000, 1))
+                        high_water_mark=t.integer("high_water_mark", minimum=1))
 
 
 def _mixture(data: object, path: str) -> MixtureConfig:
-    t = _Table(data, path, _MIXTURE_KEYS)
+    t = _Table(data, path, MixtureConfig)
     return MixtureConfig(
-        components=t.integer("components", _MISSING, 1, 64),
-        log=t.boolean("log", False),
-        covariance=t.string("covariance", "full", ("full", "diag")),
-        warmup=t.integer("warmup", 200, 0),
-        seed=t.integer("seed", 0, 0, 2**63 - 1),
+        components=t.integer("components", minimum=1, maximum=64),
+        log=t.boolean("log"),
+        covariance=t.string("covariance", choices=("full", "diag")),
+        warmup=t.integer("warmup", minimum=0),
+        seed=t.integer("seed", minimum=0, maximum=2**63 - 1),
     )
 
 
 def _regression(data: object, path: str, fields: tuple[str, ...]) -> RegressionConfig:
-    t = _Table(data, path, _REGRESSION_KEYS)
+    t = _Table(data, path, RegressionConfig)
     y = t.string("y")
     if y not in fields:
         raise ConfigError(t.key("y"), y, f"is not one of the stream's fields {list(fields)}")
     x = t.strings("x")
     if not x:
         raise ConfigError(t.key("x"), [], "must name at least one field")
-    intercept = t.boolean("intercept", True)
+    intercept = t.boolean("intercept")
     for v in x:
         if v not in fields:
             raise ConfigError(t.key("x"), v, f"is not one of the stream's fields {list(fields)}")
@@ -539,7 +582,7 @@ def _regression(data: object, path: str, fields: tuple[str, ...]) -> RegressionC
 
 
 def _stream(data: object, path: str) -> StreamConfig:
-    t = _Table(data, path, _STREAM_KEYS)
+    t = _Table(data, path, StreamConfig)
     name = t.string("name")
     if not LABEL_NAME.fullmatch(name):
         raise ConfigError(t.key("name"), name, "is not a valid stream name (letters, digits "
@@ -553,29 +596,29 @@ def _stream(data: object, path: str) -> StreamConfig:
             raise ConfigError(t.key("topic"), topic.text, f"captures the label {{{label}}}, "
                               "which sigmad's metrics (or Prometheus) reserve; rename it")
     fields = _names(t, "fields", "field")
-    half_life = t.raw("half_life", None)
+    half_life = t.raw("half_life")
     if half_life is not None:
         half_life = parse_half_life(half_life, t.key("half_life"))
-    quantiles = t.numbers("quantiles", (0.5, 0.9, 0.99))
+    quantiles = t.numbers("quantiles")
     for q in quantiles:
         if not 0.0 < q < 1.0:
             raise ConfigError(t.key("quantiles"), q, "must lie strictly between 0 and 1")
-    sigmas = t.numbers("outlier_sigmas", ())
+    sigmas = t.numbers("outlier_sigmas")
     for s in sigmas:
         if not (math.isfinite(s) and s > 0):
             raise ConfigError(t.key("outlier_sigmas"), s, "must be a finite number > 0")
-    mixture = t.raw("mixture", None)
-    regression = t.raw("regression", None)
-    idle = t.raw("idle_expiry", None)
+    mixture = t.raw("mixture")
+    regression = t.raw("regression")
+    idle = t.raw("idle_expiry")
     return StreamConfig(
         name=name, topic=topic, fields=fields, half_life=half_life,
-        correction=t.string("correction", "reliability", CORRECTIONS),
+        correction=t.string("correction", choices=CORRECTIONS),
         quantiles=quantiles, outlier_sigmas=sigmas,
-        outlier_warmup=t.integer("outlier_warmup", 30, 0),
+        outlier_warmup=t.integer("outlier_warmup", minimum=0),
         mixture=None if mixture is None else _mixture(mixture, t.key("mixture")),
         regression=None if regression is None else
         _regression(regression, t.key("regression"), fields),
-        max_series=t.integer("max_series", 1000, 1),
+        max_series=t.integer("max_series", minimum=1),
         idle_expiry=None if idle is None else parse_duration(idle, t.key("idle_expiry")),
     )
 
@@ -599,17 +642,17 @@ def _build(data: dict) -> Config:
                     for i, s in enumerate(_array_of_tables(data, "stream")))
     publish = merge = None
     if "publish" in data:
-        t = _Table(data["publish"], "publish", ("bind", "every"))
+        t = _Table(data["publish"], "publish", PublishConfig)
         bind = _endpoints(t, "bind", True)
         if not bind:
             raise ConfigError("publish.bind", _MISSING, "a [publish] table needs an endpoint")
-        publish = PublishConfig(bind=bind, every=t.duration("every", 2.0))
+        publish = PublishConfig(bind=bind, every=t.duration("every"))
     if "merge" in data:
-        t = _Table(data["merge"], "merge", ("connect", "shard_expiry"))
+        t = _Table(data["merge"], "merge", MergeConfig)
         connect = _endpoints(t, "connect", False)
         if not connect:
             raise ConfigError("merge.connect", _MISSING, "a [merge] table needs endpoints")
-        merge = MergeConfig(connect=connect, shard_expiry=t.duration("shard_expiry", 30.0))
+        merge = MergeConfig(connect=connect, shard_expiry=t.duration("shard_expiry"))
 
     if not sources and merge is None:
         raise ConfigError("source", _MISSING, "add a [[source]] (or a [merge] table) so the "
