@@ -454,6 +454,7 @@ def test_corrupt_checkpoint_is_moved_aside_counted_and_strict_refuses(tmp_path):
     assert len(list(tmp_path.glob("s.state.corrupt-*"))) == 2
 
 
+@pytest.mark.slow
 def test_strict_restore_makes_the_cli_exit_2_with_one_sentence(tmp_path):
     (tmp_path / "s.state").write_bytes(b"junk")
     (tmp_path / "c.toml").write_text(
@@ -500,6 +501,7 @@ def test_a_failed_write_is_counted_and_keeps_the_old_file(tmp_path, monkeypatch)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s.state"]
 
 
+@pytest.mark.slow
 def test_inspect_prints_series_and_estimates(tmp_path):
     e = filled_engine()
     path = tmp_path / "s.state"
@@ -541,6 +543,7 @@ max_series = 5000
 """
 
 
+@pytest.mark.slow
 def test_unwritable_state_directory_is_retried_while_ingest_goes_on(tmp_path):
     port = free_port()
     missing = tmp_path / "not-yet"
@@ -559,6 +562,7 @@ def test_unwritable_state_directory_is_retried_while_ingest_goes_on(tmp_path):
     assert "checkpoint to" in d.log.read_text() and "retrying" in d.log.read_text()
 
 
+@pytest.mark.slow
 def test_a_daemon_upgraded_over_a_version_1_file_keeps_its_state(tmp_path):
     state = tmp_path / "s.state"
     state.write_bytes(FORMAT_1.read_bytes())
@@ -583,6 +587,7 @@ BATCH = 50
 STATS: dict[str, int] = {}
 
 
+@pytest.mark.slow
 def test_sigkill_during_ingest_and_checkpointing_never_tears_the_file(tmp_path):
     rng = np.random.default_rng(20)
     data = rng.normal(5.0, 2.0, 1_500_000)      # the one stream, sent in order

@@ -13,6 +13,8 @@ import pytest
 from harness import ROOT, Sigmad, free_port, value
 from sigmad.daemon import __version__
 
+pytestmark = pytest.mark.slow   # the sigmad command as a subprocess
+
 
 def test_python_m_daemon_prints_the_version():
     out = subprocess.run([sys.executable, "-m", "sigmad.daemon", "--version"],

@@ -19,6 +19,8 @@ from conftest import need_binary, need_module
 from harness import Sigmad, free_port, scrape, value
 from sigmad.daemon.client import Producer
 
+pytestmark = pytest.mark.slow   # real daemon subprocesses
+
 CONFIG = """
 [daemon]
 http = "{HTTP}"

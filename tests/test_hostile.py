@@ -18,6 +18,7 @@ import tracemalloc
 
 import msgpack
 import numpy as np
+import pytest
 from conftest import need_module
 from harness import ROOT
 from hypothesis import HealthCheck, given, settings
@@ -107,6 +108,7 @@ bodies = st.one_of(
 )
 messages = st.lists(st.tuples(st.sampled_from(TOPICS), bodies), min_size=1, max_size=12)
 
+@pytest.mark.slow
 @settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(messages)
 def test_fuzzed_messages_never_escape_and_rejections_change_nothing(batch):
@@ -202,6 +204,7 @@ def test_largest_accepted_values_keep_numpy_moments():
     assert math.isclose(view.variance[0], float(np.var(x, ddof=1)), rel_tol=1e-12)
 
 
+@pytest.mark.slow
 def test_atheris_fuzz_of_ingest_finds_nothing(tmp_path):
     need_module("atheris")
     # seeds: a valid single observation, a batch, and a huge-header body
@@ -218,6 +221,7 @@ def test_atheris_fuzz_of_ingest_finds_nothing(tmp_path):
     assert "Done" in r.stderr
 
 
+@pytest.mark.slow
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(messages)
 def test_the_hot_path_judges_fuzzed_messages_exactly_as_the_general_path(batch):

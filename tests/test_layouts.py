@@ -221,6 +221,7 @@ def drains(draw):
     return out
 
 
+@pytest.mark.slow
 @settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(drains())
 def test_layouts_read_fuzzed_drains_exactly_as_messages_one_by_one(batch):
@@ -342,6 +343,7 @@ batch_body = st.builds(
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(st.tuples(st.sampled_from([b"a.x", b"a.y", b"p.q"]), batch_body),
                 min_size=1, max_size=30))
+@pytest.mark.slow
 def test_batch_layouts_read_fuzzed_batches_exactly_as_messages_one_by_one(messages):
     drain = []
     for topic, (n, vals, weighted, extra, flip) in messages:

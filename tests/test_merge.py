@@ -241,6 +241,7 @@ def test_the_publisher_sends_what_the_merger_decodes():
 
 
 # ------------------------------------------------------------------ end to end
+@pytest.mark.slow
 def test_three_shards_and_a_merger_match_one_daemon_that_saw_everything(tmp_path):
     shards = start_shards(tmp_path, SHARD, 3)
     ref_port, junk_port = free_port(), free_port()

@@ -12,8 +12,11 @@ import threading
 import time
 
 import numpy as np
+import pytest
 from harness import Sigmad, free_port, scrape, value
 from sigmad.daemon.client import Producer
+
+pytestmark = pytest.mark.slow   # a flood against a real daemon
 
 CONFIG = """
 [daemon]

@@ -32,6 +32,7 @@ def wheel(tmp_path_factory) -> Path:
     return built
 
 
+@pytest.mark.slow
 def test_wheel_holds_only_the_sigmad_namespace(wheel: Path) -> None:
     names = zipfile.ZipFile(wheel).namelist()
     tops = {n.split("/")[0] for n in names if not n.split("/")[0].endswith(".dist-info")}

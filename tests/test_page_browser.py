@@ -17,6 +17,8 @@ from conftest import need_binary
 from harness import Sigmad, free_port, scrape
 from sigmad.daemon.client import Producer
 
+pytestmark = pytest.mark.slow   # Chromium
+
 BROKEN = (b"<!DOCTYPE html><html><body><p id='x'>hello</p>"
           b"<script>console.error('deliberate-console-error'); notDefinedAnywhere();"
           b"</script></body></html>")

@@ -16,11 +16,14 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import pytest
 from conftest import need_binary
 from sigmad.daemon.config.load import parse_config
 from sigmad.daemon.engine.engine import Engine
 from sigmad.daemon.export.model import families
 from sigmad.daemon.ingest.wire import encode
+
+pytestmark = pytest.mark.slow   # promtool
 
 ROOT = Path(__file__).resolve().parent.parent
 RULES = ROOT / "configs" / "prometheus" / "sigmad-pooling.rules.yml"

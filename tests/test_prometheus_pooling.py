@@ -18,6 +18,8 @@ from fleet import Prometheus, fan_out, start_shards, stop_all, wait_total
 from harness import Sigmad, free_port, value
 from sigmad.daemon.ingest.wire import encode
 
+pytestmark = pytest.mark.slow   # a real Prometheus
+
 CONFIG = """
 [daemon]
 http = "{HTTP}"

@@ -19,6 +19,8 @@ from conftest import need_binary
 from harness import ROOT, Sigmad, free_port, samples, value
 from sigmad.daemon.client import Producer
 
+pytestmark = pytest.mark.slow   # real daemon subprocesses with TLS and CurveZMQ
+
 CURVE_CONFIG = """
 [daemon]
 http = "{HTTP}"

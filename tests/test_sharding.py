@@ -20,6 +20,8 @@ from harness import Sigmad, free_port, value
 from sigmad.daemon.client import Producer
 from sigmad.daemon.ingest.wire import encode
 
+pytestmark = pytest.mark.slow   # real daemon subprocesses
+
 STREAM = """
 [[stream]]
 name = "lat"

@@ -14,6 +14,8 @@ import pytest
 import sigmad.daemon.bench.suite as bench
 from conftest import need_module
 
+pytestmark = pytest.mark.slow   # timed throughput guards
+
 
 def _better_of_two(measure, higher_is_better: bool = True):
     """The better of two runs: a shared machine's stalls hit one run, rarely both."""
