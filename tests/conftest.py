@@ -48,3 +48,32 @@ def lre(estimate: float, certified: float) -> float:
     if certified == 0.0:
         return min(15.0, -math.log10(abs(estimate)))
     return min(15.0, -math.log10(abs(estimate - certified) / abs(certified)))
+
+
+#: A latency stream with outliers and a log-normal mixture, and a two-field pair with a
+#: regression: the configuration the in-process engine, render and page tests share.
+LATENCY_AND_PAIR = """
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:7999"
+
+[[stream]]
+name = "lat"
+topic = "lat.{service}"
+fields = ["ms"]
+half_life = "10m"
+outlier_sigmas = [3.0]
+mixture = { components = 2, log = true, warmup = 50 }
+
+[[stream]]
+name = "pair"
+topic = "px.{venue}"
+fields = ["a", "b"]
+regression = { y = "b", x = ["a"] }
+"""
+
+
+@pytest.fixture
+def latency_and_pair() -> str:
+    """TOML of :data:`LATENCY_AND_PAIR` (never bound: the tests drive the engine directly)."""
+    return LATENCY_AND_PAIR

@@ -9,53 +9,33 @@ from sigmad.daemon.config.load import parse_config
 from sigmad.daemon.engine.engine import Engine
 from sigmad.daemon.ingest.wire import encode
 
-CONFIG = """
-[[source]]
-socket = "pull"
-bind = "tcp://127.0.0.1:7999"
 
-[[stream]]
-name = "lat"
-topic = "lat.{service}"
-fields = ["ms"]
-half_life = "10m"
-outlier_sigmas = [3.0]
-mixture = { components = 2, warmup = 50 }
-
-[[stream]]
-name = "pair"
-topic = "px.pair"
-fields = ["a", "b"]
-regression = { y = "b", x = ["a"] }
-"""
-
-
-def _engine(text: str = CONFIG) -> Engine:
+def _engine(text: str) -> Engine:
     return Engine(parse_config(text))
 
 
-def test_export_then_restore_gives_identical_estimates():
-    e = _engine()
+def test_export_then_restore_gives_identical_estimates(latency_and_pair):
+    e = _engine(latency_and_pair)
     rng = np.random.default_rng(1)
     for t in range(20):
         e.ingest(b"lat.checkout", encode({"ms": rng.lognormal(2, 0.5, 30)}), now=1000.0 + t)
-        e.ingest(b"px.pair", encode({"a": rng.normal(size=10), "b": rng.normal(size=10)}),
+        e.ingest(b"px.east", encode({"a": rng.normal(size=10), "b": rng.normal(size=10)}),
                  now=1000.0 + t)
         e.flush(1000.0 + t)
     state = msgpack.unpackb(msgpack.packb(e.export_state()))
-    fresh = _engine()
+    fresh = _engine(latency_and_pair)
     assert fresh.restore_state(state, now=2000.0) == []
     assert fresh.snapshot.series.keys() == e.snapshot.series.keys()
     for key, view in e.snapshot.series.items():
         assert fresh.snapshot.series[key] == view   # every read-out equal, field by field
 
 
-def test_restore_drops_series_whose_stream_changed_and_keeps_the_rest():
-    e = _engine()
+def test_restore_drops_series_whose_stream_changed_and_keeps_the_rest(latency_and_pair):
+    e = _engine(latency_and_pair)
     e.ingest(b"lat.checkout", encode({"ms": [1.0, 2.0, 3.0]}), now=10.0)
-    e.ingest(b"px.pair", encode({"a": [1.0, 2.0, 3.0], "b": [2.0, 4.0, 7.0]}), now=10.0)
+    e.ingest(b"px.east", encode({"a": [1.0, 2.0, 3.0], "b": [2.0, 4.0, 7.0]}), now=10.0)
     e.flush(10.0)
-    changed = CONFIG.replace('fields = ["a", "b"]', 'fields = ["a", "b", "c"]').replace(
+    changed = latency_and_pair.replace('fields = ["a", "b"]', 'fields = ["a", "b", "c"]').replace(
         'x = ["a"]', 'x = ["a", "c"]')
     fresh = _engine(changed)
     dropped = fresh.restore_state(e.export_state(), now=11.0)
@@ -67,14 +47,14 @@ def test_restore_drops_series_whose_stream_changed_and_keeps_the_rest():
 @pytest.mark.parametrize("bad", [{"stream": "lat"}, {"stream": 5}, "junk",
                                  {"stream": "lat", "labels": ["x"], "fields": ["ms"],
                                   "kinds": ["moments", "mixture"], "moments": {"kind": "no"}}])
-def test_restore_survives_malformed_entries(bad):
-    fresh = _engine()
+def test_restore_survives_malformed_entries(bad, latency_and_pair):
+    fresh = _engine(latency_and_pair)
     dropped = fresh.restore_state([bad], now=1.0)
     assert len(dropped) == 1
     assert fresh.snapshot.series == {}
 
 
-def test_many_at_once_equals_one_by_one_for_every_message_shape():
+def test_many_at_once_equals_one_by_one_for_every_message_shape(latency_and_pair):
     # the hot path (ingest_many) must give exactly what the general path gives
     rng = np.random.default_rng(7)
     shapes = [
@@ -92,11 +72,11 @@ def test_many_at_once_equals_one_by_one_for_every_message_shape():
     pair = [encode({"a": 1.0, "b": 2.0}), encode(3.0), encode([1.0, 2.0]),
             encode({"a": [1.0, 2.0], "b": [3.0, 4.0]}), encode({"a": 1.0}),
             encode({"a": 1.0, "b": [2.0]}), msgpack.packb({"values": {"a": 1, "b": None}})]
-    frames = ([(b"lat.a", body) for body in shapes] + [(b"px.pair", b) for b in pair]) * 3
-    one, many = _engine(), _engine()
+    frames = ([(b"lat.a", body) for body in shapes] + [(b"px.east", b) for b in pair]) * 3
+    one, many = _engine(latency_and_pair), _engine(latency_and_pair)
     for e in (one, many):   # the series exist in both
         e.ingest(b"lat.a", encode({"ms": 1.0}), now=1000.0)
-        e.ingest(b"px.pair", encode({"a": 0.5, "b": 1.5}), now=1000.0)
+        e.ingest(b"px.east", encode({"a": 0.5, "b": 1.5}), now=1000.0)
     for topic, body in frames:
         one.ingest(topic, body, now=1001.0)
     many.ingest_many(*zip(*frames, strict=True), now=1001.0)

@@ -11,26 +11,6 @@ from sigmad.daemon.engine.engine import Engine
 from sigmad.daemon.export.model import families
 from sigmad.daemon.ingest.wire import encode
 
-CONFIG = """
-[[source]]
-socket = "pull"
-bind = "tcp://127.0.0.1:7999"
-
-[[stream]]
-name = "lat"
-topic = "lat.{service}"
-fields = ["ms"]
-half_life = "10m"
-outlier_sigmas = [3.0]
-mixture = { components = 2, log = true, warmup = 50 }
-
-[[stream]]
-name = "pair"
-topic = "px.{venue}"
-fields = ["a", "b"]
-regression = { y = "b", x = ["a"] }
-"""
-
 
 class _Families:
     def __init__(self, snap, now):
@@ -46,8 +26,8 @@ def _reference(snap, now) -> str:
     return generate_latest(reg).decode()
 
 
-def _engine() -> Engine:
-    e = Engine(parse_config(CONFIG))
+def _engine(config_text: str) -> Engine:
+    e = Engine(parse_config(config_text))
     rng = np.random.default_rng(1)
     for t in range(5):
         for svc in ("cart", 'we"ird\\name'):
@@ -58,8 +38,8 @@ def _engine() -> Engine:
     return e
 
 
-def test_rendered_text_equals_prometheus_client_rendering_of_the_same_families():
-    e = _engine()
+def test_rendered_text_equals_prometheus_client_rendering_of_the_families(latency_and_pair):
+    e = _engine(latency_and_pair)
     r = render.SeriesRenderer()
     now = 130.0
     ours = r.render(e.snapshot, now).decode()
@@ -68,8 +48,8 @@ def test_rendered_text_equals_prometheus_client_rendering_of_the_same_families()
     assert ours == _reference(e.snapshot, now)   # byte for byte, same order
 
 
-def test_only_changed_series_are_rendered_again(monkeypatch):
-    e = _engine()
+def test_only_changed_series_are_rendered_again(monkeypatch, latency_and_pair):
+    e = _engine(latency_and_pair)
     r = render.SeriesRenderer()
     r.render(e.snapshot, 120.0)
     calls = []
