@@ -103,7 +103,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 def _cmd_bench(args: argparse.Namespace) -> int:
     from sigmad.daemon.bench.suite import main as bench_main
 
-    return bench_main(args.quick)
+    return bench_main(args.quick, args.json)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -142,8 +142,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     bench = sub.add_parser("bench", help="end-to-end throughput on this machine, beside "
                                          "the limits it is measured against")
-    bench.add_argument("--quick", action="store_true", help="smaller sizes (seconds, not a "
-                       "minute); the figures are noisier")
+    bench.add_argument("--quick", action="store_true", help="smaller sizes: the same "
+                       "verdicts where a figure does not depend on size, none where it does")
+    bench.add_argument("--json", metavar="FILE", help="also write the rows as JSON to FILE")
     bench.set_defaults(func=_cmd_bench)
 
     check = sub.add_parser("check-config", help="validate a configuration and print it")
