@@ -64,12 +64,14 @@ fields = ["ms"]
 half_life = "10m"
 outlier_sigmas = [3.0]
 mixture = { components = 2, log = true, warmup = 50 }
+thresholds = [5.0, 10.0]
 
 [[stream]]
 name = "pair"
 topic = "px.{venue}"
 fields = ["a", "b"]
 regression = { y = "b", x = ["a"] }
+thresholds = { a = [0.0] }
 """
 
 

@@ -474,3 +474,56 @@ def test_readme_key_table_shows_the_schema_defaults(table, schema):
             continue    # "one required" / inline tables: shown in words, not as one value
         if row == f"{table}.{key}":
             assert documented[row].strip("`") == show_default(schema, key), row
+
+
+# ------------------------------------------------------------------ thresholds
+
+def test_thresholds_as_a_list_belong_to_a_single_field_stream():
+    s = parse_config(minimal("thresholds = [100, 300.0]")).streams[0]
+    assert s.thresholds == ((100.0, 300.0),)
+
+
+def test_thresholds_per_field_and_absent_fields_get_none():
+    s = parse_config(SOURCE + STREAM.replace('["ms"]', '["ms", "bytes"]')
+                     + "thresholds = { bytes = [1e3, 1e6] }\n").streams[0]
+    assert s.thresholds == ((), (1e3, 1e6))
+
+
+def test_no_thresholds_by_default():
+    assert parse_config(minimal()).streams[0].thresholds == ()
+
+
+TWO = SOURCE + STREAM.replace('["ms"]', '["ms", "bytes"]')
+
+
+@pytest.mark.parametrize(("text", "key", "shown", "words"), [
+    (minimal("thresholds = [300.0, 100.0]"), "stream[0].thresholds.ms", "100.0",
+     "increasing"),
+    (minimal("thresholds = [100.0, 100.0]"), "stream[0].thresholds.ms", "100.0",
+     "increasing"),
+    (minimal("thresholds = [100.0, inf]"), "stream[0].thresholds.ms", "inf", "finite"),
+    (minimal("thresholds = [nan]"), "stream[0].thresholds.ms", "nan", "finite"),
+    (minimal('thresholds = ["300ms"]'), "stream[0].thresholds.ms", "['300ms']", "numbers"),
+    (minimal("thresholds = []"), "stream[0].thresholds.ms", "[]", "at least one"),
+    (minimal("thresholds = { bytes = [1.0] }"), "stream[0].thresholds.bytes", "[1.0]",
+     "not one of the stream"),
+    (minimal("thresholds = 300.0"), "stream[0].thresholds", "300.0", "list"),
+    (minimal("thresholds = [" + ", ".join(str(i) for i in range(33)) + "]"),
+     "stream[0].thresholds.ms", "33", "at most 32"),
+    (TWO + "thresholds = [100.0]\n", "stream[0].thresholds", "[100.0]",
+     "{ field = [...] }"),
+    (TWO + "thresholds = { ms = [5.0, -inf] }\n", "stream[0].thresholds.ms", "-inf",
+     "finite"),
+])
+def test_bad_thresholds_name_stream_field_and_value(text, key, shown, words):
+    err = error(text)
+    assert err.key == key
+    message = str(err)
+    assert f"{key} = {shown}" in message or shown in message
+    assert words in message
+    assert "'lat'" in message          # the stream's name
+
+
+def test_describe_lists_thresholds():
+    text = describe(parse_config(minimal("thresholds = [100.0, 300.0]")))
+    assert "thresholds  ms > 100, 300" in text

@@ -12,7 +12,8 @@ by merging the shards' estimators:
 - Mixtures are pooled exactly (K components per shard, weighted by their W) and
   then reduced back to the stream's K by Runnalls' method, which keeps the
   pooled mean and covariance; quantiles come from that reduced mixture.
-- Counters (observations, outliers) are sums of the shards' own counts.
+- Counters (observations, outliers) are sums of the shards' own counts; so are the
+  threshold histograms, whose decayed shares pool exactly (``Thresholds.merge``).
 
 A merger may have ``[[source]]``s of its own: its engine's series are pooled
 as one more shard. With ``[publish]`` it publishes the pooled states, so a
@@ -130,6 +131,10 @@ def pool(parts: list[Series]) -> Series:
     out.mixture = mix
     out.observations = sum(p.observations for p in parts)
     out.outliers = [sum(c) for c in zip(*(p.outliers for p in parts), strict=True)]
+    out.thresholds = [t.copy() for t in first.thresholds] or ()
+    for p in parts[1:]:
+        for mine, theirs in zip(out.thresholds, p.thresholds, strict=True):
+            mine.merge(theirs)
     out.version = sum(p.version for p in parts)
     out.last_update = max(p.last_update for p in parts)
     return out

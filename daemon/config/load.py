@@ -174,6 +174,8 @@ class StreamConfig:
     regression: RegressionConfig | None = None
     max_series: int = 1000
     idle_expiry: float | None = _duration(None)
+    # per field, in field order: histogram bounds and exceedance thresholds (() = none)
+    thresholds: tuple[tuple[float, ...], ...] = ()
 
     @property
     def dim(self) -> int:
@@ -472,6 +474,7 @@ def _names(table: _Table, name: str, what: str) -> tuple[str, ...]:
 
 # --------------------------------------------------------------------------- sections
 
+MAX_THRESHOLDS = 32   # per field: each is a histogram bucket and two gauges per series
 _TOP_KEYS = ("daemon", "source", "stream", "publish", "merge")
 
 
@@ -581,6 +584,43 @@ def _regression(data: object, path: str, fields: tuple[str, ...]) -> RegressionC
     return RegressionConfig(y=y, x=x, intercept=intercept)
 
 
+def _thresholds(value: object, key: str, stream: str,
+                fields: tuple[str, ...]) -> tuple[tuple[float, ...], ...]:
+    """``thresholds = [...]`` (a one-field stream) or ``{ field = [...] }``, per field."""
+    where = f"in stream {stream!r}"
+    if isinstance(value, list):
+        if len(fields) != 1:
+            raise ConfigError(key, value, f"must be written {{ field = [...] }} {where}, "
+                              f"which has the fields {list(fields)}")
+        value = {fields[0]: value}
+    if not isinstance(value, dict):
+        raise ConfigError(key, value, f"must be a list of numbers or a table of lists {where}")
+    for name in value:
+        if name not in fields:
+            raise ConfigError(f"{key}.{name}", value[name],
+                              f"is not one of the stream's fields {list(fields)} ({where})")
+    out = []
+    for name in fields:
+        bounds = value.get(name, [])
+        at = f"{key}.{name}"
+        if not isinstance(bounds, list) or not all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) for v in bounds):
+            raise ConfigError(at, bounds, f"must be a list of numbers ({where})")
+        if name in value and not bounds:
+            raise ConfigError(at, bounds, f"must hold at least one number ({where})")
+        if len(bounds) > MAX_THRESHOLDS:
+            raise ConfigError(at, len(bounds), f"thresholds are too many: at most "
+                              f"{MAX_THRESHOLDS} per field ({where})")
+        for i, v in enumerate(bounds):
+            if not math.isfinite(v):
+                raise ConfigError(at, float(v), f"must be finite ({where})")
+            if i and not v > bounds[i - 1]:
+                raise ConfigError(at, float(v), f"must be increasing: it follows "
+                                  f"{float(bounds[i - 1])!r} ({where})")
+        out.append(tuple(float(v) for v in bounds))
+    return tuple(out)
+
+
 def _stream(data: object, path: str) -> StreamConfig:
     t = _Table(data, path, StreamConfig)
     name = t.string("name")
@@ -610,6 +650,7 @@ def _stream(data: object, path: str) -> StreamConfig:
     mixture = t.raw("mixture")
     regression = t.raw("regression")
     idle = t.raw("idle_expiry")
+    thresholds = t.raw("thresholds", None)   # None: absent (the schema's () is the result)
     return StreamConfig(
         name=name, topic=topic, fields=fields, half_life=half_life,
         correction=t.string("correction", choices=CORRECTIONS),
@@ -620,6 +661,8 @@ def _stream(data: object, path: str) -> StreamConfig:
         _regression(regression, t.key("regression"), fields),
         max_series=t.integer("max_series", minimum=1),
         idle_expiry=None if idle is None else parse_duration(idle, t.key("idle_expiry")),
+        thresholds=() if thresholds is None else
+        _thresholds(thresholds, t.key("thresholds"), name, fields),
     )
 
 
@@ -823,6 +866,10 @@ def describe(config: Config) -> str:
         source = "mixture" if st.mixture else "normal model"
         lines.append("    quantiles   " + (f"{', '.join(f'{q:g}' for q in st.quantiles)} "
                                          f"(from the {source})" if st.quantiles else "none"))
+        for name, bounds in zip(st.fields, st.thresholds, strict=False):
+            if bounds:
+                lines.append(f"    thresholds  {name} > {', '.join(f'{b:g}' for b in bounds)}"
+                             " (histogram bounds, exceedance shares)")
         if st.outlier_sigmas:
             lines.append(f"    outliers    beyond {', '.join(f'{s:g}' for s in st.outlier_sigmas)}"
                          f" sigma, after {st.outlier_warmup} observations")

@@ -21,6 +21,8 @@ from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, S
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
+from sigmad.estimators.model_tail import nominal_rate, tail_probability
+from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
 from sigmad.estimators.validation import screen_batch
 
 log = logging.getLogger("sigmad.engine")
@@ -95,6 +97,7 @@ class Series:
     rows: list | tuple = ()                       # single observations waiting: floats (d = 1)
     #                                               or tuples of d, all from one arrival
     extras: list | tuple = ()                     # (row index, weight|None, time|None)
+    thresholds: list | tuple = ()                 # Thresholds per field of st.threshold_at
     # () until needed: an idle series should cost as little memory as it can
 
     def queue(self, chunk: tuple) -> None:
@@ -140,6 +143,9 @@ class StreamState:
         self.reg_y = None if reg is None else self.fields.index(reg.y)
         self.reg_xy = None if reg is None else self.reg_x + [self.reg_y]   # [X | y] columns
         self.log_mixture = cfg.mixture is not None and cfg.mixture.log
+        # (field index, bounds) of each field with thresholds
+        self.threshold_at = tuple((i, b) for i, b in enumerate(cfg.thresholds) if b)
+        self.outlier_rates = tuple(nominal_rate(k) for k in cfg.outlier_sigmas)
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
         cfg = self.cfg
@@ -154,7 +160,11 @@ class StreamState:
                           half_life=cfg.half_life, warmup=m.warmup, seed=m.seed)
         key = (self.name, tuple(zip(cfg.topic.labels, labels, strict=True)))
         return Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
-                      [0] * len(cfg.outlier_sigmas), key=key)
+                      [0] * len(cfg.outlier_sigmas), key=key,
+                      thresholds=self.new_thresholds())
+
+    def new_thresholds(self) -> list[Thresholds] | tuple:
+        return [Thresholds(b, self.cfg.half_life) for _, b in self.threshold_at] or ()
 
 
 def _kinds(cfg: StreamConfig) -> list[str]:
@@ -168,7 +178,7 @@ def series_state(s: Series) -> dict:
     Pending rows are not included: flush first. O(state size).
     """
     cfg = s.stream.cfg
-    return {
+    d = {
         "stream": cfg.name, "labels": list(s.labels), "fields": list(cfg.fields),
         "kinds": s.stream.kinds, "observations": s.observations, "version": s.version,
         "last_update": s.last_update, "outliers": list(s.outliers),
@@ -177,6 +187,9 @@ def series_state(s: Series) -> dict:
         "regression": None if s.regression is None else s.regression.to_dict(),
         "mixture": None if s.mixture is None else s.mixture.to_dict(),
     }
+    if s.thresholds:   # absent for streams without thresholds, as before they existed
+        d["threshold_counts"] = [th.to_dict() for th in s.thresholds]
+    return d
 
 
 def restore_series(st: StreamState, d: dict) -> Series:
@@ -212,6 +225,7 @@ def restore_series(st: StreamState, d: dict) -> Series:
                                     f"must hold one count per threshold {d['thresholds']}")
         if list(d["thresholds"]) == list(cfg.outlier_sigmas):
             s.outliers = outliers
+        s.thresholds = restore_thresholds(st, d.get("threshold_counts"))
         s.observations = int(d["observations"])
         s.version = int(d["version"])
         s.last_update = float(d["last_update"])
@@ -221,6 +235,20 @@ def restore_series(st: StreamState, d: dict) -> Series:
         raise IncompatibleError("series", type(exc).__name__, f"malformed state: {exc}") \
             from None
     return s
+
+
+def restore_thresholds(st: StreamState, saved: list | None) -> list[Thresholds] | tuple:
+    """The series' Thresholds from their saved forms: kept (counters resume) when the
+    bounds and half-life are the stream's now, fresh otherwise or when absent (an
+    older checkpoint). IncompatibleError for a malformed state. O(fields k)."""
+    fresh = st.new_thresholds()
+    if not saved:
+        return fresh
+    if not isinstance(saved, list):
+        raise IncompatibleError("threshold_counts", type(saved).__name__, "must be a list")
+    old = [Thresholds.from_dict(d) for d in saved]
+    by_bounds = {tuple(t.bounds.tolist()): t for t in old if t.half_life == st.cfg.half_life}
+    return [by_bounds.get(tuple(t.bounds.tolist()), t) for t in fresh] or ()
 
 
 def check_estimators(st: StreamState, reg: Regression | None, mix: Mixture | None) -> None:
@@ -287,12 +315,36 @@ def view_of(s: Series) -> SeriesView:
             residual_stddev=float(rg.residual_stddev(corr)),
             residual_dof=float(rg.residual_dof(corr)),
             r_squared=float(rg.r_squared), y=cfg.regression.y)
+    means, variances = _floats(m.mean), _floats(m.variance(corr))
     # positional, in SeriesView's field order: 22 keywords cost 2 us a view
     return SeriesView(
         st.name, s.key[1], st.fields, s.version, s.observations, s.last_update, m.clock,
-        cfg.half_life, m.weight_sum, m.weight_sq_sum, m.effective_samples, _floats(m.mean),
-        _floats(m.variance(corr)), covariance, correlation, st.quantile_at, quantiles,
-        cfg.outlier_sigmas, tuple(s.outliers), mixture, regression, _floats(m.scatter))
+        cfg.half_life, m.weight_sum, m.weight_sq_sum, m.effective_samples, means,
+        variances, covariance, correlation, st.quantile_at, quantiles,
+        cfg.outlier_sigmas, tuple(s.outliers), mixture, regression, _floats(m.scatter),
+        *(_threshold_views(s, means, variances) if s.thresholds else ()))
+
+
+def _threshold_views(s: Series, means: tuple, variances: tuple) -> tuple:
+    """(threshold_at, buckets, value_sums, model shares, observed shares) of a series:
+    the model's share from the warm mixture (its field's marginal), else the normal
+    model of the moments. O(fields k K)."""
+    st, mx = s.stream, s.mixture
+    warm = mx is not None and mx.warm
+    if warm:
+        pi, mu, sd = mx.weights, mx.means, mx.stddevs
+    model = []
+    for i, b in st.threshold_at:
+        if warm:
+            model.append(_floats(mixture_exceedance(b, pi, mu[:, i], sd[:, i], mx.log)))
+        else:
+            v = variances[i]
+            model.append(_floats(normal_exceedance(b, means[i], math.sqrt(v) if v >= 0.0
+                                                   else math.nan)))
+    ths = s.thresholds
+    return (st.threshold_at, tuple(_floats(th._cumulative) for th in ths),
+            tuple(th.value_sum for th in ths), tuple(model),
+            tuple(_floats(th.observed_share) for th in ths))
 
 
 class Engine:
@@ -811,15 +863,24 @@ class Engine:
             return False
         m = series.moments
         if st.cfg.outlier_sigmas and m.count >= st.cfg.outlier_warmup:
-            dist = self._distance(series, x)
-            for i, threshold in enumerate(st.cfg.outlier_sigmas):
-                series.outliers[i] += int(np.count_nonzero(dist > threshold))
+            mx = series.mixture
+            if series.regression is None and mx is not None and mx.warm:
+                # the fitted model's tail probability (model_tail): the nominal rate
+                p = tail_probability(mx, x)
+                for i, rate in enumerate(st.outlier_rates):
+                    series.outliers[i] += int(np.count_nonzero(p < rate))
+            else:
+                dist = self._distance(series, x)
+                for i, threshold in enumerate(st.cfg.outlier_sigmas):
+                    series.outliers[i] += int(np.count_nonzero(dist > threshold))
         # rows are checked: the estimators' unchecked fold paths
         m._fold(x, w, t)
         if series.regression is not None:
             series.regression._fold(x[:, st.reg_xy], w, t)
         if series.mixture is not None:
             series.mixture._fold(x, w, t)
+        for (i, _), th in zip(st.threshold_at, series.thresholds, strict=True):
+            th._fold(x[:, i], w, t)
         series.observations += n
         series.version += 1
         series.last_update = now

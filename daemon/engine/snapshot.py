@@ -66,6 +66,15 @@ class SeriesView:
     mixture: MixtureView | None = None
     regression: RegressionView | None = None
     scatter: tuple[float, ...] = ()           # centred Σw(x-μ)² per field, as of ``clock``
+    # thresholds (per stream, shared): (field index, bounds) of each field that has them;
+    # then per such field: cumulative undecayed weighted counts at the bounds and the
+    # total (k + 1), the weighted sum of values, the model's and the data's decayed
+    # shares above each bound (k)
+    threshold_at: tuple[tuple[int, tuple[float, ...]], ...] = ()
+    buckets: tuple[tuple[float, ...], ...] = ()
+    value_sums: tuple[float, ...] = ()
+    exceedance: tuple[tuple[float, ...], ...] = ()
+    exceedance_observed: tuple[tuple[float, ...], ...] = ()
 
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:

@@ -14,6 +14,9 @@ Schema (version 1)::
                  "correlation": [[field, field_b, value], ..],
                  "quantiles": [[field, q, value], ..],
                  "outliers": [[threshold, count], ..],
+                 "thresholds": [{"field": f, "bounds": [..], "cumulative": [.., total],
+                                 "sum": x, "exceedance": [..],
+                                 "exceedance_observed": [..]}, ..],
                  "mixture": null | {"warm": bool, "log": bool, "weights": [..],
                                     "means": [[..]], "stddevs": [[..]],
                                     "average_loglik": x, "reseeds": n,
@@ -60,6 +63,11 @@ def series_json(v: SeriesView, now: float, history: History | None = None) -> di
         "correlation": [[f[i], f[j], _num(r)] for i, j, r in v.correlation],
         "quantiles": [[f[i], q, _num(x)] for i, q, x in v.quantiles],
         "outliers": [[thr, n] for thr, n in v.outliers],
+        "thresholds": [{"field": f[i], "bounds": list(b), "cumulative": list(c), "sum": _num(s),
+                        "exceedance": _nums(p), "exceedance_observed": _nums(q)}
+                       for (i, b), c, s, p, q in zip(v.threshold_at, v.buckets, v.value_sums,
+                                                     v.exceedance, v.exceedance_observed,
+                                                     strict=True)],
         "mixture": None, "regression": None,
         "history": ([[t, _nums(m)] for t, m in history.of(v.key)] if history is not None
                     else []),

@@ -19,6 +19,7 @@ from sigmad.daemon.export.model import (
     SERIES,
     Sample,
     dynamic_samples,
+    family_of,
     sample_name,
     static_samples,
 )
@@ -35,7 +36,7 @@ def _lines(samples: Iterable[Sample]) -> dict[str, str]:
         if not math.isfinite(value):
             continue
         text = ",".join(f'{k}="{_escape(v)}"' for k, v in sorted(labels.items()))
-        out.setdefault(family, []).append(
+        out.setdefault(family_of(family), []).append(
             f"{sample_name(family)}{{{text}}} {floatToGoString(value)}\n")
     return {family: "".join(lines) for family, lines in out.items()}
 

@@ -18,6 +18,7 @@ import math
 from collections.abc import Callable, Iterator
 
 from prometheus_client.metrics_core import Metric
+from prometheus_client.utils import floatToGoString
 from sigmad.daemon.engine.snapshot import SeriesView, Snapshot
 
 # name -> (type, help). The names are the contract in DESIGN.md.
@@ -33,6 +34,12 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_covariance": ("gauge", "Covariance of two fields under the stream's correction."),
     "sigmad_correlation": ("gauge", "Pearson correlation of two fields."),
     "sigmad_quantile": ("gauge", "Estimated q-quantile of a field, in the stream's units."),
+    "sigmad_value": ("histogram", "Weighted count of a field's values at or below each of the "
+                                  "stream's thresholds (le), never decayed."),
+    "sigmad_exceedance": ("gauge", "Decayed share of a field's values above a threshold, from "
+                                   "the fitted model (the mixture when warm, else normal)."),
+    "sigmad_exceedance_observed": ("gauge", "Decayed weighted share of a field's values above "
+                                            "a threshold, counted from the data."),
     "sigmad_mixture_weight": ("gauge", "Weight of a mixture component."),
     "sigmad_mixture_mean": ("gauge", "Mean of a mixture component, in the stream's units."),
     "sigmad_mixture_stddev": ("gauge",
@@ -64,6 +71,8 @@ MERGE_METRICS = ("sigmad_merge_shards", "sigmad_shard_age_seconds")
 SERIES = tuple(name for name in METRICS if name not in HEALTH and name not in MERGE_METRICS)
 
 Sample = tuple[str, dict[str, str], float]   # (family, labels, value)
+#: A histogram's samples name their part; the family is the histogram's name.
+HISTOGRAM_PARTS = {f"sigmad_value_{part}": "sigmad_value" for part in ("bucket", "count", "sum")}
 
 
 def series_labels(v: SeriesView) -> dict[str, str]:
@@ -90,6 +99,19 @@ def static_samples(v: SeriesView) -> Iterator[Sample]:
         yield "sigmad_quantile", dict(per_field[i], q=_fmt_q(q)), value
     for thr, count in v.outliers:
         yield "sigmad_outliers", dict(base, threshold=_fmt_q(thr)), float(count)
+    for (i, bounds), cum, total, model, seen in zip(
+            v.threshold_at, v.buckets, v.value_sums, v.exceedance, v.exceedance_observed,
+            strict=True):
+        lab = per_field[i]
+        for b, c in zip(bounds, cum, strict=False):
+            yield "sigmad_value_bucket", dict(lab, le=floatToGoString(b)), c
+        yield "sigmad_value_bucket", dict(lab, le="+Inf"), cum[-1]
+        yield "sigmad_value_count", lab, cum[-1]
+        yield "sigmad_value_sum", lab, total
+        for b, p, q in zip(bounds, model, seen, strict=True):
+            above = dict(lab, above=floatToGoString(b))
+            yield "sigmad_exceedance", above, p
+            yield "sigmad_exceedance_observed", above, q
     mx = v.mixture
     if mx is not None:
         yield "sigmad_mixture_warm", base, 1.0 if mx.warm else 0.0
@@ -134,15 +156,22 @@ def health_samples(snap: Snapshot) -> Iterator[Sample]:
 
 
 def sample_name(family: str) -> str:
-    """The sample name of a family: counters take ``_total``."""
+    """The sample name of a family (or histogram part): counters take ``_total``."""
+    if family in HISTOGRAM_PARTS:
+        return family
     return family + "_total" if METRICS[family][0] == "counter" else family
+
+
+def family_of(name: str) -> str:
+    """The family a sample's family-or-part name belongs to."""
+    return HISTOGRAM_PARTS.get(name, name)
 
 
 def _families(names: tuple[str, ...], samples) -> Iterator[Metric]:
     fams = {name: Metric(name, METRICS[name][1], METRICS[name][0]) for name in names}
     for family, labels, value in samples:
         if math.isfinite(value):
-            fams[family].add_sample(sample_name(family), labels, value)
+            fams[family_of(family)].add_sample(sample_name(family), labels, value)
     for fam in fams.values():
         if fam.samples:
             yield fam

@@ -469,6 +469,7 @@ def _describe_series(d: dict, corrections: dict) -> list[str]:
     """The lines of one series of ``describe_checkpoint``; a state that cannot be read
     (a damaged file) is named, never raised."""
     from sigmad.estimators import Mixture, Moments, Regression
+    from sigmad.estimators.thresholds import Thresholds
 
     name = d.get("stream")
     labels = d.get("labels") or []
@@ -497,6 +498,10 @@ def _describe_series(d: dict, corrections: dict) -> list[str]:
             x = Mixture.from_dict(d["mixture"])
             lines.append(f"    mixture weights {_fmt(x.weights.tolist())}" if x.warm
                          else "    mixture warming up")
+        for t in d.get("threshold_counts") or []:
+            th = Thresholds.from_dict(t)
+            lines.append(f"    at or below {_fmt(th.bounds.tolist())}: "
+                         f"{_fmt(th.cumulative[:-1].tolist())} of {th.total:.6g}")
     except (ValueError, ArithmeticError) as exc:   # IncompatibleError, LinAlgError among them
         lines.append(f"    unreadable estimator state ({exc})")
     return lines

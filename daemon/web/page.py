@@ -130,6 +130,12 @@ def _extras(v: SeriesView, rates) -> str:
         lines.append("outliers since start: " + ", ".join(
             f'&gt;{thr:g}σ <b class="outlier-rate" data-value="{obs!r}">{obs * 100:.2f}%</b>'
             f" (normal {exp * 100:.2g}%)" for thr, obs, exp in rates))
+    for (i, bounds), model, seen in zip(v.threshold_at, v.exceedance, v.exceedance_observed,
+                                        strict=True):
+        lines.append(f"share above ({esc(v.fields[i])}): " + ", ".join(
+            f'&gt;{b:g} <span class="exceedance">model <b data-value="{p!r}">{pct(p)}</b>'
+            f'</span> · <span class="exceedance-observed">data <b data-value="{q!r}">{pct(q)}'
+            f"</b></span>" for b, p, q in zip(bounds, model, seen, strict=True)))
     m = v.mixture
     if m is not None and m.warm:
         comps = ", ".join(
@@ -151,6 +157,11 @@ def _extras(v: SeriesView, rates) -> str:
         else:
             lines.append("regression: not enough data yet")
     return "".join(f'<p class="extra">{x}</p>' for x in lines)
+
+
+def pct(p: float) -> str:
+    """A share as a percentage with two decimals ("–" while undefined)."""
+    return f"{p * 100:.2f}%" if math.isfinite(p) else "–"
 
 
 def _card(v: SeriesView, history: History | None, now: float) -> str:

@@ -39,6 +39,7 @@ POINTS = 160
 TOTAL = "#0f766e"                                   # the fitted density / the ellipse
 COMPONENTS = ("#c2410c", "#6d28d9", "#0369a1", "#a16207", "#be185d", "#4d7c0f")
 BAND = "#b45309"
+THRESHOLD = "#b91c1c"                               # a configured threshold (le bound)
 
 
 def _empty(text: str) -> str:
@@ -107,6 +108,10 @@ def density_figure(v: SeriesView, field: int = 0) -> str:
                          cls="component"))
     for q, x in qs:
         body.append(vmarker(float(sx(x)), TOP + 2, H - BOTTOM, f"p{q * 100:g}"))
+    for i, bounds in v.threshold_at:   # thresholds on the axis, below the quantile labels
+        if i == field:
+            body.extend(vmarker(float(sx(b)), TOP + 14, H - BOTTOM, f"{b:g}", THRESHOLD)
+                        for b in bounds if lo <= b <= hi)
     unit = v.fields[field]
     what = "density per ln-unit, log axis" if log else "density"
     body.append(xaxis(sx, H - BOTTOM, log_ticks(lo, hi) if log else ticks(lo, hi, 5),

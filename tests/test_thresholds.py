@@ -1,0 +1,202 @@
+"""Counts at thresholds, decayed exceedance shares, model shares and model tails.
+
+References: numpy counts (``np.sum``, ``np.searchsorted``) for the exact
+histogram; explicit numpy sums of w * 2**(-age/h) for the decayed shares (the
+forgetting rule in DESIGN.md); scipy.stats (norm, lognorm, chi2) for the model
+shares and tail probabilities.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from conftest import need_module
+from sigmad.estimators import EstimatorError, HalfLife, IncompatibleError, Mixture
+from sigmad.estimators.model_tail import chi2_survival, nominal_rate, tail_probability
+from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
+
+BOUNDS = [100.0, 250.0, 300.0]
+
+
+def sample(n=5000, seed=1):
+    rng = np.random.default_rng(seed)
+    return rng.lognormal(5.0, 0.6, n), rng.uniform(0.5, 3.0, n), np.sort(rng.uniform(0, 900, n))
+
+
+def test_counts_equal_numpy_exact_counts_unweighted():
+    x, _, _ = sample()
+    x[:10] = 250.0                   # values on a bound count as "le" (<=)
+    t = Thresholds(BOUNDS)
+    t.update(x)
+    want = [np.sum(x <= b) for b in BOUNDS] + [x.size]    # numpy, exact
+    assert t.cumulative.tolist() == [float(c) for c in want]
+    assert t.value_sum == pytest.approx(math.fsum(x), rel=1e-13)
+    assert t.count == x.size
+
+
+def test_counts_equal_numpy_weighted_sums():
+    x, w, _ = sample()
+    t = Thresholds(BOUNDS)
+    for part in np.array_split(np.arange(x.size), 7):
+        t.update(x[part], weights=w[part])
+    want = [w[x <= b].sum() for b in BOUNDS] + [w.sum()]
+    np.testing.assert_allclose(t.cumulative, want, rtol=1e-12)
+    assert t.value_sum == pytest.approx(float(w @ x), rel=1e-12)
+
+
+def test_counts_are_never_decayed():
+    x, w, times = sample()
+    t = Thresholds(BOUNDS, HalfLife(30.0))
+    t.update(x, weights=w, times=times)
+    t.decay_to(times[-1] + 1e4)
+    np.testing.assert_allclose(t.cumulative, [w[x <= b].sum() for b in BOUNDS] + [w.sum()],
+                               rtol=1e-12)
+
+
+def test_observed_share_equals_explicit_decayed_weights_by_time():
+    x, w, times = sample()
+    h = 60.0
+    t = Thresholds(BOUNDS, HalfLife(h))
+    for part in np.array_split(np.arange(x.size), 9):
+        t.update(x[part], weights=w[part], times=times[part])
+    f = w * 2.0 ** (-(times[-1] - times) / h)          # DESIGN.md's forgetting rule
+    want = [f[x > b].sum() / f.sum() for b in BOUNDS]
+    np.testing.assert_allclose(t.observed_share, want, rtol=1e-10)
+
+
+def test_observed_share_equals_explicit_decayed_weights_by_count():
+    x, _, _ = sample(2000)
+    h = 300.0
+    t = Thresholds(BOUNDS, HalfLife(h, "observations"))
+    for part in np.array_split(np.arange(x.size), 5):
+        t.update(x[part])
+    f = 2.0 ** (-np.arange(x.size - 1, -1, -1) / h)
+    np.testing.assert_allclose(t.observed_share, [f[x > b].sum() / f.sum() for b in BOUNDS],
+                               rtol=1e-10)
+
+
+def test_merge_of_halves_equals_the_whole():
+    x, w, times = sample()
+    whole, a, b = (Thresholds(BOUNDS, HalfLife(45.0)) for _ in range(3))
+    whole.update(x, weights=w, times=times)
+    odd = np.arange(x.size) % 2 == 1
+    a.update(x[odd], weights=w[odd], times=times[odd])
+    b.update(x[~odd], weights=w[~odd], times=times[~odd])
+    a.merge(b)
+    np.testing.assert_allclose(a.cumulative, whole.cumulative, rtol=1e-12)
+    np.testing.assert_allclose(a.observed_share, whole.observed_share, rtol=1e-9)
+    assert a.count == whole.count and a.value_sum == pytest.approx(whole.value_sum)
+
+
+def test_merge_refuses_other_bounds():
+    with pytest.raises(IncompatibleError, match="bounds"):
+        Thresholds([1.0]).merge(Thresholds([2.0]))
+
+
+def test_round_trip_is_exact_and_continues_identically():
+    x, w, times = sample()
+    t = Thresholds(BOUNDS, HalfLife(45.0))
+    t.update(x[:100], weights=w[:100], times=times[:100])
+    back = Thresholds.from_dict(t.to_dict())
+    for s in (t, back):
+        s.update(x[100:], weights=w[100:], times=times[100:])
+    assert back.to_dict() == t.to_dict()
+
+
+@pytest.mark.parametrize(("bounds", "words"), [
+    ([], "non-empty"), ([1.0, float("nan")], "finite"), ([2.0, 1.0], "increasing"),
+])
+def test_bad_bounds_are_refused(bounds, words):
+    with pytest.raises(IncompatibleError, match=words):
+        Thresholds(bounds)
+
+
+def test_malformed_saved_state_is_refused():
+    d = Thresholds(BOUNDS).to_dict()
+    d["cumulative"] = [3.0, 1.0, 2.0, 4.0]
+    with pytest.raises(IncompatibleError, match="cumulative"):
+        Thresholds.from_dict(d)
+
+
+def test_a_rejected_batch_changes_nothing():
+    t = Thresholds(BOUNDS)
+    with pytest.raises(EstimatorError):
+        t.update([1.0, float("nan")])
+    assert t.total == 0.0 and t.count == 0
+
+
+def test_normal_exceedance_matches_scipy():
+    stats = need_module("scipy.stats")
+    got = normal_exceedance(BOUNDS, 180.0, 60.0)
+    np.testing.assert_allclose(got, stats.norm.sf(BOUNDS, 180.0, 60.0), rtol=1e-13)
+
+
+def test_log_mixture_exceedance_matches_scipy_lognormal_mixture():
+    stats = need_module("scipy.stats")
+    w, mu, sd = np.array([0.7, 0.3]), np.array([4.0, 5.5]), np.array([0.3, 0.4])
+    want = sum(wk * stats.lognorm.sf(BOUNDS, s=sk, scale=math.exp(mk))
+               for wk, mk, sk in zip(w, mu, sd, strict=True))
+    np.testing.assert_allclose(mixture_exceedance(BOUNDS, w, mu, sd, log=True), want,
+                               rtol=1e-12)
+
+
+@pytest.mark.parametrize("d", [1, 2, 3, 4, 5, 6, 7])
+def test_chi2_survival_matches_scipy(d):
+    stats = need_module("scipy.stats")
+    y = np.array([0.0, 0.3, 1.0, 4.0, 9.0, 25.0, 60.0])
+    np.testing.assert_allclose(chi2_survival(y, d), stats.chi2.sf(y, d), rtol=1e-12)
+
+
+def test_nominal_rate_is_two_sided_normal_tail():
+    stats = need_module("scipy.stats")
+    assert nominal_rate(3.0) == pytest.approx(2 * stats.norm.sf(3.0), rel=1e-14)
+
+
+def fitted(components, x, log=False, dim=1):
+    m = Mixture(components, dim=dim, log=log, warmup=500, seed=3)
+    for part in np.array_split(x, 40):
+        m.update(part)
+    return m
+
+
+def test_one_field_tail_is_the_two_sided_cdf_tail():
+    stats = need_module("scipy.stats")
+    rng = np.random.default_rng(5)
+    m = fitted(2, np.concatenate([rng.normal(0, 1, 3000), rng.normal(8, 1, 3000)]))
+    x = np.array([[-3.0], [4.0], [12.0]])
+    f = np.asarray(m.cdf(x[:, 0]))
+    np.testing.assert_allclose(tail_probability(m, x), 2 * np.minimum(f, 1 - f))
+    w, mu, s = m.weights, m.means[:, 0], m.stddevs[:, 0]
+    ref = sum(wk * stats.norm.cdf(x[:, 0], mk, sk) for wk, mk, sk in zip(w, mu, s, strict=True))
+    np.testing.assert_allclose(tail_probability(m, x), 2 * np.minimum(ref, 1 - ref), rtol=1e-9)
+
+
+def test_two_mode_log_stream_has_the_nominal_outlier_rate():
+    """A well-fitted hit/miss latency mixture: the share of fresh rows with tail
+    probability below 2 Phi(-3) is within a factor 2 of 0.27 % (the nominal rate), where
+    the pooled 3-sigma rule flags several times that."""
+    rng = np.random.default_rng(11)
+
+    def draw(n):
+        hit = rng.random(n) < 0.8
+        return np.where(hit, rng.lognormal(3.0, 0.25, n), rng.lognormal(5.0, 0.3, n))
+
+    m = fitted(2, draw(40_000), log=True)
+    x = draw(200_000)[:, None]
+    rate = float(np.mean(tail_probability(m, x) < nominal_rate(3.0)))
+    pooled = float(np.mean(np.abs(x[:, 0] - x.mean()) > 3 * x.std()))
+    assert 0.00135 < rate < 0.0054, rate
+    assert pooled > 2 * 0.0054            # the pooled z-score rule pages on this stream
+
+
+def test_two_field_tail_with_one_component_is_the_normal_rule():
+    stats = need_module("scipy.stats")
+    rng = np.random.default_rng(7)
+    cov = np.array([[1.0, 0.6], [0.6, 2.0]])
+    m = fitted(1, rng.multivariate_normal([0, 0], cov, 6000), dim=2)
+    x = np.array([[0.5, 0.5], [3.0, -3.0]])
+    delta = x - m.means[0]
+    d2 = np.einsum("ij,jk,ik->i", delta, np.linalg.inv(m.covariances[0]), delta)
+    np.testing.assert_allclose(tail_probability(m, x), stats.chi2.sf(d2, 2), rtol=1e-9)
