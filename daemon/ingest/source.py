@@ -127,6 +127,9 @@ class Source:
         engine.reject("bad_frames", topic=frame, detail="a frame outside a [topic, body] pair",
                       now=now)
 
+    def stop_receiving(self) -> None:
+        """Nothing to leave: a ZeroMQ peer keeps no session for us (see MqttSource)."""
+
     def close(self) -> None:
         if self.guard is not None:
             self.guard.close()
