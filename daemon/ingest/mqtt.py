@@ -100,6 +100,7 @@ class MqttSource:
         self._closing = False
         self._closed = False
         self._warned = False
+        self._subscribed = cfg.mqtt.subscriptions(cfg.topics)
         self._woken, self._wake = socket.socketpair()
         self._woken.setblocking(False)
         self._wake.setblocking(False)
@@ -127,6 +128,7 @@ class MqttSource:
         client.on_disconnect = self._on_disconnect
         client.on_connect_fail = self._on_connect_fail
         client.on_message = self._on_message
+        client.on_subscribe = self._on_subscribe
         props = Properties(PacketTypes.CONNECT)
         # without a client_id the broker names the session and forgets it at disconnect
         props.SessionExpiryInterval = int(m.session_expiry) if m.client_id else 0
@@ -141,15 +143,23 @@ class MqttSource:
             self.connected = False
             log.warning("%s refused the connection: %s", self.label, reason_code)
             return
-        self.connected, self._warned = True, False
+        self._warned = False
         self.connections += 1
         m = self.cfg.mqtt
         # no retained messages: a reading is counted when it is published, not at every subscribe
         options = SubscribeOptions(qos=m.qos, retainHandling=SubscribeOptions.RETAIN_DO_NOT_SEND)
-        client.subscribe([(f, options) for f in m.subscriptions(self.cfg.topics)])
+        client.subscribe([(f, options) for f in self._subscribed])
         log.info("%s connected (session %s); subscribed to %s", self.label,
                  "resumed" if flags.session_present else "new",
-                 ", ".join(m.subscriptions(self.cfg.topics)))
+                 ", ".join(self._subscribed))
+
+    def _on_subscribe(self, client, userdata, mid, reason_codes, properties) -> None:
+        refused = [f"{f} ({rc})" for f, rc in zip(self._subscribed, reason_codes, strict=False)
+                   if rc.is_failure]
+        if refused:
+            log.warning("%s: the broker refused the subscriptions %s", self.label,
+                        ", ".join(refused))
+        self.connected = True   # connected and subscribed: messages can flow
 
     def _on_disconnect(self, client, userdata, flags, reason_code, properties) -> None:
         self.connected = False
@@ -252,7 +262,7 @@ class MqttSource:
 
 
 class ConnectionCollector:
-    """``sigmad_source_connected{endpoint}`` (1 while the broker session is up) and
+    """``sigmad_source_connected{endpoint}`` (1 once connected and subscribed) and
     ``sigmad_source_connections_total{endpoint}`` (successful connections: more than
     one means the source reconnected)."""
 
@@ -261,7 +271,7 @@ class ConnectionCollector:
 
     def collect(self):
         up = GaugeMetricFamily("sigmad_source_connected",
-                               "1 while the source's broker connection is up, else 0.",
+                               "1 while the source is connected and subscribed, else 0.",
                                labels=["endpoint"])
         count = CounterMetricFamily("sigmad_source_connections",
                                     "Connections the source made to its broker.",
