@@ -161,6 +161,7 @@ class Daemon:
         for s in self.sources:
             poller.register(s.socket, zmq.POLLIN)
             by_socket[s.socket] = s
+        before_flush = [s for s in self.sources if s.drain_before_flush]
         merger, publisher = self.merger, self.publisher
         if merger is not None:
             poller.register(merger.socket, zmq.POLLIN)
@@ -187,6 +188,8 @@ class Daemon:
                     and not poller.poll(0)):
                 self._flush(now)   # a backlog waits and the input went quiet: fold it now
             if now >= next_flush or engine.pending_rows >= cfg.max_batch_rows:
+                for s in before_flush:   # hand-offs that wake the engine only when full
+                    s.drain(engine, now)
                 self._flush(now)
                 if merger is not None:
                     merger.rebuild(now, engine.all_series(), engine.snapshot.health)

@@ -364,6 +364,12 @@ def bench_checkpoint(n_series: int, repeat: int = 2) -> list[Row]:
                 read / 2.0, "<= 1.0", read <= 2.0)]
 
 
+def _bench_mqtt(n: int) -> Row:
+    from sigmad.daemon.bench.mqtt import bench_mqtt_json  # paho only when measured
+
+    return bench_mqtt_json(n)
+
+
 def run(quick: bool = False, out=sys.stdout) -> list[Row]:
     """Measure every figure; ``quick`` uses smaller sizes (for the regression guards)."""
     scale = 0.1 if quick else 1.0
@@ -374,6 +380,7 @@ def run(quick: bool = False, out=sys.stdout) -> list[Row]:
         ("scrape", lambda: bench_scrape(int(10_000 * scale))),
         ("memory", lambda: bench_memory(int(100_000 * scale))),
         ("checkpoint", lambda: bench_checkpoint(int(100_000 * scale))),
+        ("MQTT", lambda: _bench_mqtt(int(20_000 * scale))),
     ]
     rows: list[Row] = []
     tty = out.isatty() if hasattr(out, "isatty") else False
