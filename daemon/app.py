@@ -36,6 +36,13 @@ HOUSEKEEPING_EVERY = 1.0   # seconds between idle-expiry sweeps
 IDLE_FLUSH_ROWS = 10_000   # rows waiting that are folded as soon as the sources go quiet
 
 
+def _mqtt_source(cfg, max_bytes: int):
+    """An MQTT source: paho is imported only when one is configured."""
+    from sigmad.daemon.ingest.mqtt import MqttSource
+
+    return MqttSource(cfg, max_bytes)
+
+
 class Daemon:
     """sigmad's process: call ``start()``, then ``stop()`` (from any thread).
 
@@ -76,7 +83,12 @@ class Daemon:
         self.merger: Merger | None = None
         try:
             for s in config.sources:
-                self.sources.append(Source(self._ctx, s))
+                self.sources.append(Source(self._ctx, s) if s.mqtt is None
+                                    else _mqtt_source(s, d.max_message_bytes))
+            if any(s.mqtt is not None for s in config.sources):
+                from sigmad.daemon.ingest.mqtt import ConnectionCollector
+
+                self.registry.register(ConnectionCollector(lambda: self.sources))
             if config.publish is not None:
                 self.publisher = Publisher(self._ctx, config.publish)
             if config.merge is not None:
@@ -149,6 +161,7 @@ class Daemon:
         for s in self.sources:
             poller.register(s.socket, zmq.POLLIN)
             by_socket[s.socket] = s
+        before_flush = [s for s in self.sources if s.drain_before_flush]
         merger, publisher = self.merger, self.publisher
         if merger is not None:
             poller.register(merger.socket, zmq.POLLIN)
@@ -175,6 +188,8 @@ class Daemon:
                     and not poller.poll(0)):
                 self._flush(now)   # a backlog waits and the input went quiet: fold it now
             if now >= next_flush or engine.pending_rows >= cfg.max_batch_rows:
+                for s in before_flush:   # hand-offs that wake the engine only when full
+                    s.drain(engine, now)
                 self._flush(now)
                 if merger is not None:
                     merger.rebuild(now, engine.all_series(), engine.snapshot.health)
@@ -192,7 +207,10 @@ class Daemon:
             if self.checkpointer is not None and self.checkpointer.maybe_checkpoint(
                     engine, now, self._flush):
                 next_flush = now + flush_every
+        # stop taking messages (an MQTT broker keeps the rest for the session), then
         # drain what is already queued so a clean stop loses nothing that arrived
+        for s in self.sources:
+            s.stop_receiving()
         for s in self.sources:
             s.drain(engine, time.time())
         self._flush(time.time())

@@ -434,6 +434,12 @@ def bench_checkpoint(n_series: int, repeat: int = 2, judged: bool = True) -> lis
                 read / 2.0, "<= 1.0", read <= 2.0 if judged else None, note)]
 
 
+def _bench_mqtt(n: int) -> Row:
+    from sigmad.daemon.bench.mqtt import bench_mqtt_json  # paho only when measured
+
+    return bench_mqtt_json(n)
+
+
 def run(quick: bool = False, out=sys.stderr) -> list[Row]:
     """Measure every figure. ``quick`` uses smaller sizes where a figure does not depend
     on size (ratios, growth per series) and gives no verdict where it does (the whole
@@ -448,6 +454,7 @@ def run(quick: bool = False, out=sys.stderr) -> list[Row]:
             ("memory", lambda: bench_memory(2_000, 10_000, 10_000, (1_000, 3_000),
                                             judged=False)),
             ("checkpoint", lambda: bench_checkpoint(10_000, judged=False)),
+            ("MQTT", lambda: _bench_mqtt(2_000)),
         ]
     else:
         steps = [
@@ -458,6 +465,7 @@ def run(quick: bool = False, out=sys.stderr) -> list[Row]:
             ("many series", lambda: bench_scaling((1_000, 10_000, 100_000), 300_000)),
             ("memory", lambda: bench_memory(10_000, 50_000, 100_000, (2_000, 10_000))),
             ("checkpoint", lambda: bench_checkpoint(100_000)),
+            ("MQTT", lambda: _bench_mqtt(20_000)),
         ]
     rows: list[Row] = []
     tty = out.isatty() if hasattr(out, "isatty") else False

@@ -30,7 +30,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Literal
 
-from sigmad.daemon.ingest.topics import LABEL_NAME, TopicError, TopicTemplate
+from sigmad.daemon.ingest.topics import LABEL_NAME, SEPARATORS, TopicError, TopicTemplate
 from sigmad.estimators import CORRECTIONS, HalfLife
 
 #: Labels our metrics set themselves, so a topic template may not capture them
@@ -122,16 +122,41 @@ class DaemonConfig:
 
 
 @dataclass(frozen=True, slots=True)
-class SourceConfig:
-    """One ``[[source]]``: a ZeroMQ socket the daemon reads messages from."""
+class MqttConfig:
+    """What a ``socket = "mqtt"`` source adds: the broker session (see daemon/ingest/mqtt.py)."""
 
-    socket: Literal["pull", "sub"]
+    host: str = field(metadata={"toml": False})      # from connect
+    port: int = field(metadata={"toml": False})
+    tls: bool = field(metadata={"toml": False})      # mqtts://
+    client_id: str | None = None
+    qos: int = 1
+    shared_group: str | None = None
+    username: str | None = None
+    password_file: str | None = None
+    tls_ca: str | None = None
+    tls_cert: str | None = None
+    tls_key: str | None = None
+    session_expiry: float = _duration(86400.0)
+
+    def subscriptions(self, topics: tuple[str, ...]) -> tuple[str, ...]:
+        """The filters as subscribed: ``$share/<group>/<filter>`` in a shared group."""
+        if self.shared_group is None:
+            return topics
+        return tuple(f"$share/{self.shared_group}/{t}" for t in topics)
+
+
+@dataclass(frozen=True, slots=True)
+class SourceConfig:
+    """One ``[[source]]``: a ZeroMQ socket or an MQTT broker the daemon reads messages from."""
+
+    socket: Literal["pull", "sub", "mqtt"]
     bind: tuple[str, ...] = ()
     connect: tuple[str, ...] = ()
     topics: tuple[str, ...] = ("",)
     curve_secret: str | None = None
     curve_allow: str | None = None
     high_water_mark: int = 10000
+    mqtt: MqttConfig | None = field(default=None, metadata={"toml": False})  # socket = "mqtt"
 
     @property
     def endpoints(self) -> tuple[str, ...]:
@@ -214,6 +239,8 @@ def schema_defaults(schema: type) -> dict[str, object]:
     """Each key of a table's dataclass and its declared default (a sentinel: required)."""
     out: dict[str, object] = {}
     for f in dataclasses.fields(schema):
+        if not f.metadata.get("toml", True):
+            continue    # derived from other keys, not written in the TOML
         if f.default is not dataclasses.MISSING:
             out[f.name] = f.default
         elif f.default_factory is not dataclasses.MISSING:
@@ -366,13 +393,14 @@ def _check_endpoint(text: object, key: str, binding: bool) -> str:
 class _Table:
     """Typed reads from one TOML table, each error naming the key path."""
 
-    def __init__(self, data: object, path: str, schema: type | tuple[str, ...]) -> None:
+    def __init__(self, data: object, path: str, schema: type | tuple[str, ...],
+                 extra: tuple[str, ...] = ()) -> None:
         if not isinstance(data, dict):
             raise ConfigError(path, data, "must be a table")
         self.data = data
         self.path = path
         self.defaults = schema_defaults(schema) if isinstance(schema, type) else {}
-        allowed = tuple(self.defaults) or schema
+        allowed = (tuple(self.defaults) or schema) + extra
         for key, value in data.items():
             if key not in allowed:
                 close = difflib.get_close_matches(key, allowed, n=1)
@@ -527,8 +555,11 @@ def _endpoints(t: _Table, name: str, binding: bool) -> tuple[str, ...]:
 
 
 def _source(data: object, path: str) -> SourceConfig:
+    if isinstance(data, dict) and data.get("socket") == "mqtt":
+        return _mqtt_source(_Table(data, path, MqttConfig,
+                                   extra=("socket", "connect", "topics", "high_water_mark")))
     t = _Table(data, path, SourceConfig)
-    socket = t.string("socket", choices=("pull", "sub"))
+    socket = t.string("socket", choices=("pull", "sub", "mqtt"))
     bind = _endpoints(t, "bind", True)
     connect = _endpoints(t, "connect", False)
     if bool(bind) == bool(connect):
@@ -549,6 +580,136 @@ def _source(data: object, path: str) -> SourceConfig:
     return SourceConfig(socket=socket, bind=bind, connect=connect, topics=topics,
                         curve_secret=curve_secret, curve_allow=curve_allow,
                         high_water_mark=t.integer("high_water_mark", minimum=1))
+
+
+# ------------------------------------------------------------------ MQTT sources
+_MQTT_URL = re.compile(r"(mqtts?)://([^/?#@]+)")
+_MQTT_PORTS = {"mqtt": 1883, "mqtts": 8883}
+
+
+def _mqtt_url(t: _Table) -> tuple[str, str, int]:
+    """``connect`` of an MQTT source: (url, host, port); mqtt:// or mqtts://, no path,
+    no credentials (those go in username and password_file)."""
+    values = t.strings("connect")
+    key = t.key("connect")
+    if len(values) != 1:
+        raise ConfigError(key, list(values), "must be one broker URL such as "
+                          '"mqtt://127.0.0.1:1883" (a source talks to one broker)')
+    url = values[0]
+    if "@" in url.partition("://")[2].split("/")[0]:
+        raise ConfigError(key, url, "must not carry credentials: use username and "
+                          "password_file")
+    m = _MQTT_URL.fullmatch(url.rstrip("/"))
+    if m is None:
+        raise ConfigError(key, url, 'must be "mqtt://host[:port]" or "mqtts://host[:port]" '
+                          "(no path or query)")
+    scheme, netloc = m.groups()
+    port_text: str | None = None
+    if netloc.startswith("["):
+        host, closed, rest = netloc[1:].partition("]")
+        if not closed:
+            raise ConfigError(key, url, "has an unclosed [ in its IPv6 address")
+        try:
+            ipaddress.IPv6Address(host)
+        except ValueError:
+            raise ConfigError(key, url, "has an invalid IPv6 address") from None
+        if rest and not rest.startswith(":"):
+            raise ConfigError(key, url, "must put the port after the ], e.g. mqtt://[::1]:1883")
+        port_text = rest[1:] if rest else None
+    elif netloc.count(":") > 1:
+        raise ConfigError(key, url, "must write an IPv6 address in brackets, "
+                          "e.g. mqtt://[::1]:1883")
+    else:
+        host, colon, rest = netloc.partition(":")
+        port_text = rest if colon else None
+    port = _MQTT_PORTS[scheme] if port_text is None else \
+        int(port_text) if port_text.isdigit() else 0
+    if not host or any(c.isspace() for c in host) or not 0 < port <= 65535:
+        raise ConfigError(key, url, "must name a host and a port from 1 to 65535")
+    return url, host, port
+
+
+def check_topic_filter(text: object, key: str) -> str:
+    """An MQTT topic filter (MQTT 5.0 section 4.7): ``+`` and ``#`` only as whole levels,
+    ``#`` last; at most 65535 bytes of UTF-8, no NUL.
+
+    >>> check_topic_filter("greenhouse/+/climate", "topics")
+    'greenhouse/+/climate'
+    """
+    if not isinstance(text, str) or not text:
+        raise ConfigError(key, text, "must be a non-empty MQTT topic filter")
+    if "\x00" in text or len(text.encode("utf-8", "surrogatepass")) > 65535:
+        raise ConfigError(key, text, "must be at most 65535 bytes of UTF-8 without NUL")
+    if text.startswith("$share/"):
+        raise ConfigError(key, text, "is a shared subscription: write the bare filter and "
+                          "set shared_group instead")
+    levels = text.split("/")
+    for i, level in enumerate(levels):
+        if "#" in level and (level != "#" or i != len(levels) - 1):
+            raise ConfigError(key, text, "may use # only as the whole last level "
+                              '(e.g. "greenhouse/#")')
+        if "+" in level and level != "+":
+            raise ConfigError(key, text, f"has the level {level!r}: + must be a whole level "
+                              '(e.g. "greenhouse/+/climate")')
+    return text
+
+
+def _readable_file(t: _Table, name: str) -> str | None:
+    path = t.path_string(name)
+    if path is not None:
+        p = Path(path)
+        try:
+            with p.open("rb"):
+                pass
+        except OSError as exc:
+            raise ConfigError(t.key(name), path, f"cannot be read ({exc.strerror})") from None
+        if not p.is_file():
+            raise ConfigError(t.key(name), path, "is not a regular file")
+    return path
+
+
+def _mqtt_source(t: _Table) -> SourceConfig:
+    """A ``socket = "mqtt"`` source: one broker URL, topic filters, the session's keys."""
+    url, host, port = _mqtt_url(t)
+    topics = t.strings("topics")
+    if not topics:
+        raise ConfigError(t.key("topics"), [], 'must hold at least one topic filter ("#" = all)')
+    for f in topics:
+        check_topic_filter(f, t.key("topics"))
+    client_id = t.string("client_id", None)
+    if client_id is not None and not (0 < len(client_id) <= 128 and client_id.isprintable()
+                                      and "/" not in client_id):
+        raise ConfigError(t.key("client_id"), client_id, "must be 1 to 128 printable "
+                          "characters without /")
+    group = t.string("shared_group", None)
+    if group is not None and (not group or not group.isprintable()
+                              or any(c in group for c in "/+#")):
+        raise ConfigError(t.key("shared_group"), group, "must be a non-empty printable name "
+                          "without /, + or #")
+    username = t.string("username", None)
+    password_file = _readable_file(t, "password_file")
+    if password_file is not None and username is None:
+        raise ConfigError(t.key("password_file"), password_file, "needs username too")
+    tls = url.startswith("mqtts://")
+    files = {name: _readable_file(t, name) for name in ("tls_ca", "tls_cert", "tls_key")}
+    for name, path in files.items():
+        if path is not None and not tls:
+            raise ConfigError(t.key(name), path, "applies only to an mqtts:// broker URL")
+    if (files["tls_cert"] is None) != (files["tls_key"] is None):
+        present = "tls_cert" if files["tls_cert"] is not None else "tls_key"
+        missing = "tls_key" if present == "tls_cert" else "tls_cert"
+        raise ConfigError(t.key(missing), _MISSING, f"{present} needs it too (a client "
+                          "certificate takes both)")
+    mqtt = MqttConfig(host=host, port=port, tls=tls, client_id=client_id,
+                      qos=t.integer("qos", maximum=2), shared_group=group, username=username,
+                      password_file=password_file, session_expiry=t.duration("session_expiry"),
+                      **files)
+    if mqtt.session_expiry > 2**32 - 1:
+        raise ConfigError(t.key("session_expiry"), t.data["session_expiry"],
+                          "must be below 136 years (MQTT counts it in 32-bit seconds)")
+    return SourceConfig(socket="mqtt", connect=(url,), topics=topics, mqtt=mqtt,
+                        high_water_mark=t.integer("high_water_mark", schema_defaults(
+                            SourceConfig)["high_water_mark"], 1, 10_000_000))
 
 
 def _mixture(data: object, path: str) -> MixtureConfig:
@@ -622,13 +783,14 @@ def _thresholds(value: object, key: str, stream: str,
 
 
 def _stream(data: object, path: str) -> StreamConfig:
-    t = _Table(data, path, StreamConfig)
+    t = _Table(data, path, StreamConfig, extra=("separator",))   # separator: of the topic
     name = t.string("name")
     if not LABEL_NAME.fullmatch(name):
         raise ConfigError(t.key("name"), name, "is not a valid stream name (letters, digits "
                           "and _, not starting with a digit)")
     try:
-        topic = TopicTemplate.parse(t.string("topic"), t.key("topic"))
+        topic = TopicTemplate.parse(t.string("topic"), t.key("topic"),
+                                    t.string("separator", None, SEPARATORS))
     except TopicError as exc:
         raise ConfigError(exc.key, exc.value, exc.message) from None
     for label in topic.labels:
@@ -836,6 +998,14 @@ def describe(config: Config) -> str:
              f"{_show_duration(d.max_clock_skew)} of arrival"]
     lines.append(f"sources ({len(config.sources)})")
     for s in config.sources:
+        if s.mqtt is not None:
+            m = s.mqtt
+            session = (f"session {m.client_id!r} kept {_show_duration(m.session_expiry)}"
+                       if m.client_id else "no persistent session (no client_id)")
+            group = f" shared group {m.shared_group!r}" if m.shared_group else ""
+            lines.append(f"  mqtt connect {s.connect[0]} topics {', '.join(s.topics)} "
+                         f"qos {m.qos}{group}; {session}")
+            continue
         how = "bind" if s.bind else "connect"
         extra = ""
         if s.socket == "sub":

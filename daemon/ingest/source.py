@@ -19,6 +19,8 @@ def _looks_like_body(frame: bytes) -> bool:
 class Source:
     """One configured socket and the label its messages are counted under."""
 
+    drain_before_flush = False   # drained when the poller says so (see MqttSource)
+
     def __init__(self, ctx: zmq.Context, cfg: SourceConfig) -> None:
         kind = zmq.PULL if cfg.socket == "pull" else zmq.SUB
         self.cfg = cfg
@@ -126,6 +128,9 @@ class Source:
         engine.messages[self.label] += 1
         engine.reject("bad_frames", topic=frame, detail="a frame outside a [topic, body] pair",
                       now=now)
+
+    def stop_receiving(self) -> None:
+        """Nothing to leave: a ZeroMQ peer keeps no session for us (see MqttSource)."""
 
     def close(self) -> None:
         if self.guard is not None:

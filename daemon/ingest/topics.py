@@ -1,10 +1,18 @@
 """Topic templates: which topics a stream takes, and which labels they carry.
 
-A template is dot-separated segments, each a literal or a ``{label}``:
+A template is segments, each a literal or a ``{label}``:
 ``lat.{service}.{region}`` takes ``lat.checkout.eu`` and labels it
 ``service="checkout", region="eu"``. Literal segments must match exactly and
 the segment count must agree, so ``lat.{service}`` never takes
 ``lat.checkout.eu``.
+
+Segments are separated by dots (ZeroMQ topics) or by slashes (MQTT topic
+levels: ``greenhouse/{bed}/climate`` takes ``greenhouse/bed-3/climate``). The
+separator is ``/`` when the template contains a ``/`` and no ``.``, else ``.``;
+a stream may also name it (``separator = "/"``) when an MQTT level holds a dot.
+Every template valid before slashes were separators keeps its meaning: a
+dot-free template with a slash was one literal segment, which matches exactly
+the topics that its literal levels match now.
 
 Matching is on the hot path (once per message), so a template is compiled to
 one anchored regular expression at parse time; ``match`` is a single C-level
@@ -21,10 +29,27 @@ from dataclasses import dataclass, field
 LABEL_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 #: Longest label value a topic segment may carry (ours: keeps series keys small).
 MAX_LABEL_VALUE = 128
-# A literal segment: anything but the separator, braces and control characters.
-_LITERAL = re.compile(r"[^.{}\x00-\x1f\x7f]+")
-# A label value: one segment of at most MAX_LABEL_VALUE characters, no control characters.
-_VALUE = rf"([^.\x00-\x1f\x7f]{{1,{MAX_LABEL_VALUE}}})"
+#: Segment separators: dots for ZeroMQ topics, slashes for MQTT topic levels.
+SEPARATORS = (".", "/")
+
+
+def _literal(sep: str) -> re.Pattern:
+    """A literal segment: anything but the separator, braces and control characters."""
+    return re.compile(rf"[^{re.escape(sep)}{{}}\x00-\x1f\x7f]+")
+
+
+def _value(sep: str) -> str:
+    """A label value: one segment of at most MAX_LABEL_VALUE characters, no control characters."""
+    return rf"([^{re.escape(sep)}\x00-\x1f\x7f]{{1,{MAX_LABEL_VALUE}}})"
+
+
+def default_separator(text: str) -> str:
+    """``/`` for a template with a slash and no dot (an MQTT topic), else ``.``.
+
+    >>> default_separator("greenhouse/{bed}/climate"), default_separator("lat.{service}")
+    ('/', '.')
+    """
+    return "/" if "/" in text and "." not in text else "."
 
 
 class TopicError(ValueError):
@@ -60,9 +85,11 @@ class TopicTemplate:
     labels : tuple of str
         Label names in order of appearance.
     prefix : str
-        The literal text before the first label (with its trailing dot), or the
-        whole template when it has no labels: the narrowest SUB filter that
-        still lets every matching topic through.
+        The literal text before the first label (with its trailing separator),
+        or the whole template when it has no labels: the narrowest SUB filter
+        that still lets every matching topic through.
+    separator : str
+        ``.`` or ``/``.
 
     Examples
     --------
@@ -80,9 +107,10 @@ class TopicTemplate:
     labels: tuple[str, ...]
     prefix: str
     _pattern: re.Pattern = field(repr=False, compare=False)
+    separator: str = "."
 
     @classmethod
-    def parse(cls, text: str, key: str = "topic") -> TopicTemplate:
+    def parse(cls, text: str, key: str = "topic", separator: str | None = None) -> TopicTemplate:
         """Parse and compile a template. O(len(text)).
 
         Parameters
@@ -92,6 +120,8 @@ class TopicTemplate:
             label is a Prometheus label name.
         key : str
             Where the text came from, for error messages.
+        separator : str, optional
+            ``.`` or ``/``; by default :func:`default_separator` of the text.
 
         Returns
         -------
@@ -107,12 +137,17 @@ class TopicTemplate:
             raise TopicError(key, text, "must be a string")
         if not text:
             raise TopicError(key, text, "must not be empty")
+        sep = default_separator(text) if separator is None else separator
+        if sep not in SEPARATORS:
+            raise TopicError(key, text, f"cannot use the separator {sep!r} (only . or /)")
+        literal, value = _literal(sep), _value(sep)
         segments: list[tuple[str, bool]] = []
         labels: list[str] = []
         parts: list[str] = []
-        for i, seg in enumerate(text.split(".")):
+        for i, seg in enumerate(text.split(sep)):
             if not seg:
-                raise TopicError(key, text, f"has an empty segment {i + 1} (a stray dot?)")
+                raise TopicError(key, text, f"has an empty segment {i + 1} "
+                                 f"(a stray {'dot' if sep == '.' else 'slash'}?)")
             if seg.startswith("{") and seg.endswith("}"):
                 name = seg[1:-1]
                 if not LABEL_NAME.fullmatch(name):
@@ -123,8 +158,8 @@ class TopicTemplate:
                     raise TopicError(key, text, f"names the label {{{name}}} twice")
                 labels.append(name)
                 segments.append((name, True))
-                parts.append(_VALUE)
-            elif _LITERAL.fullmatch(seg):
+                parts.append(value)
+            elif literal.fullmatch(seg):
                 segments.append((seg, False))
                 parts.append(re.escape(seg))
             else:
@@ -136,8 +171,8 @@ class TopicTemplate:
                 prefix_parts.append("")
                 break
             prefix_parts.append(seg)
-        return cls(text, tuple(segments), tuple(labels), ".".join(prefix_parts),
-                   re.compile(r"\.".join(parts)))
+        return cls(text, tuple(segments), tuple(labels), sep.join(prefix_parts),
+                   re.compile(re.escape(sep).join(parts)), sep)
 
     def match(self, topic: str) -> tuple[str, ...] | None:
         """Label values of ``topic`` in order, or None if the template does not take it.
@@ -163,9 +198,15 @@ class TopicTemplate:
     def overlaps(self, other: TopicTemplate) -> bool:
         """Whether some topic could match both templates. O(segments).
 
-        Two templates overlap when they have the same number of segments and
-        no position holds two different literals.
+        Two templates of one separator overlap when they have the same number
+        of segments and no position holds two different literals. Templates of
+        different separators are told apart only by their literal prefixes (a
+        label may hold the other's separator): they overlap unless neither
+        prefix starts the other.
         """
+        if self.separator != other.separator:
+            a, b = self.prefix, other.prefix
+            return a.startswith(b) or b.startswith(a)
         if len(self.segments) != len(other.segments):
             return False
         return all(a_label or b_label or a == b for (a, a_label), (b, b_label)
