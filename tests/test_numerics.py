@@ -1,0 +1,84 @@
+"""Issue 16: estimates that stay right for months (precision, weight range, drift, glitches).
+
+Reference sources are named beside each check value: scipy.stats for normal
+and mixture distributions, numpy's two-pass variance, exact rational
+arithmetic with Python's ``fractions`` module, and scikit-learn's batch EM.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+from sigmad.estimators.mixture_cdf import normal_mixture_quantile
+
+
+def scipy_mixture_cdf(x, w, mu, sd):
+    return sum(wk * stats.norm.cdf(x, loc=m, scale=s) for wk, m, s in zip(w, mu, sd, strict=True))
+
+
+def scipy_mixture_sf(x, w, mu, sd):
+    return sum(wk * stats.norm.sf(x, loc=m, scale=s) for wk, m, s in zip(w, mu, sd, strict=True))
+
+
+def inverts(x, q, w, mu, sd):
+    """x is the q-quantile to 1e-9 in probability, or to float resolution (the CDF
+    crosses q between x's neighbours). Reference: scipy.stats.norm.cdf / sf."""
+    with np.errstate(over="ignore"):      # scipy's (x - loc) / scale at scale 1e-300
+        return _inverts(x, q, w, mu, sd)
+
+
+def _inverts(x, q, w, mu, sd):
+    if q <= 0.5:
+        f = lambda v: scipy_mixture_cdf(v, w, mu, sd) - q          # noqa: E731
+    else:
+        f = lambda v: (1.0 - q) - scipy_mixture_sf(v, w, mu, sd)   # noqa: E731
+    if abs(f(x)) <= 1e-9 * min(q, 1.0 - q):
+        return True
+    return f(np.nextafter(x, -np.inf)) <= 0.0 <= f(np.nextafter(x, np.inf))
+
+
+# ------------------------------------------------------------ 1. quantile inversion
+def test_quantile_of_components_eighty_orders_apart_converges():
+    # Reference: 0.9 Phi(x) + 0.1 Phi((x - 1e80) / 1e80) = 1/2, and Phi(-1) is constant
+    # there, so x = Phi^-1((0.5 - 0.1 Phi(-1)) / 0.9) (scipy.stats.norm), about 0.0952.
+    w, mu, sd = np.array([0.9, 0.1]), np.array([0.0, 1e80]), np.array([1.0, 1e80])
+    expected = stats.norm.ppf((0.5 - 0.1 * stats.norm.cdf(-1.0)) / 0.9)
+    x = normal_mixture_quantile(0.5, w, mu, sd)
+    assert x == pytest.approx(expected, rel=1e-9)
+
+
+@pytest.mark.parametrize("q", [1e-6, 0.01, 0.5, 0.99, 0.999])
+def test_quantile_inversion_for_component_scales_1e_300_to_1e300(q):
+    # Reference: scipy.stats.norm.cdf / sf summed over components; every pair of scales
+    # from 1e-300 to 1e300 (one component centred at 0, the other at its own scale).
+    scales = 10.0 ** np.arange(-300, 301, 60)
+    for s1 in scales:
+        for s2 in scales:
+            w, mu, sd = np.array([0.7, 0.3]), np.array([0.0, s2]), np.array([s1, s2])
+            x = normal_mixture_quantile(q, w, mu, sd)
+            assert math.isfinite(x), (s1, s2)
+            assert inverts(x, q, w, mu, sd), (q, s1, s2, x)
+
+
+def test_quantile_of_a_wide_and_a_narrow_component_a_hundred_orders_apart():
+    # Reference: scipy.stats.norm; three components spanning 1e-150 to 1e150 in scale.
+    w = np.array([0.5, 0.3, 0.2])
+    mu = np.array([-1e100, 0.0, 1e140])
+    sd = np.array([1e-150, 1.0, 1e150])
+    for q in (0.1, 0.5, 0.6, 0.75, 0.9, 0.999):
+        x = normal_mixture_quantile(q, w, mu, sd)
+        assert inverts(x, q, w, mu, sd), (q, x)
+
+
+def test_quantile_is_nan_when_the_mixture_is_not_a_distribution():
+    # Reference: the definition of a quantile (common practice): none exists for NaN
+    # or non-positive total weights, so NaN and never an unconverged number.
+    for w, mu, sd in (([np.nan, 0.5], [0.0, 1.0], [1.0, 1.0]),
+                      ([0.5, 0.5], [0.0, np.nan], [1.0, 1.0]),
+                      ([0.5, 0.5], [0.0, 1.0], [np.inf, 1.0]),
+                      ([0.0, 0.0], [0.0, 1.0], [1.0, 1.0])):
+        assert math.isnan(normal_mixture_quantile(0.5, np.array(w), np.array(mu),
+                                                  np.array(sd)))
