@@ -82,3 +82,44 @@ def test_quantile_is_nan_when_the_mixture_is_not_a_distribution():
                       ([0.0, 0.0], [0.0, 1.0], [1.0, 1.0])):
         assert math.isnan(normal_mixture_quantile(0.5, np.array(w), np.array(mu),
                                                   np.array(sd)))
+
+
+# ------------------------------------------------------------------ 2. constant data
+@pytest.mark.parametrize("value", [5.0, 1000.0, -3.25e7, 1e-9, 7.5e120])
+def test_constant_stream_quantiles_equal_the_constant(value):
+    # Reference: a constant has every quantile equal to itself and spread 0 (common
+    # practice).
+    from sigmad.estimators import HalfLife, Mixture, Moments
+    data = np.full(1000, value)
+    for mix in (Mixture(2), Mixture(3, half_life=HalfLife(100, "observations")),
+                Mixture(2, warmup=2000)):      # the last one still warming
+        for i in range(0, 1000, 100):
+            mix.update(data[i:i + 100])
+        qs = (1e-6, 0.01, 0.5, 0.99, 0.999)
+        assert mix.quantile(qs).tolist() == [value] * len(qs)
+        # the whole mass sits between the constant's float neighbours
+        assert mix.cdf(np.nextafter(value, -np.inf)) == 0.0
+        assert mix.cdf(np.nextafter(value, np.inf)) >= 1.0 - 2e-16   # weights sum to 1
+    m = Moments(1, HalfLife(10.0))
+    m.update(data, times=np.arange(1000.0))
+    assert m.quantiles((0.01, 0.99))[:, 0].tolist() == [value, value]
+
+
+def test_constant_zero_stream_has_no_spread():
+    # Reference: as above (common practice); 0 has no magnitude, so the floor is tiny.
+    from sigmad.estimators import Mixture
+    mix = Mixture(2)
+    mix.update(np.zeros(500))
+    assert np.abs(mix.quantile((0.01, 0.99))).max() <= 1e-149
+
+
+def test_constant_warmup_then_spread_still_fits():
+    # Reference: numpy mean / std of the second phase; scipy.stats.norm.ppf.
+    from sigmad.estimators import HalfLife, Mixture
+    rng = np.random.default_rng(4)
+    mix = Mixture(2, half_life=HalfLife(500, "observations"))
+    mix.update(np.full(300, 5.0))
+    later = rng.normal(5.0, 2.0, 20000)
+    for i in range(0, later.size, 200):
+        mix.update(later[i:i + 200])
+    assert mix.quantile(0.99) == pytest.approx(stats.norm.ppf(0.99, 5.0, 2.0), rel=0.05)
