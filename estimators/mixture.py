@@ -17,7 +17,7 @@ CovarianceType = Literal["full", "diag"]
 _LOG_2PI = math.log(2.0 * math.pi)
 _RESEED_WEIGHT = 0.5    # a re-seeded component starts with this share of 1/K
 _RESOLUTION = 2.0 ** -60  # a constant field's floor sd, relative to its value (_floor_for)
-_TINY_VARIANCE = 1e-300
+_TINY_VARIANCE = 1e-100  # 1/floor times a squared difference (<= 4e200) stays finite
 
 
 class Mixture:
@@ -718,8 +718,9 @@ def _floor_for(mean: np.ndarray, var: np.ndarray, reg: float) -> np.ndarray:
     float resolution of the field's magnitude (so a constant field reads as its value).
 
     (2**-60 |mean|)**2 keeps mean + sd * Phi^-1(q) equal to the mean in float64 for
-    every q down to 1e-15 (half an ulp of m is at least 2**-54 |m|); a constant 0
-    gets the smallest variance whose reciprocal and square root stay normal."""
+    every q down to 1e-15 (half an ulp of m is at least 2**-54 |m|). The floor is
+    never below 1e-100, so that a squared difference of accepted values (at most
+    (2e100)**2) over it stays finite: a constant 0 reads with sd 1e-50."""
     resolution = np.maximum((_RESOLUTION * mean) ** 2, _TINY_VARIANCE)
     return np.maximum(reg * np.where(var > 0.0, var, 0.0), resolution)
 
