@@ -36,6 +36,13 @@ class NonFiniteError(EstimatorError):
     reason = "not_finite"
 
 
+class RangeError(EstimatorError):
+    """A value's magnitude exceeds the bound within which its square, and sums of
+    squares, stay finite (``validation.MAX_ABS_VALUE``)."""
+
+    reason = "out_of_range"
+
+
 class WeightError(EstimatorError):
     """A weight is not finite and > 0."""
 

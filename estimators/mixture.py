@@ -16,6 +16,8 @@ from .validation import check_batch, check_saved
 CovarianceType = Literal["full", "diag"]
 _LOG_2PI = math.log(2.0 * math.pi)
 _RESEED_WEIGHT = 0.5    # a re-seeded component starts with this share of 1/K
+_RESOLUTION = 2.0 ** -60  # a constant field's floor sd, relative to its value (_floor_for)
+_TINY_VARIANCE = 1e-100  # 1/floor times a squared difference (<= 4e200) stays finite
 
 
 class Mixture:
@@ -49,7 +51,9 @@ class Mixture:
         A component whose weight falls below this share is re-seeded.
     reg : float
         Covariance floor, as a fraction of each field's variance in the
-        warm-up data, added to every component's covariance.
+        warm-up data, added to every component's covariance. A field that is
+        constant in the warm-up data gets the float resolution of its value
+        instead, so constant data has quantiles equal to the constant.
     recent : int
         Number of most recent rows kept as re-seeding candidates.
 
@@ -236,7 +240,7 @@ class Mixture:
         ll, gamma = _e_step(y, self._prepared())
         self.L += float(v @ ll)
         self.LW += vsum
-        a, mb, cb = _batch_stats(y, v[:, None] * gamma, self.covariance == "diag")
+        a, mb, cb = _batch_stats(y, v[:, None] * gamma, self.covariance == "diag", self._mu)
         self._fold_stats(a, mb, cb, self._pi * self.W + a)
 
     def _step_one(self, y: np.ndarray, v: np.ndarray, vsum: float) -> None:
@@ -250,14 +254,13 @@ class Mixture:
         a = r.sum(axis=0)
         tot = self._pi * self.W + a
         if not (a > 0.0).all():    # rare: some component got nothing; take the general path
-            self._fold_stats(a, *_batch_stats(y[:, None], r, False)[1:], tot)
+            self._fold_stats(a, *_batch_stats(y[:, None], r, False, self._mu)[1:], tot)
             return
-        mb = (y @ r) / a
-        dev = y[:, None] - mb
+        delta = (r * diff).sum(axis=0) / a     # shifted by mu: exact 0 for rows at mu
+        dev = diff - delta
         cb = (r * dev * dev).sum(axis=0)
         frac = a / tot
         keep = 1.0 - frac
-        delta = mb - mu
         var = self._cov[:, 0, 0]
         self._mu = (mu + delta * frac)[:, None]
         self._cov = (keep * var + cb / tot + delta * delta * keep * frac)[:, None, None]
@@ -340,7 +343,12 @@ class Mixture:
         """Re-seed components whose weight or variance has collapsed, one at a time,
         each where the mixture of the healthy components fits the recent rows worst."""
         var = np.diagonal(self._cov, axis1=1, axis2=2)
-        sick = (self._pi < self.min_weight) | (var < self._floor).any(axis=1)
+        sick = self._pi < self.min_weight
+        narrow = (var < self._floor).any(axis=1)
+        # a component narrower than the floor has collapsed onto a spike, unless the
+        # recent rows are all one value: then the data itself is constant
+        if narrow.any() and self._recent.shape[0] and np.ptp(self._recent, axis=0).any():
+            sick |= narrow
         if not sick.any() or self._recent.shape[0] == 0:
             return
         for k in np.flatnonzero(sick):
@@ -711,18 +719,25 @@ def _check_int(name: str, value: object, least: int) -> None:
 
 
 def _floor_for(mean: np.ndarray, var: np.ndarray, reg: float) -> np.ndarray:
-    """Covariance floor per field: reg times the field's variance (or its squared mean,
-    or 1, when the field is constant)."""
-    fallback = np.maximum(mean * mean, 1.0)
-    return reg * np.where(var > 0.0, var, fallback)
+    """Covariance floor per field: reg times the field's variance, and never below the
+    float resolution of the field's magnitude (so a constant field reads as its value).
+
+    (2**-60 |mean|)**2 keeps mean + sd * Phi^-1(q) equal to the mean in float64 for
+    every q down to 1e-15 (half an ulp of m is at least 2**-54 |m|). The floor is
+    never below 1e-100, so that a squared difference of accepted values (at most
+    (2e100)**2) over it stays finite: a constant 0 reads with sd 1e-50."""
+    resolution = np.maximum((_RESOLUTION * mean) ** 2, _TINY_VARIANCE)
+    return np.maximum(reg * np.where(var > 0.0, var, 0.0), resolution)
 
 
 def _weighted_gaussian(y: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Weighted mean (d,) and maximum-likelihood covariance (d, d), two centred passes."""
+    """Weighted mean (d,) and maximum-likelihood covariance (d, d), two centred passes
+    on rows shifted by the first (exact for constant data, no digits lost to offsets)."""
     total = v.sum()
-    mean = (v @ y) / total
-    yc = y - mean
-    return mean, (yc.T * v) @ yc / total
+    yc = y - y[0]
+    shift = (v @ yc) / total
+    yc = yc - shift
+    return y[0] + shift, (yc.T * v) @ yc / total
 
 
 def _outer(delta: np.ndarray, diag: bool) -> np.ndarray:
@@ -798,19 +813,30 @@ def _e_step(y: np.ndarray, prep: tuple) -> tuple[np.ndarray, np.ndarray]:
     return _logsumexp(_log_prob(y, prep))
 
 
-def _batch_stats(y: np.ndarray, r: np.ndarray,
-                 diag: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _batch_stats(y: np.ndarray, r: np.ndarray, diag: bool,
+                 centre: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-component weight a (K,), mean (K, d) and centred scatter (K, d, d) of a
-    batch under weights r (n, K); components with a = 0 get mean 0, scatter 0."""
+    batch under weights r (n, K); components with a = 0 get their centre, scatter 0.
+
+    The rows are shifted by each component's ``centre`` (K, d) before any sum
+    (Chan, Golub & LeVeque's shifted data): the mean is centre + the weighted
+    mean of y - centre, so rows equal to the centre add exactly nothing and
+    large offsets cost no digits."""
     a = r.sum(axis=0)
-    # divide, never multiply by 1/a: a subnormal a would overflow its reciprocal
-    mb = np.divide(r.T @ y, a[:, None], out=np.zeros((a.shape[0], y.shape[1])),
-                   where=(a > 0.0)[:, None])
     n, d = y.shape
+    live = (a > 0.0)[:, None]
     if d == 1:
-        diff = y - mb[:, 0]                              # (n, K)
-        return a, mb, (r * diff * diff).sum(axis=0).reshape(-1, 1, 1)
-    diff = y[:, None, :] - mb[None]                      # (n, K, d)
+        diff = y - centre[:, 0]                          # (n, K)
+        # divide, never multiply by 1/a: a subnormal a would overflow its reciprocal
+        shift = np.divide((r * diff).sum(axis=0)[:, None], a[:, None],
+                          out=np.zeros((a.shape[0], 1)), where=live)
+        dev = diff - shift[:, 0]
+        return a, centre + shift, (r * dev * dev).sum(axis=0).reshape(-1, 1, 1)
+    diff = y[:, None, :] - centre[None]                  # (n, K, d)
+    shift = np.divide(np.einsum("nk,nkd->kd", r, diff), a[:, None],
+                      out=np.zeros((a.shape[0], d)), where=live)
+    diff = diff - shift[None]
+    mb = centre + shift
     if diag:
         return a, mb, _outer_diag((r[:, :, None] * diff * diff).sum(axis=0))
     weighted = diff * r[:, :, None]
@@ -830,7 +856,7 @@ def _batch_m_step(y: np.ndarray, v: np.ndarray, gamma: np.ndarray, fallback_mu: 
                   diag: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Closed-form M-step on a whole buffer: (pi, mu, raw covariance). A component that
     got no weight keeps ``fallback_mu`` and the data covariance, with weight 0."""
-    a, mb, cb = _batch_stats(y, v[:, None] * gamma, diag)
+    a, mb, cb = _batch_stats(y, v[:, None] * gamma, diag, fallback_mu)
     live = a > 0.0
     scaled = np.divide(cb, a[:, None, None], out=np.zeros_like(cb),
                        where=live[:, None, None])

@@ -118,19 +118,23 @@ class Moments:
         if n == 0:
             return
         v = take_batch(self, n, t, w)
+        # shifted by the first row (Chan, Golub & LeVeque): constant data is exactly
+        # constant, and an offset costs no digits of the batch mean
+        xc = x - x[0]
         if v is None:
             wb, w2b = float(n), float(n)
-            mb = x.mean(axis=0)
-            xc = x - mb
+            shift = xc.mean(axis=0)
+            xc -= shift
             cb = xc.T @ xc
         else:
             wb = float(v.sum())
             if not wb > 0.0:      # every row has decayed to nothing
                 return
             w2b = float(v @ v)
-            mb = (v @ x) / wb
-            xc = x - mb
+            shift = (v @ xc) / wb
+            xc -= shift
             cb = (xc.T * v) @ xc
+        mb = x[0] + shift
         self._combine(wb, w2b, mb, cb)
 
     def _combine(self, wb: float, w2b: float, mb: np.ndarray, cb: np.ndarray) -> None:

@@ -11,8 +11,19 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .errors import IncompatibleError, NonFiniteError, ShapeError, TimeError, WeightError
+from .errors import (
+    IncompatibleError,
+    NonFiniteError,
+    RangeError,
+    ShapeError,
+    TimeError,
+    WeightError,
+)
 from .forgetting import check_times
+
+#: Default largest accepted |value|: squares and weighted cross-products of
+#: values and weights within these bounds stay far inside float64's 1.8e308.
+MAX_ABS_VALUE = 1e100
 
 
 class Batch(NamedTuple):
@@ -54,14 +65,28 @@ def as_weights(weights: object, n: int) -> np.ndarray | None:
     return w
 
 
-def check_batch(x: object, dim: int, weights: object = None, times: object = None) -> Batch:
-    """Validate a whole batch; raise a specific error naming the first bad value. O(n d)."""
-    a = as_rows(x, dim)
-    n = a.shape[0]
+def check_values(a: np.ndarray, field: str) -> None:
+    """Raise NonFiniteError or RangeError naming the first value of ``a`` (n, d) that is
+    not finite or exceeds ``MAX_ABS_VALUE`` in magnitude. O(n d)."""
+    if not a.size or np.abs(a).max() <= MAX_ABS_VALUE:    # NaN fails the comparison
+        return
     finite = np.isfinite(a)
     if not finite.all():
         row, col = np.argwhere(~finite)[0]
-        raise NonFiniteError("x", float(a[row, col]), f"row {row}, column {col} must be finite")
+        raise NonFiniteError(field, float(a[row, col]),
+                             f"row {row}, column {col} must be finite")
+    row, col = np.argwhere(np.abs(a) > MAX_ABS_VALUE)[0]
+    raise RangeError(field, float(a[row, col]),
+                     f"row {row}, column {col} must not exceed {MAX_ABS_VALUE:g} in "
+                     f"magnitude (its square, and sums of squares, must stay finite)")
+
+
+def check_batch(x: object, dim: int, weights: object = None, times: object = None) -> Batch:
+    """Validate a whole batch; raise a specific error naming the first bad value: a
+    NonFiniteError for NaN or inf, a RangeError for |x| > MAX_ABS_VALUE. O(n d)."""
+    a = as_rows(x, dim)
+    n = a.shape[0]
+    check_values(a, "x")
     w = as_weights(weights, n)
     if w is not None:
         ok = np.isfinite(w) & (w > 0)
@@ -106,9 +131,6 @@ def clean_batch(x: object, dim: int, weights: object = None,
     return Batch(a[keep], None if w is None else w[keep], None if t is None else t[keep]), counts
 
 
-#: Default largest accepted |value|: squares and weighted cross-products of
-#: values and weights within these bounds stay far inside float64's 1.8e308.
-MAX_ABS_VALUE = 1e100
 #: Accepted weights lie in [MIN_WEIGHT, MAX_WEIGHT]: W2 = sum(w**2) neither
 #: underflows to 0 (Kish's W**2/W2 would be 0/0) nor overflows.
 MIN_WEIGHT = 1e-30
@@ -184,7 +206,7 @@ def check_xy(x: object, y: object, dim: int, weights: object = None,
     X is coerced as by ``as_rows`` (a vector of n is a column when dim == 1, a
     vector of dim is one row when dim > 1); y must hold one number per row.
     Returns a Batch whose ``x`` is the stacked (n, dim + 1) array [X | y].
-    Raises ShapeError, NonFiniteError (field "X" or "y"), WeightError or
+    Raises ShapeError, NonFiniteError or RangeError (field "X" or "y"), WeightError or
     TimeError on the first problem; nothing is returned half-checked. O(n dim).
     """
     a = as_rows(x, dim, "X")
@@ -197,13 +219,8 @@ def check_xy(x: object, y: object, dim: int, weights: object = None,
         b = b.reshape(1)
     if b.shape != (n,):
         raise ShapeError("y", f"shape {b.shape}", f"must hold one response per row of X ({n})")
-    finite = np.isfinite(a)
-    if not finite.all():
-        row, col = np.argwhere(~finite)[0]
-        raise NonFiniteError("X", float(a[row, col]), f"row {row}, column {col} must be finite")
-    if not np.isfinite(b).all():
-        row = int(np.argmin(np.isfinite(b)))
-        raise NonFiniteError("y", float(b[row]), f"row {row} must be finite")
+    check_values(a, "X")
+    check_values(b.reshape(-1, 1), "y")
     w = as_weights(weights, n)
     if w is not None:
         ok = np.isfinite(w) & (w > 0)

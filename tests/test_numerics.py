@@ -1,0 +1,180 @@
+"""Issue 16: estimates that stay right for months (precision, weight range, drift, glitches).
+
+Reference sources are named beside each check value: scipy.stats for normal
+and mixture distributions, numpy's two-pass variance, exact rational
+arithmetic with Python's ``fractions`` module, and scikit-learn's batch EM.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+from sigmad.estimators import (
+    HalfLife,
+    Mixture,
+    Moments,
+    NonFiniteError,
+    RangeError,
+    Regression,
+)
+from sigmad.estimators.mixture_cdf import normal_mixture_quantile
+
+
+def scipy_mixture_cdf(x, w, mu, sd):
+    return sum(wk * stats.norm.cdf(x, loc=m, scale=s) for wk, m, s in zip(w, mu, sd, strict=True))
+
+
+def scipy_mixture_sf(x, w, mu, sd):
+    return sum(wk * stats.norm.sf(x, loc=m, scale=s) for wk, m, s in zip(w, mu, sd, strict=True))
+
+
+def inverts(x, q, w, mu, sd):
+    """x is the q-quantile to 1e-9 in probability, or to float resolution (the CDF
+    crosses q between x's neighbours). Reference: scipy.stats.norm.cdf / sf."""
+    with np.errstate(over="ignore"):      # scipy's (x - loc) / scale at scale 1e-300
+        return _inverts(x, q, w, mu, sd)
+
+
+def _inverts(x, q, w, mu, sd):
+    if q <= 0.5:
+        f = lambda v: scipy_mixture_cdf(v, w, mu, sd) - q          # noqa: E731
+    else:
+        f = lambda v: (1.0 - q) - scipy_mixture_sf(v, w, mu, sd)   # noqa: E731
+    if abs(f(x)) <= 1e-9 * min(q, 1.0 - q):
+        return True
+    return f(np.nextafter(x, -np.inf)) <= 0.0 <= f(np.nextafter(x, np.inf))
+
+
+# ------------------------------------------------------------ 1. quantile inversion
+def test_quantile_of_components_eighty_orders_apart_converges():
+    # Reference: 0.9 Phi(x) + 0.1 Phi((x - 1e80) / 1e80) = 1/2, and Phi(-1) is constant
+    # there, so x = Phi^-1((0.5 - 0.1 Phi(-1)) / 0.9) (scipy.stats.norm), about 0.0952.
+    w, mu, sd = np.array([0.9, 0.1]), np.array([0.0, 1e80]), np.array([1.0, 1e80])
+    expected = stats.norm.ppf((0.5 - 0.1 * stats.norm.cdf(-1.0)) / 0.9)
+    x = normal_mixture_quantile(0.5, w, mu, sd)
+    assert x == pytest.approx(expected, rel=1e-9)
+
+
+@pytest.mark.parametrize("q", [1e-6, 0.01, 0.5, 0.99, 0.999])
+def test_quantile_inversion_for_component_scales_1e_300_to_1e300(q):
+    # Reference: scipy.stats.norm.cdf / sf summed over components; every pair of scales
+    # from 1e-300 to 1e300 (one component centred at 0, the other at its own scale).
+    scales = 10.0 ** np.arange(-300, 301, 60)
+    for s1 in scales:
+        for s2 in scales:
+            w, mu, sd = np.array([0.7, 0.3]), np.array([0.0, s2]), np.array([s1, s2])
+            x = normal_mixture_quantile(q, w, mu, sd)
+            assert math.isfinite(x), (s1, s2)
+            assert inverts(x, q, w, mu, sd), (q, s1, s2, x)
+
+
+def test_quantile_of_a_wide_and_a_narrow_component_a_hundred_orders_apart():
+    # Reference: scipy.stats.norm; three components spanning 1e-150 to 1e150 in scale.
+    w = np.array([0.5, 0.3, 0.2])
+    mu = np.array([-1e100, 0.0, 1e140])
+    sd = np.array([1e-150, 1.0, 1e150])
+    for q in (0.1, 0.5, 0.6, 0.75, 0.9, 0.999):
+        x = normal_mixture_quantile(q, w, mu, sd)
+        assert inverts(x, q, w, mu, sd), (q, x)
+
+
+def test_quantile_is_nan_when_the_mixture_is_not_a_distribution():
+    # Reference: the definition of a quantile (common practice): none exists for NaN
+    # or non-positive total weights, so NaN and never an unconverged number.
+    for w, mu, sd in (([np.nan, 0.5], [0.0, 1.0], [1.0, 1.0]),
+                      ([0.5, 0.5], [0.0, np.nan], [1.0, 1.0]),
+                      ([0.5, 0.5], [0.0, 1.0], [np.inf, 1.0]),
+                      ([0.0, 0.0], [0.0, 1.0], [1.0, 1.0])):
+        assert math.isnan(normal_mixture_quantile(0.5, np.array(w), np.array(mu),
+                                                  np.array(sd)))
+
+
+# ------------------------------------------------------------------ 2. constant data
+@pytest.mark.parametrize("value", [5.0, 1000.0, -3.25e7, 1e-9, 7.5e90])
+def test_constant_stream_quantiles_equal_the_constant(value):
+    # Reference: a constant has every quantile equal to itself and spread 0 (common
+    # practice).
+    data = np.full(1000, value)
+    for mix in (Mixture(2), Mixture(3, half_life=HalfLife(100, "observations")),
+                Mixture(2, warmup=2000)):      # the last one still warming
+        for i in range(0, 1000, 100):
+            mix.update(data[i:i + 100])
+        qs = (1e-6, 0.01, 0.5, 0.99, 0.999)
+        assert mix.quantile(qs).tolist() == [value] * len(qs)
+        # the whole mass sits between the constant's float neighbours
+        assert mix.cdf(np.nextafter(value, -np.inf)) == 0.0
+        assert mix.cdf(np.nextafter(value, np.inf)) >= 1.0 - 2e-16   # weights sum to 1
+    m = Moments(1, HalfLife(10.0))
+    m.update(data, times=np.arange(1000.0))
+    assert m.quantiles((0.01, 0.99))[:, 0].tolist() == [value, value]
+
+
+def test_constant_zero_stream_has_no_spread():
+    # Reference: as above (common practice); 0 has no magnitude: the floor, sd 1e-50,
+    # keeps (2e100)**2 / variance finite.
+    mix = Mixture(2)
+    mix.update(np.zeros(500))
+    assert np.abs(mix.quantile((0.01, 0.99))).max() <= 1e-49
+
+
+def test_constant_warmup_then_spread_still_fits():
+    # Reference: numpy mean / std of the second phase; scipy.stats.norm.ppf.
+    rng = np.random.default_rng(4)
+    mix = Mixture(2, half_life=HalfLife(500, "observations"))
+    mix.update(np.full(300, 5.0))
+    later = rng.normal(5.0, 2.0, 20000)
+    for i in range(0, later.size, 200):
+        mix.update(later[i:i + 200])
+    assert mix.quantile(0.99) == pytest.approx(stats.norm.ppf(0.99, 5.0, 2.0), rel=0.05)
+
+
+# -------------------------------------------------------------- 3. overflowing squares
+@pytest.mark.parametrize("bad", [1e155, -1e155, 1e101, 1.7e308])
+def test_values_whose_squares_would_overflow_are_rejected_naming_the_value(bad):
+    # Reference: float64's largest value is 1.797e308 (numpy.finfo), so sums of squares
+    # of values beyond 1e100 lose their headroom; sqrt(1.797e308) = 1.34e154.
+    rng = np.random.default_rng(5)
+    good = rng.normal(0.0, 1.0, 300)
+    for est in (Moments(), Mixture(2, warmup=50)):
+        est.update(good)
+        before = est.to_dict()
+        with pytest.raises(RangeError) as info:
+            est.update(np.array([1.0, bad, 2.0]))
+        assert info.value.field == "x" and info.value.value == bad
+        assert info.value.reason == "out_of_range" and "row 1" in str(info.value)
+        assert est.to_dict() == before               # nothing half-applied
+        assert np.isfinite(est.quantile(0.5)).all()
+    reg = Regression(1)
+    for field, x, y in (("X", [[1.0], [bad]], [1.0, 2.0]), ("y", [[1.0], [2.0]], [bad, 1.0])):
+        with pytest.raises(RangeError) as info:
+            reg.update(x, y)
+        assert info.value.field == field and info.value.value == bad
+    assert reg.count == 0
+
+
+def test_nan_is_still_a_non_finite_error_before_any_range_check():
+    with pytest.raises(NonFiniteError):
+        Moments().update([1e200, np.nan])
+    with pytest.raises(NonFiniteError):
+        Regression(1).update([[1.0]], [np.inf])
+
+
+def test_largest_accepted_values_keep_every_read_out_finite():
+    # Reference: numpy float64 arithmetic; values at the bound (1e100) into a warm mixture,
+    # a constant-0 mixture and Moments leave no overflow anywhere (numpy errstate raises).
+    rng = np.random.default_rng(6)
+    with np.errstate(over="raise", invalid="raise"):
+        mix = Mixture(2, warmup=50)
+        mix.update(rng.normal(0.0, 1.0, 200))
+        zero = Mixture(2, warmup=50)
+        zero.update(np.zeros(100))
+        m = Moments()
+        for est in (mix, zero, m):
+            est.update(np.array([1e100, -1e100, 3.0]))
+            est.update(rng.normal(0.0, 1.0, 100))
+        assert math.isfinite(mix.average_loglik) and math.isfinite(zero.average_loglik)
+        assert np.isfinite(mix.quantile((0.01, 0.5, 0.99))).all()
+        assert np.isfinite(m.variance()).all()
