@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import math
 import threading
 import time
+from pathlib import Path
 
 import zmq
 from prometheus_client import (
@@ -16,7 +18,8 @@ from prometheus_client import (
 )
 from sigmad.daemon.cluster.merge import Merger, ShardCollector
 from sigmad.daemon.cluster.publish import Publisher
-from sigmad.daemon.config.load import Config, ConfigError
+from sigmad.daemon.config.host import host_problems
+from sigmad.daemon.config.load import Config, ConfigError, split_host_port
 from sigmad.daemon.engine.allocator import keep_freed_blocks
 from sigmad.daemon.engine.blas import set_threads as set_blas_threads
 from sigmad.daemon.engine.engine import Engine
@@ -25,12 +28,21 @@ from sigmad.daemon.export.metrics_text import SeriesRenderer
 from sigmad.daemon.export.model import HealthCollector
 from sigmad.daemon.ingest.curve_auth import RefusedCollector, stop_authenticator
 from sigmad.daemon.ingest.source import Source
+from sigmad.daemon.ingest.wire import REASONS as WIRE_REASONS
 from sigmad.daemon.storage.checkpoint import Checkpointer
 from sigmad.daemon.web.history import History
 from sigmad.daemon.web.page import render_page
 from sigmad.daemon.web.server import HttpServer, json_bytes
 
 log = logging.getLogger("sigmad")
+
+#: Every reason of ``sigmad_rejected_total`` (README, "Wire format"): the body's
+#: (wire.REASONS), the routing's and the rows'; a merger adds MERGE_REASONS.
+REJECT_REASONS: tuple[str, ...] = WIRE_REASONS + (
+    "bad_frames", "no_stream", "series_limit", "not_finite", "bad_weight", "bad_time",
+    "clock_skew", "not_positive", "out_of_range")
+MERGE_REASONS: tuple[str, ...] = (
+    "state_malformed", "state_incompatible", "state_unknown_stream", "state_too_many_shards")
 
 HOUSEKEEPING_EVERY = 1.0   # seconds between idle-expiry sweeps
 IDLE_FLUSH_ROWS = 10_000   # rows waiting that are folded as soon as the sources go quiet
@@ -41,6 +53,38 @@ def _mqtt_source(cfg, max_bytes: int):
     from sigmad.daemon.ingest.mqtt import MqttSource
 
     return MqttSource(cfg, max_bytes)
+
+
+def _is_loopback(host: str) -> bool:
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def _with_port(http: str, port: int) -> str:
+    host, _ = split_host_port(http, "daemon.http")
+    return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+
+
+def _show_seconds(seconds: float) -> str:
+    return f"{seconds:g} s" if seconds < 120 else f"{seconds / 60:g} min"
+
+
+def _make_state_directory(state_file: str) -> None:
+    """Create the state file's directory when its parent exists (a ConfigError otherwise)."""
+    folder = Path(state_file).parent
+    if folder.is_dir():
+        return
+    try:
+        folder.mkdir()
+    except OSError as exc:
+        raise ConfigError("daemon.state_file", state_file,
+                          f"is in {str(folder)!r}, which could not be created "
+                          f"({exc.strerror}); create it or correct the path") from None
+    log.info("created the state directory %s", folder)
 
 
 class Daemon:
@@ -69,21 +113,22 @@ class Daemon:
             "sigmad_flush_duration_seconds", "Time spent folding one flush.",
             buckets=(1e-4, 1e-3, 1e-2, 0.1, 1.0), registry=self.registry)
         d = config.daemon
-        self.checkpointer = None
-        if d.state_file:
-            # restore before any socket is open: nothing is ingested into a state
-            # that is about to be replaced, and a strict refusal binds nothing
-            self.checkpointer = Checkpointer(d.state_file, d.checkpoint_every, self.registry)
-            self.checkpointer.restore(self.engine, time.time(), d.strict_restore)
-        self.http = HttpServer(d.http, self._metrics, self._page, self._state,
-                               d.tls_cert, d.tls_key, d.tls_client_ca)
+        problems = host_problems(config)
+        if problems:
+            raise problems[0]
+        # every socket is bound before anything starts or is read: a failed bind
+        # stops the start-up at once, with one sentence naming the key and address
         self._ctx = zmq.Context()
+        self.http: HttpServer | None = None
         self.sources: list[Source] = []
         self.publisher: Publisher | None = None
         self.merger: Merger | None = None
+        self.checkpointer = None
         try:
-            for s in config.sources:
-                self.sources.append(Source(self._ctx, s) if s.mqtt is None
+            self.http = HttpServer(d.http, self._metrics, self._page, self._state,
+                                   d.tls_cert, d.tls_key, d.tls_client_ca)
+            for i, s in enumerate(config.sources):
+                self.sources.append(Source(self._ctx, s, key=f"source[{i}]") if s.mqtt is None
                                     else _mqtt_source(s, d.max_message_bytes))
             if any(s.mqtt is not None for s in config.sources):
                 from sigmad.daemon.ingest.mqtt import ConnectionCollector
@@ -94,13 +139,33 @@ class Daemon:
             if config.merge is not None:
                 self.merger = Merger(self._ctx, config)
                 self.registry.register(ShardCollector(self.merger, time.time))
-        except (zmq.ZMQError, ConfigError):
+            # every counter an alert may watch exists at 0 from the start
+            for s in self.sources:
+                self.engine.messages[s.label] += 0
+            for reason in REJECT_REASONS:
+                self.engine.rejected[reason] += 0
+            if self.merger is not None:
+                for reason in MERGE_REASONS:
+                    self.merger.rejected[reason] += 0
+            if d.state_file:
+                # restored before the engine thread runs: nothing is ingested into a
+                # state that is about to be replaced
+                _make_state_directory(d.state_file)
+                self.checkpointer = Checkpointer(d.state_file, d.checkpoint_every,
+                                                 self.registry)
+                self.checkpointer.restore(self.engine, time.time(), d.strict_restore)
+        except BaseException as exc:
             self._close_sockets()
-            self.http.stop()
+            if self.http is not None:
+                self.http.stop()
+            if isinstance(exc, ConfigError) and exc.origin is None:
+                raise exc.with_origin(config.origin) from None
             raise
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, name="sigmad-engine", daemon=True)
         self.failure: BaseException | None = None
+        self.checkpoint_written = False
+        self.checkpointed_series = 0
 
     # ----------------------------------------------------------- read side
     @property
@@ -121,15 +186,29 @@ class Daemon:
     def start(self) -> None:
         self.http.start()
         self._thread.start()
-        log.info("sigmad listening: metrics on http://%s:%d/metrics; sources %s",
-                 self.config.daemon.http.rpartition(":")[0], self.http.port,
-                 ", ".join(s.label for s in self.sources))
+        d = self.config.daemon
+        scheme = "https" if self.http.tls else "http"
+        log.info("sigmad listening: metrics on %s://%s/metrics; sources %s", scheme,
+                 _with_port(d.http, self.http.port), ", ".join(s.label for s in self.sources))
+        if not self.http.tls and not _is_loopback(d.http_host):
+            log.warning("daemon.http = %r is reachable beyond this host without TLS: anyone "
+                        "who can reach it reads every estimate; set tls_cert and tls_key, or "
+                        "listen on 127.0.0.1 behind a proxy", d.http)
 
     def stop(self, timeout: float = 5.0) -> None:
         self._stop.set()
         self._thread.join(timeout)
         self.http.stop()
         self._close_sockets()
+        if self.checkpointer is None:
+            log.info("sigmad stopped; no state_file, so the estimates were not kept")
+        elif self.checkpoint_written:
+            log.info("sigmad stopped; checkpointed %d series to %s",
+                     self.checkpointed_series, self.checkpointer.path)
+        else:
+            log.error("sigmad stopped; the final checkpoint to %s was NOT written (see the "
+                      "error above): the last %s of estimates are lost",
+                      self.checkpointer.path, _show_seconds(self.config.daemon.checkpoint_every))
 
     def wait(self, timeout: float | None = None) -> bool:
         """Block until the engine thread ends (stop or failure); True if it has."""
@@ -215,7 +294,8 @@ class Daemon:
             s.drain(engine, time.time())
         self._flush(time.time())
         if self.checkpointer is not None:
-            self.checkpointer.final(engine, time.time())
+            self.checkpointed_series = sum(1 for _ in engine.all_series())
+            self.checkpoint_written = self.checkpointer.final(engine, time.time())
 
     def _flush(self, now: float) -> None:
         rows = self.engine.pending_rows

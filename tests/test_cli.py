@@ -30,17 +30,17 @@ def _sigmad(*args: str, stdin: str | None = None) -> subprocess.CompletedProcess
 
 
 @pytest.mark.parametrize("path", sorted(glob.glob(str(ROOT / "configs" / "*.toml"))))
-def test_check_config_accepts_every_worked_example(path):
-    out = _sigmad("check-config", path)
+def test_validate_accepts_every_worked_example(path):
+    out = _sigmad("validate", path)
     assert out.returncode == 0, out.stderr
     assert "stream" in out.stdout
 
 
-def test_check_config_names_file_key_and_value_and_exits_1(tmp_path):
+def test_validate_names_file_key_and_value_and_exits_1(tmp_path):
     bad = tmp_path / "bad.toml"
     bad.write_text('[[source]]\nsocket = "pull"\nbind = "tcp://127.0.0.1:1"\n'
                    '[[stream]]\nname = "x"\ntopic = "x"\nfields = ["v"]\nhalf_lif = "1m"\n')
-    out = _sigmad("check-config", str(bad))
+    out = _sigmad("validate", str(bad))
     assert out.returncode == 1
     line = out.stderr.strip()
     assert "\n" not in line and "Traceback" not in line

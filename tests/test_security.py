@@ -202,3 +202,78 @@ def test_plain_http_to_the_tls_port_gets_no_metrics(tls_daemon):
     url = f"http://127.0.0.1:{tls_daemon.port}/metrics"
     with pytest.raises((ConnectionError, urllib.error.URLError, OSError)):
         urllib.request.urlopen(url, timeout=5).read()
+
+
+SLOWLORIS = 200   # idle connections held open while a normal scrape must answer
+PLAIN_CONFIG = "\n".join(line for line in TLS_CONFIG.splitlines() if "tls_" not in line)
+
+
+def _idle_connections(port: int, n: int) -> list:
+    import socket
+
+    held = []
+    for _ in range(n):
+        s = socket.create_connection(("127.0.0.1", port), timeout=5)
+        held.append(s)
+    return held
+
+
+def test_idle_connections_and_an_idle_tls_client_leave_scrapes_answering(tls_daemon):
+    # 200 connections that never start TLS, and one that sends half a request line
+    held = _idle_connections(tls_daemon.port, SLOWLORIS)
+    try:
+        held[-1].sendall(b"\x16\x03\x01")   # the first bytes of a TLS record, then nothing
+        time.sleep(0.5)   # every connection accepted and waiting
+        t0 = time.monotonic()
+        parsed = tls_daemon.metrics()
+        took = time.monotonic() - t0
+    finally:
+        for s in held:
+            s.close()
+    assert value(parsed, "sigmad_series", stream="k") == 0.0
+    assert took < 1.0, f"a scrape took {took:.2f} s beside {SLOWLORIS} idle connections"
+
+
+def test_idle_plain_connections_leave_scrapes_answering(tmp_path):
+    d = Sigmad(tmp_path, PLAIN_CONFIG % {"dir": tmp_path})
+    try:
+        held = _idle_connections(d.port, SLOWLORIS)
+        held[0].sendall(b"GET /metr")   # half a request line, then silence
+        time.sleep(0.5)
+        t0 = time.monotonic()
+        parsed = d.metrics()
+        took = time.monotonic() - t0
+        for s in held:
+            s.close()
+    finally:
+        assert d.stop() == 0
+    assert value(parsed, "sigmad_series", stream="k") == 0.0
+    assert took < 1.0, f"a scrape took {took:.2f} s beside {SLOWLORIS} idle connections"
+
+
+def test_connections_are_bounded_and_dawdlers_cut_off():
+    import socket
+
+    from sigmad.daemon.web.server import HttpServer
+
+    server = HttpServer("127.0.0.1:0", lambda: b"m\n", bytes, bytes,
+                        max_connections=3, request_timeout=0.5)
+    server.start()
+    try:
+        held = _idle_connections(server.port, 3)
+        time.sleep(0.3)
+        extra = socket.create_connection(("127.0.0.1", server.port), timeout=2)
+        assert extra.recv(1) == b""          # over the bound: closed at once
+        extra.close()
+        assert server.refused == 1
+        t0 = time.monotonic()
+        for s in held:                       # each cut off after its 0.5 s deadline
+            assert s.recv(1) == b""
+        assert time.monotonic() - t0 < 2.0
+        for s in held:
+            s.close()
+        time.sleep(0.1)
+        with urllib.request.urlopen(f"http://127.0.0.1:{server.port}/metrics", timeout=2) as r:
+            assert r.read() == b"m\n"        # the slots are free again
+    finally:
+        server.stop()

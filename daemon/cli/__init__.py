@@ -1,2 +1,2 @@
-"""The command line: ``sigmad run``, ``send``, ``demo``, ``check-config``, ``inspect``,
+"""The command line: ``sigmad run``, ``send``, ``demo``, ``validate``, ``inspect``,
 ``keygen`` and ``bench``."""

@@ -8,7 +8,9 @@ arguments), 2 runtime failure.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import logging
+import os
 import signal
 import sys
 import threading
@@ -59,10 +61,19 @@ def serve(daemon, duration: float | None = None, tick=None) -> int:
     return EXIT_OK
 
 
-def _cmd_check_config(args: argparse.Namespace) -> int:
+def _cmd_validate(args: argparse.Namespace) -> int:
+    from sigmad.daemon.config.host import host_problems
     from sigmad.daemon.config.load import describe, load_config
 
-    print(describe(load_config(args.file)))
+    config = load_config(args.file)
+    problems = host_problems(config)
+    for problem in problems:
+        print(f"sigmad: {problem}", file=sys.stderr)
+    if problems:
+        print(f"sigmad: {len(problems)} problem(s) in {args.file} on this host; "
+              "nothing was started", file=sys.stderr)
+        return EXIT_USER
+    print(describe(config))
     return EXIT_OK
 
 
@@ -84,12 +95,21 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 
 
 def _cmd_keygen(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
     from sigmad.daemon.ingest.curve_keys import keygen
 
+    parent = Path(args.dir).absolute().parent
+    if not Path(args.dir).is_dir() and not parent.is_dir():
+        raise UserError(f"cannot write keys into {args.dir}: its parent directory {parent} "
+                        "does not exist; create it first")
     try:
         public, secret = keygen(args.dir, args.name)
     except FileExistsError as exc:
         raise UserError(str(exc)) from None
+    except OSError as exc:
+        raise UserError(f"cannot write keys into {args.dir} ({exc.strerror}); choose a "
+                        "directory this user can write") from None
     print(f"public key {public} (give it to peers), secret key {secret} (mode 0600, keep it)")
     return EXIT_OK
 
@@ -147,9 +167,10 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("--json", metavar="FILE", help="also write the rows as JSON to FILE")
     bench.set_defaults(func=_cmd_bench)
 
-    check = sub.add_parser("check-config", help="validate a configuration and print it")
+    check = sub.add_parser("validate", help="check a configuration (its text, and its files "
+                                            "and addresses on this host) and print it")
     check.add_argument("file")
-    check.set_defaults(func=_cmd_check_config)
+    check.set_defaults(func=_cmd_validate)
 
     inspect = sub.add_parser("inspect", help="print a checkpoint's series and estimates")
     inspect.add_argument("state_file", metavar="STATE_FILE")
@@ -172,6 +193,7 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help(sys.stderr)
         return EXIT_USER
     from sigmad.daemon.config.load import ConfigError
+    from sigmad.daemon.ingest.source import BindError
     from sigmad.daemon.storage.checkpoint import CheckpointError
 
     try:
@@ -181,11 +203,16 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"sigmad: {exc}", file=sys.stderr)
         return EXIT_USER
-    except CheckpointError as exc:   # a corrupt state with strict_restore: refuse to start
+    except (CheckpointError, BindError) as exc:   # e.g. a corrupt state with strict_restore
         if args.debug:
             raise
         print(f"sigmad: {exc}", file=sys.stderr)
         return EXIT_RUNTIME
+    except BrokenPipeError:   # the reader went away (`sigmad inspect ... | head`): not ours
+        with contextlib.suppress(OSError):
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())   # so the exit's flush cannot fail again
+        return EXIT_OK
     except KeyboardInterrupt:
         return EXIT_OK
     except Exception as exc:   # the edge: one sentence, a traceback only with --debug

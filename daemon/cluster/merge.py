@@ -294,7 +294,8 @@ class Merger:
         self.rebuilds += 1
         counts = Counter(key[0] for key in cache)
         own = local_health or Health()
-        rejected = Counter(dict(own.rejected)) + self.rejected
+        rejected = Counter(dict(own.rejected))
+        rejected.update(self.rejected)   # (not +, which drops the counts at 0)
         self.snapshot = Snapshot(
             taken_at=now, series={k: v for k, (_, _, v) in cache.items()},
             series_per_stream=tuple((name, counts[name]) for name in self.streams),

@@ -25,6 +25,7 @@ import socket as _socket
 import msgpack
 import zmq
 from sigmad.daemon.config.load import PublishConfig
+from sigmad.daemon.ingest.source import bind_socket
 
 log = logging.getLogger("sigmad.publish")
 
@@ -61,8 +62,8 @@ class Publisher:
         self.socket.setsockopt(zmq.LINGER, 0)
         try:
             for ep in cfg.bind:
-                self.socket.bind(ep)
-        except zmq.ZMQError:
+                bind_socket(self.socket, ep, "publish.bind")
+        except BaseException:
             self.socket.close(0)
             raise
 

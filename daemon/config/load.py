@@ -43,6 +43,7 @@ _UNITS = {"ms": 1e-3, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
 _DURATION = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(ms|s|m|h|d)\s*")
 _COUNT = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(obs|observations)\s*")
 _ENDPOINT = re.compile(r"(tcp|ipc|inproc)://(.+)")
+_DOTTED = re.compile(r"[0-9.]+")
 _MISSING = object()
 _SCHEMA = object()   # "the default the schema's dataclass declares"
 _SHOW = reprlib.Repr()
@@ -349,12 +350,32 @@ def parse_half_life(text: str, key: str) -> HalfLife:
     return HalfLife(parse_duration(text, key), "seconds")
 
 
-def split_host_port(text: str, key: str = "daemon.http") -> tuple[str, int]:
-    """``"host:port"`` or ``"[v6]:port"`` as (host, port); the one reading of an address."""
+def split_host_port(text: object, key: str = "daemon.http",
+                    bind_any: bool = False) -> tuple[str, int]:
+    """``"host:port"`` or ``"[v6]:port"`` to (host, port); the one parser of both forms.
+
+    An empty host is refused; ``bind_any`` lets a ZeroMQ bind write ``*`` for the
+    port (returned as -1). A dotted-number host must be an IPv4 address (each octet
+    0-255).
+
+    Raises
+    ------
+    ConfigError
+        Naming ``key`` and the text.
+
+    Examples
+    --------
+    >>> split_host_port("[::1]:9410", "k"), split_host_port("localhost:0", "k")
+    (('::1', 9410), ('localhost', 0))
+    """
     if not isinstance(text, str):
         raise ConfigError(key, text, 'must be a "host:port" string')
+    if "://" in text:
+        raise ConfigError(key, text, 'must be "host:port" without a scheme, e.g. '
+                          '"127.0.0.1:9410" (HTTPS is turned on by tls_cert and tls_key)')
     host, sep, port = text.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 0 <= int(port) <= 65535:
+    star = bind_any and port == "*"
+    if not sep or not host or not (star or port.isdigit() and 0 <= int(port) <= 65535):
         raise ConfigError(key, text, 'must be "host:port" with a port from 0 to 65535, '
                           'e.g. "127.0.0.1:9410"')
     if host.startswith("["):
@@ -369,22 +390,40 @@ def split_host_port(text: str, key: str = "daemon.http") -> tuple[str, int]:
         raise ConfigError(key, text, 'must write an IPv6 address in brackets, e.g. "[::1]:9410"')
     elif any(c.isspace() for c in host):
         raise ConfigError(key, text, "has white space in its host")
-    return host, int(port)
+    elif _DOTTED.fullmatch(host):
+        try:
+            ipaddress.IPv4Address(host)
+        except ValueError:
+            raise ConfigError(key, text, "is not an IPv4 address (four numbers from 0 to "
+                              "255, e.g. 127.0.0.1)") from None
+    return host, -1 if star else int(port)
 
 
-def _check_endpoint(text: object, key: str, binding: bool) -> str:
+def check_endpoint(text: object, key: str, binding: bool) -> str:
+    """A ZeroMQ endpoint's syntax: ``tcp://host:port``, ``ipc://path`` or ``inproc://name``.
+
+    Raises ConfigError naming ``key``; returns the text. Files and addresses are
+    checked against the host by :mod:`sigmad.daemon.config.host`.
+    """
     if not isinstance(text, str):
         raise ConfigError(key, text, "must be an endpoint string such as "
                           '"tcp://127.0.0.1:7410"')
     m = _ENDPOINT.fullmatch(text)
     if m is None:
-        raise ConfigError(key, text, "must start with tcp://, ipc:// or inproc://")
+        raise ConfigError(key, text, "must start with tcp://, ipc:// or inproc://, "
+                          'e.g. "tcp://127.0.0.1:7410"')
     scheme, rest = m.groups()
     if scheme == "tcp":
-        host, sep, port = rest.rpartition(":")
-        ok_port = port.isdigit() and 0 < int(port) <= 65535 or (binding and port == "*")
-        if not sep or not host or not ok_port:
-            raise ConfigError(key, text, 'must be "tcp://host:port" with a port from 1 to 65535')
+        if ";" in rest:   # ZeroMQ's source-address form
+            raise ConfigError(key, text, 'must be "tcp://host:port" (no source address)')
+        try:
+            host, port = split_host_port(rest, key, bind_any=binding)
+        except ConfigError as exc:
+            raise ConfigError(key, text, exc.message) from None
+        if port == 0 or (host == "*" and not binding):
+            raise ConfigError(key, text, 'must be "tcp://host:port" with a port from 1 to '
+                              "65535" + (' (or "*")' if binding else "")
+                              + ("" if binding else " and a host to connect to"))
     return text
 
 
@@ -550,7 +589,7 @@ def _endpoints(t: _Table, name: str, binding: bool) -> tuple[str, ...]:
     if name in t.data and not values:
         raise ConfigError(t.key(name), [], "must hold at least one endpoint")
     for v in values:
-        _check_endpoint(v, t.key(name), binding)
+        check_endpoint(v, t.key(name), binding)
     return values
 
 
@@ -979,7 +1018,7 @@ def _show_half_life(h: HalfLife | None) -> str:
 
 
 def describe(config: Config) -> str:
-    """A human summary of what the daemon would run (``sigmad check-config`` prints it).
+    """A human summary of what the daemon would run (``sigmad validate`` prints it).
 
     Examples
     --------

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import os
 import threading
 import weakref
 from collections import Counter
@@ -20,7 +21,7 @@ from collections.abc import Callable, Iterable
 import zmq
 import zmq.auth
 from prometheus_client.core import CounterMetricFamily
-from sigmad.daemon.config.load import SourceConfig
+from sigmad.daemon.config.load import ConfigError, SourceConfig
 from sigmad.daemon.ingest.curve_keys import load_server_keys
 from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message
@@ -75,12 +76,18 @@ class Guard:
     Raises
     ------
     ConfigError
-        When the key file cannot be read (naming it).
+        When the key file cannot be read or the allow directory does not exist
+        (naming the key ``{key}.curve_secret`` or ``{key}.curve_allow``).
     """
 
     def __init__(self, ctx: zmq.Context, socket: zmq.Socket, cfg: SourceConfig,
-                 domain: str) -> None:
-        public, secret = load_server_keys(cfg.curve_secret)
+                 domain: str, key: str = "source") -> None:
+        public, secret = load_server_keys(cfg.curve_secret, f"{key}.curve_secret")
+        if cfg.curve_allow and not os.path.isdir(cfg.curve_allow):
+            # zmq.auth would refuse every producer, saying so only in a log line
+            raise ConfigError(f"{key}.curve_allow", cfg.curve_allow,
+                              "is not an existing directory; create it and put the "
+                              "producers' public .key files in it")
         auth = _authenticator(ctx)
         location = cfg.curve_allow if cfg.curve_allow else zmq.auth.CURVE_ALLOW_ANY
         auth.configure_curve(domain=domain, location=location)

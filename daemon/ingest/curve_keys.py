@@ -36,17 +36,19 @@ def keygen(directory: str | os.PathLike, name: str = "sigmad") -> tuple[Path, Pa
     os.chmod(made_public, 0o644)   # public keys are meant to be handed out
     return Path(made_public), Path(made_secret)
 
-def load_server_keys(path: str) -> tuple[bytes, bytes]:
+def load_server_keys(path: str, key: str = "source.curve_secret") -> tuple[bytes, bytes]:
     """(public, secret) from a zmq.auth secret certificate file.
 
-    Raises ConfigError (key ``source.curve_secret``) naming the file.
+    Raises ConfigError (naming ``key`` and the file) when it cannot be read or
+    holds no secret key (a public ``.key`` file given by mistake).
     """
     try:
         public, secret = zmq.auth.load_certificate(path)
     except (OSError, ValueError) as exc:
-        raise ConfigError("source.curve_secret", path,
-                          f"cannot be read as a key pair ({exc})") from None
+        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise ConfigError(key, path, f"cannot be read as a key pair ({why}); "
+                          "write one with `sigmad keygen DIR`") from None
     if not secret:
-        raise ConfigError("source.curve_secret", path,
-                          "holds no secret key (give the .key_secret file)")
+        raise ConfigError(key, path, "holds no secret key; give the .key_secret file "
+                          "that `sigmad keygen` wrote beside it")
     return public, secret

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import errno
+
 import zmq
-from sigmad.daemon.config.load import SourceConfig
+from sigmad.daemon.config.load import ConfigError, SourceConfig
 
 # A socket is drained until empty, this many messages or this many body bytes, so
 # that one busy source cannot starve the others or grow a flush without bound.
@@ -16,12 +18,58 @@ def _looks_like_body(frame: bytes) -> bool:
     return bool(frame) and frame[0] & 0xF0 == 0x80
 
 
+class BindError(RuntimeError):
+    """A bind that failed for a reason other than the configuration (exit code 2)."""
+
+
+#: ZeroMQ bind errors that the configuration (or the host's set-up) causes, with
+#: what to say and what to do; anything else is a runtime failure.
+_BIND_ERRORS = {
+    errno.EADDRINUSE: "is already in use by another process; stop that process or "
+                      "choose another port",
+    errno.EADDRNOTAVAIL: "is not an address of this host; bind one it has, e.g. 127.0.0.1, "
+                         "or * for every interface",
+    errno.ENODEV: "names neither an address nor a network interface of this host; "
+                  "use an IP address it has, e.g. 127.0.0.1",
+    errno.ENOENT: "is in a directory that does not exist; create the directory or "
+                  "choose another path",
+    errno.EACCES: "cannot be bound by this user (ports below 1024 need privileges, an ipc "
+                  "path a writable directory)",
+    errno.EINVAL: 'is not an endpoint ZeroMQ accepts, e.g. "tcp://127.0.0.1:7410"',
+}
+
+
+def bind_socket(socket: zmq.Socket, endpoint: str, key: str) -> None:
+    """``socket.bind(endpoint)``, its failure told as one sentence naming ``key``.
+
+    Raises
+    ------
+    ConfigError
+        For a mistake the user can fix (address in use or not on this host, a
+        missing directory, no permission).
+    BindError
+        For any other failure.
+    """
+    try:
+        socket.bind(endpoint)
+    except zmq.ZMQError as exc:
+        told = _BIND_ERRORS.get(exc.errno)
+        if told is None:
+            raise BindError(f"{key} = {endpoint!r} could not be bound: "
+                            f"{zmq.strerror(exc.errno)}") from None
+        raise ConfigError(key, endpoint, told) from None
+
+
 class Source:
-    """One configured socket and the label its messages are counted under."""
+    """One configured socket and the label its messages are counted under.
+
+    ``key`` names the source in errors (``source[0]``); a failed bind raises
+    what :func:`bind_socket` raises, with the socket closed.
+    """
 
     drain_before_flush = False   # drained when the poller says so (see MqttSource)
 
-    def __init__(self, ctx: zmq.Context, cfg: SourceConfig) -> None:
+    def __init__(self, ctx: zmq.Context, cfg: SourceConfig, key: str = "source") -> None:
         kind = zmq.PULL if cfg.socket == "pull" else zmq.SUB
         self.cfg = cfg
         self.socket = ctx.socket(kind)
@@ -33,7 +81,7 @@ class Source:
             from sigmad.daemon.ingest.curve_auth import Guard
 
             try:
-                self.guard = Guard(ctx, self.socket, cfg, domain=self.label)
+                self.guard = Guard(ctx, self.socket, cfg, domain=self.label, key=key)
             except BaseException:
                 self.socket.close(0)
                 raise
@@ -42,10 +90,10 @@ class Source:
                 self.socket.setsockopt(zmq.SUBSCRIBE, prefix.encode())
         try:
             for ep in cfg.bind:
-                self.socket.bind(ep)
+                bind_socket(self.socket, ep, f"{key}.bind")
             for ep in cfg.connect:
                 self.socket.connect(ep)
-        except zmq.ZMQError:
+        except BaseException:
             self.close()
             raise
 
