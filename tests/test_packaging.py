@@ -58,6 +58,6 @@ def test_wheel_runs_beside_python_daemon_installed_after_it(wheel: Path, tmp_pat
     version = subprocess.run([str(sigmad), "--version"], capture_output=True, text=True,
                              timeout=60, cwd=tmp_path)
     assert version.returncode == 0 and "0.1.0" in version.stdout + version.stderr, version.stderr
-    check = subprocess.run([str(sigmad), "check-config", str(ROOT / "configs" / "latency.toml")],
+    check = subprocess.run([str(sigmad), "validate", str(ROOT / "configs" / "latency.toml")],
                            capture_output=True, text=True, timeout=60, cwd=tmp_path)
     assert check.returncode == 0, check.stderr
