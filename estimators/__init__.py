@@ -18,7 +18,9 @@ from .forgetting import HalfLife
 from .mixture import Mixture
 from .moments import CORRECTIONS, Moments
 from .regression import Regression
+from .returns import TRANSFORMS, Returns, Stepped
 from .validation import check_batch, clean_batch
+from .volatility import Volatility
 
 __all__ = [
     "CORRECTIONS",
@@ -30,8 +32,12 @@ __all__ = [
     "Moments",
     "NonFiniteError",
     "Regression",
+    "Returns",
     "ShapeError",
+    "Stepped",
+    "TRANSFORMS",
     "TimeError",
+    "Volatility",
     "WeightError",
     "check_batch",
     "clean_batch",
