@@ -65,9 +65,9 @@ class Volatility:
     Examples
     --------
     >>> v = Volatility(1)
-    >>> v.update([[0.1], [-0.2]], spans=[1.0, 4.0])
-    >>> v.rate.tolist(), v.volatility(unit=4.0).tolist()   # mean of 0.01 and 0.01
-    ([0.01], [0.2])
+    >>> v.update([[0.5], [-1.0]], spans=[1.0, 4.0])
+    >>> v.rate.tolist(), v.volatility(unit=4.0).tolist()   # mean of 0.25 and 0.25
+    ([0.25], [1.0])
     """
 
     __slots__ = ("dim", "half_life", "clock", "count", "W", "rate")
