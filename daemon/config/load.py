@@ -31,7 +31,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from sigmad.daemon.ingest.topics import LABEL_NAME, TopicError, TopicTemplate
-from sigmad.estimators import CORRECTIONS, HalfLife
+from sigmad.estimators import CORRECTIONS, TRANSFORMS, HalfLife
 
 #: Labels our metrics set themselves, so a topic template may not capture them
 #: (plus every name starting with ``__``, which Prometheus reserves).
@@ -174,10 +174,18 @@ class StreamConfig:
     regression: RegressionConfig | None = None
     max_series: int = 1000
     idle_expiry: float | None = _duration(None)
+    transform: tuple[tuple[str, str], ...] | None = None   # (field, "log_return" | ...)
+    volatility_unit: float | None = _duration(None)
 
     @property
     def dim(self) -> int:
         return len(self.fields)
+
+    @property
+    def transforms(self) -> tuple[str | None, ...]:
+        """Each field's transform, in field order (None: the field passes through)."""
+        kinds = dict(self.transform or ())
+        return tuple(kinds.get(f) for f in self.fields)
 
 
 @dataclass(frozen=True, slots=True)
@@ -610,6 +618,10 @@ def _stream(data: object, path: str) -> StreamConfig:
     mixture = t.raw("mixture")
     regression = t.raw("regression")
     idle = t.raw("idle_expiry")
+    transform, unit = _transform(t, name, fields)
+    if transform and isinstance(mixture, dict) and mixture.get("log") is True:
+        raise ConfigError(t.key("mixture.log"), True, f"cannot fit the log of returns "
+                          f"(stream {name!r} transforms {dict(transform)}; returns change sign)")
     return StreamConfig(
         name=name, topic=topic, fields=fields, half_life=half_life,
         correction=t.string("correction", choices=CORRECTIONS),
@@ -620,7 +632,32 @@ def _stream(data: object, path: str) -> StreamConfig:
         _regression(regression, t.key("regression"), fields),
         max_series=t.integer("max_series", minimum=1),
         idle_expiry=None if idle is None else parse_duration(idle, t.key("idle_expiry")),
+        transform=transform, volatility_unit=unit,
     )
+
+
+def _transform(t: _Table, name: str, fields: tuple[str, ...]
+               ) -> tuple[tuple[tuple[str, str], ...] | None, float | None]:
+    """``transform = { field = "log_return" | "difference" }`` and ``volatility_unit``."""
+    table = t.raw("transform")
+    unit = t.duration("volatility_unit")
+    if table is None:
+        if unit is not None:
+            raise ConfigError(t.key("volatility_unit"), t.data["volatility_unit"],
+                              f"needs a transform: stream {name!r} has no return field")
+        return None, None
+    if not isinstance(table, dict) or not table:
+        raise ConfigError(t.key("transform"), table, 'must be a table such as '
+                          '{ mid = "log_return" } naming at least one field')
+    for f, kind in table.items():
+        if f not in fields:
+            raise ConfigError(t.key(f"transform.{f}"), kind, f"names no field of stream "
+                              f"{name!r} (its fields are {list(fields)})")
+        if kind not in TRANSFORMS:
+            quoted = " | ".join(f'"{k}"' for k in TRANSFORMS)
+            raise ConfigError(t.key(f"transform.{f}"), kind,
+                              f"is not a transform of stream {name!r}: use {quoted}")
+    return tuple((f, table[f]) for f in fields if f in table), unit
 
 
 def _array_of_tables(data: dict, name: str) -> list:
@@ -826,6 +863,10 @@ def describe(config: Config) -> str:
         if st.outlier_sigmas:
             lines.append(f"    outliers    beyond {', '.join(f'{s:g}' for s in st.outlier_sigmas)}"
                          f" sigma, after {st.outlier_warmup} observations")
+        if st.transform:
+            lines.append("    transform   " + ", ".join(f"{f} -> {k}" for f, k in st.transform)
+                         + (f"; volatility per {_show_duration(st.volatility_unit)}"
+                            if st.volatility_unit else ""))
         expiry = _show_duration(st.idle_expiry) if st.idle_expiry else "never"
         lines.append(f"    series      at most {st.max_series}; idle expiry {expiry}")
     if config.publish:

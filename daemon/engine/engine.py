@@ -20,7 +20,7 @@ from sigmad.daemon.config.load import Config, StreamConfig
 from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
-from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
+from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression, Returns, Volatility
 from sigmad.estimators.validation import screen_batch
 
 log = logging.getLogger("sigmad.engine")
@@ -96,6 +96,8 @@ class Series:
     #                                               or tuples of d, all from one arrival
     extras: list | tuple = ()                     # (row index, weight|None, time|None)
     # () until needed: an idle series should cost as little memory as it can
+    returns: Returns | None = None                # the stream's transform: previous row
+    volatility: Volatility | None = None          # of the return fields
 
     def queue(self, chunk: tuple) -> None:
         if self.pending:
@@ -134,7 +136,12 @@ class StreamState:
         self.kinds = _kinds(cfg)
         self.field_list = list(cfg.fields)
         self.quantile_at = tuple((i, q) for q in cfg.quantiles for i in range(len(cfg.fields)))
-        self.time_based = cfg.half_life is not None and not cfg.half_life.by_count
+        # a transform orders rows by event time: every row needs one
+        self.time_based = cfg.half_life is not None and not cfg.half_life.by_count \
+            or cfg.transform is not None
+        self.return_cols = [i for i, k in enumerate(cfg.transforms) if k]
+        self.volatility_fields = tuple(self.fields[i] for i in self.return_cols) \
+            if cfg.volatility_unit is not None else ()
         reg = cfg.regression
         self.reg_x = None if reg is None else [self.fields.index(f) for f in reg.x]
         self.reg_y = None if reg is None else self.fields.index(reg.y)
@@ -153,8 +160,13 @@ class StreamState:
             mix = Mixture(m.components, dim=self.dim, covariance=m.covariance, log=m.log,
                           half_life=cfg.half_life, warmup=m.warmup, seed=m.seed)
         key = (self.name, tuple(zip(cfg.topic.labels, labels, strict=True)))
-        return Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
-                      [0] * len(cfg.outlier_sigmas), key=key)
+        s = Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
+                   [0] * len(cfg.outlier_sigmas), key=key)
+        if cfg.transform is not None:
+            s.returns = Returns(cfg.transforms)
+            if self.volatility_fields:
+                s.volatility = Volatility(len(self.return_cols), cfg.half_life)
+        return s
 
 
 def _kinds(cfg: StreamConfig) -> list[str]:
@@ -176,7 +188,37 @@ def series_state(s: Series) -> dict:
         "moments": s.moments.to_dict(),
         "regression": None if s.regression is None else s.regression.to_dict(),
         "mixture": None if s.mixture is None else s.mixture.to_dict(),
+        **transform_state(s),
     }
+
+
+def transform_state(s: Series) -> dict:
+    """The transform and volatility states of a series (absent keys: none configured)."""
+    out = {}
+    if s.returns is not None:
+        out["returns"] = s.returns.to_dict()
+    if s.volatility is not None:
+        out["volatility"] = s.volatility.to_dict()
+    return out
+
+
+def restore_transform(s: Series, d: dict) -> None:
+    """Put back a series' transform and volatility states saved by ``transform_state``;
+    a checkpoint from before transforms (or before this stream had one) leaves the fresh
+    states. Raises IncompatibleError when a saved state does not fit the stream."""
+    st = s.stream
+    if s.returns is not None and d.get("returns") is not None:
+        r = Returns.from_dict(d["returns"])
+        if r.kinds != s.returns.kinds:
+            raise IncompatibleError("returns", list(r.kinds),
+                                    f"the stream now transforms {list(s.returns.kinds)}")
+        s.returns = r
+    if s.volatility is not None and d.get("volatility") is not None:
+        v = Volatility.from_dict(d["volatility"])
+        if (v.dim, v.half_life) != (len(st.return_cols), st.cfg.half_life):
+            raise IncompatibleError("volatility", v.dim, "fields or half-life differ from "
+                                    "the stream's")
+        s.volatility = v
 
 
 def restore_series(st: StreamState, d: dict) -> Series:
@@ -206,6 +248,7 @@ def restore_series(st: StreamState, d: dict) -> Series:
         if s.mixture is not None:
             s.mixture = Mixture.from_dict(d["mixture"])
         check_estimators(st, s.regression, s.mixture)
+        restore_transform(s, d)
         outliers = [int(c) for c in d["outliers"]]
         if len(outliers) != len(d["thresholds"]):
             raise IncompatibleError("outliers", outliers,
@@ -287,12 +330,16 @@ def view_of(s: Series) -> SeriesView:
             residual_stddev=float(rg.residual_stddev(corr)),
             residual_dof=float(rg.residual_dof(corr)),
             r_squared=float(rg.r_squared), y=cfg.regression.y)
+    volatility = () if s.volatility is None else tuple(zip(
+        st.volatility_fields, _floats(s.volatility.volatility(cfg.volatility_unit)),
+        strict=True))
     # positional, in SeriesView's field order: 22 keywords cost 2 us a view
     return SeriesView(
         st.name, s.key[1], st.fields, s.version, s.observations, s.last_update, m.clock,
         cfg.half_life, m.weight_sum, m.weight_sq_sum, m.effective_samples, _floats(m.mean),
         _floats(m.variance(corr)), covariance, correlation, st.quantile_at, quantiles,
-        cfg.outlier_sigmas, tuple(s.outliers), mixture, regression, _floats(m.scatter))
+        cfg.outlier_sigmas, tuple(s.outliers), mixture, regression, _floats(m.scatter),
+        volatility)
 
 
 class Engine:
@@ -781,8 +828,10 @@ class Engine:
                 views = views if changed else dict(views)
                 changed = True
                 views[series.key] = view_of(series)
-            elif series.observations == 0 and not series.pending:
+            elif series.observations == 0 and not series.pending and (
+                    series.returns is None or series.returns.clock is None):
                 # every row of a new series was dropped: the rejected input leaves no trace
+                # (a series whose first price is kept for its first return stays)
                 st = series.stream
                 if st.series.get(series.labels) is series:
                     del st.series[series.labels]
@@ -800,6 +849,8 @@ class Engine:
         for reason, count in dropped.items():
             self.reject(reason, count, topic=_where(series), now=now)
         x, w, t = batch
+        if series.returns is not None and x.shape[0]:
+            x, w, t = self._transform(series, x, w, t, now)
         if st.log_mixture and x.shape[0] and not (x > 0.0).all():
             positive = (x > 0.0).all(axis=1)
             self.reject("not_positive", int((~positive).sum()), topic=_where(series), now=now)
@@ -824,6 +875,18 @@ class Engine:
         series.version += 1
         series.last_update = now
         return True
+
+    def _transform(self, series: Series, x: np.ndarray, w, t, now: float) -> tuple:
+        """Rows turned into returns (``Returns.apply``), late and non-positive ones counted;
+        the volatility takes the return fields. O(n log n)."""
+        step = series.returns.apply(x, t, w)
+        for reason, count in (("late", step.late), ("not_positive", step.not_positive)):
+            if count:
+                self.reject(reason, count, topic=_where(series), now=now)
+        if series.volatility is not None and step.values.shape[0]:
+            series.volatility._fold(step.values[:, series.stream.return_cols], step.spans,
+                                    step.weights, step.times)
+        return step.values, step.weights, step.times
 
     def _distance(self, series: Series, x: np.ndarray) -> np.ndarray:
         """Outlier distance under the state before the update (NaN never exceeds)."""

@@ -66,6 +66,7 @@ class SeriesView:
     mixture: MixtureView | None = None
     regression: RegressionView | None = None
     scatter: tuple[float, ...] = ()           # centred Σw(x-μ)² per field, as of ``clock``
+    volatility: tuple[tuple[str, float], ...] = ()   # (return field, per volatility_unit)
 
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:

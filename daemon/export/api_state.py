@@ -14,6 +14,7 @@ Schema (version 1)::
                  "correlation": [[field, field_b, value], ..],
                  "quantiles": [[field, q, value], ..],
                  "outliers": [[threshold, count], ..],
+                 "volatility": {return field: per volatility_unit},
                  "mixture": null | {"warm": bool, "log": bool, "weights": [..],
                                     "means": [[..]], "stddevs": [[..]],
                                     "average_loglik": x, "reseeds": n,
@@ -60,6 +61,7 @@ def series_json(v: SeriesView, now: float, history: History | None = None) -> di
         "correlation": [[f[i], f[j], _num(r)] for i, j, r in v.correlation],
         "quantiles": [[f[i], q, _num(x)] for i, q, x in v.quantiles],
         "outliers": [[thr, n] for thr, n in v.outliers],
+        "volatility": {name: _num(x) for name, x in v.volatility},
         "mixture": None, "regression": None,
         "history": ([[t, _nums(m)] for t, m in history.of(v.key)] if history is not None
                     else []),

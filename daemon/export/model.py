@@ -44,6 +44,8 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_regression_stderr": ("gauge", "Standard error of a least-squares coefficient."),
     "sigmad_regression_residual_stddev": ("gauge", "Noise standard deviation of the fitted line."),
     "sigmad_regression_r_squared": ("gauge", "Coefficient of determination of the fitted line."),
+    "sigmad_volatility": ("gauge", "Volatility of a return field per the stream's "
+                                   "volatility_unit: sqrt of the decayed mean of r^2/dt."),
     "sigmad_observations": ("counter", "Accepted observations."),
     "sigmad_outliers": ("counter",
                         "Observations beyond a distance threshold, scored before the update."),
@@ -86,6 +88,8 @@ def static_samples(v: SeriesView) -> Iterator[Sample]:
         yield "sigmad_covariance", dict(base, field=v.fields[i], field_b=v.fields[j]), c
     for i, j, r in v.correlation:
         yield "sigmad_correlation", dict(base, field=v.fields[i], field_b=v.fields[j]), r
+    for f, vol in v.volatility:
+        yield "sigmad_volatility", dict(base, field=f), vol
     for i, q, value in v.quantiles:
         yield "sigmad_quantile", dict(per_field[i], q=_fmt_q(q)), value
     for thr, count in v.outliers:

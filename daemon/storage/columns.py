@@ -15,7 +15,14 @@ from operator import attrgetter, itemgetter
 from typing import NamedTuple
 
 import numpy as np
-from sigmad.daemon.engine.engine import Series, StreamState, check_estimators, view_of
+from sigmad.daemon.engine.engine import (
+    Series,
+    StreamState,
+    check_estimators,
+    restore_transform,
+    transform_state,
+    view_of,
+)
 from sigmad.daemon.engine.snapshot import SeriesView
 from sigmad.estimators import IncompatibleError, Mixture, Regression
 from sigmad.estimators.moments_columns import MomentsColumns, blob, from_blob
@@ -39,6 +46,7 @@ class StreamColumns(NamedTuple):
     moments: MomentsColumns
     regression: list | None               # Regression.to_dict per series, when configured
     mixture: list | None                  # Mixture.to_dict per series, when configured
+    transforms: list | None = None        # engine.transform_state per series, when configured
 
     @property
     def n(self) -> int:
@@ -70,7 +78,8 @@ def collect(st: StreamState) -> StreamColumns:
                     n * width).reshape(n, width),   # copied: the counts change in place
         MomentsColumns.of(_get("moments", series), st.dim, cfg.half_life),
         None if cfg.regression is None else [s.regression.to_dict() for s in series],
-        None if cfg.mixture is None else [s.mixture.to_dict() for s in series])
+        None if cfg.mixture is None else [s.mixture.to_dict() for s in series],
+        None if cfg.transform is None else [transform_state(s) for s in series])
 
 
 def pack(c: StreamColumns) -> dict:
@@ -84,6 +93,7 @@ def pack(c: StreamColumns) -> dict:
         "last_update": blob(c.last_update, _LE_F8), "outliers": blob(c.outliers, _LE_I8),
         "moments": c.moments.to_dict(),
         "regression": c.regression, "mixture": c.mixture,
+        **({} if c.transforms is None else {"transforms": c.transforms}),
     }
 
 
@@ -126,9 +136,11 @@ def unpack(d: object) -> StreamColumns:
         raise IncompatibleError("labels", f"{name}", f"must be {width} lists of {n} strings")
     labels = list(zip(*cols, strict=True)) if width else [()] * n
     per_series = []
-    for key in ("regression", "mixture"):
+    for key in ("regression", "mixture", "transforms"):
         v = d.get(key)
-        if v is not None and not (isinstance(v, list) and len(v) == n):
+        if v is not None and not (isinstance(v, list) and len(v) == n
+                                  and (key != "transforms" or all(isinstance(e, dict)
+                                                                   for e in v))):
             raise IncompatibleError(key, type(v).__name__, f"must be absent or a list of {n}")
         per_series.append(v)
     return StreamColumns(
@@ -179,20 +191,27 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     outliers = c.outliers.tolist() if keep_outliers else None
     regs = c.regression or [None] * c.n
     mixes = c.mixture or [None] * c.n
+    # a checkpoint from before the stream had a transform: fresh transform states
+    extra = c.transforms or [{}] * c.n
     out, dropped = [], []
     rows = zip(c.labels, c.moments.states(), c.observations.tolist(), c.version.tolist(),
-               c.last_update.tolist(), regs, mixes, strict=True)
-    for i, (labels, m, obs, version, last, reg, mix) in enumerate(rows):
+               c.last_update.tolist(), regs, mixes, extra, strict=True)
+    for i, (labels, m, obs, version, last, reg, mix, ext) in enumerate(rows):
         try:
             reg = None if reg is None else Regression.from_dict(reg)
             mix = None if mix is None else Mixture.from_dict(mix)
             check_estimators(st, reg, mix)
+            s = Series(st, labels, m, reg, mix,   # positional: keywords cost here
+                       outliers[i] if keep_outliers else [0] * width, obs, version, last,
+                       (name, tuple(zip(label_names, labels, strict=True))))
+            if cfg.transform is not None:
+                fresh = st.new_series(labels)
+                s.returns, s.volatility = fresh.returns, fresh.volatility
+                restore_transform(s, ext)
         except IncompatibleError as exc:
             dropped.append((c.where(i), str(exc)))
             continue
-        out.append(Series(st, labels, m, reg, mix,   # positional: keywords cost here
-                          outliers[i] if keep_outliers else [0] * width, obs, version, last,
-                          (name, tuple(zip(label_names, labels, strict=True)))))
+        out.append(s)
     return out, dropped
 
 
@@ -204,7 +223,8 @@ def views(st: StreamState, series: list[Series],
     given, holds the series' moments row for row (a restore has them stacked
     already). O(n (d**2 + quantiles))."""
     cfg = st.cfg
-    if cfg.regression is not None or cfg.mixture is not None or not series:
+    if cfg.regression is not None or cfg.mixture is not None or cfg.transform is not None \
+            or not series:
         return [view_of(s) for s in series]
     n, d, corr = len(series), st.dim, cfg.correction
     m = moments if moments is not None and moments.n == n else \
@@ -245,5 +265,6 @@ def states(c: StreamColumns) -> list[dict]:
             "outliers": c.outliers[i].tolist(), "thresholds": c.thresholds,
             "moments": moments[i].to_dict(),
             "regression": None if c.regression is None else c.regression[i],
-            "mixture": None if c.mixture is None else c.mixture[i]})
+            "mixture": None if c.mixture is None else c.mixture[i],
+            **({} if c.transforms is None else c.transforms[i])})
     return out

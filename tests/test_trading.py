@@ -1,0 +1,155 @@
+"""The trading-desk features in the daemon: transforms, volatility, the live spread,
+legs from several topics, sessions.
+
+References are named beside each check: numpy for returns, pandas for the
+weighted means and the as-of join, statsmodels OLS for the spread.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from sigmad.daemon.config.load import ConfigError, parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.export.api_state import snapshot_json
+from sigmad.daemon.export.metrics_text import SeriesRenderer
+from sigmad.daemon.ingest.wire import encode
+from sigmad.daemon.storage import checkpoint as cpmod
+
+SOURCE = """
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:7999"
+"""
+
+RETURNS = SOURCE + """
+[[stream]]
+name = "px"
+topic = "px.{sym}"
+fields = ["mid", "size"]
+transform = { mid = "log_return" }
+volatility_unit = "1d"
+"""
+
+
+def _engine(text: str) -> Engine:
+    return Engine(parse_config(text))
+
+
+def _view(e: Engine, sym: str):
+    return e.snapshot.series[("px", (("sym", sym),))]
+
+
+# ------------------------------------------------------------------ configuration
+
+@pytest.mark.parametrize("extra, words", [
+    ('transform = { mid = "sqrt" }', ["stream[0].transform.mid", "'sqrt'", "'px'"]),
+    ('transform = { bid = "difference" }', ["stream[0].transform.bid", "names no field"]),
+    ('volatility_unit = "1d"', ["stream[0].volatility_unit", "needs a transform"]),
+    ('transform = { mid = "log_return" }\nvolatility_unit = "soon"', ["volatility_unit"]),
+    ('transform = {}', ["stream[0].transform", "at least one field"]),
+    ('transform = { mid = "log_return" }\nmixture = { components = 2, log = true }',
+     ["mixture.log", "returns"]),
+])
+def test_bad_transform_keys_name_stream_field_and_value(extra, words):
+    text = SOURCE + f'[[stream]]\nname = "px"\ntopic = "px"\nfields = ["mid"]\n{extra}\n'
+    with pytest.raises(ConfigError) as err:
+        parse_config(text)
+    for w in words:
+        assert w in str(err.value)
+
+
+# ------------------------------------------------------------------ transforms
+
+def test_engine_log_returns_per_series_equal_numpy_whatever_the_arrival_order():
+    e = _engine(RETURNS)
+    rng = np.random.default_rng(4)
+    n = 400
+    t0 = 1.7e9
+    sym = rng.choice(["aaa", "bbb"], n)
+    t = t0 + np.cumsum(rng.exponential(0.3, n))
+    mid = 100.0 * np.exp(np.cumsum(rng.normal(0, 0.001, n)))
+    order = np.arange(n)
+    for part in np.array_split(order, 10):       # ten flushes, each shuffled
+        for i in rng.permutation(part):
+            e.ingest(f"px.{sym[i]}".encode(), encode({"mid": float(mid[i]), "size": 1.0},
+                                                     time=float(t[i])), now=t0)
+        e.flush(t0)
+    for s in ("aaa", "bbb"):
+        r = np.diff(np.log(mid[sym == s]))       # numpy
+        v = _view(e, s)
+        assert v.observations == r.size
+        assert v.mean[0] == pytest.approx(float(r.mean()), rel=1e-9, abs=1e-15)
+        assert v.variance[0] == pytest.approx(float(r.var(ddof=1)), rel=1e-9)
+        assert v.mean[1] == 1.0                   # size passes through
+    assert e.rejected.get("late", 0) == 0
+
+
+def test_late_and_non_positive_rows_are_rejected_by_reason():
+    e = _engine(RETURNS)
+    e.ingest(b"px.aaa", encode({"mid": [100.0, 101.0], "size": [1.0, 1.0]},
+                               time=[10.0, 20.0]), now=15.0)
+    e.flush(15.0)
+    e.ingest(b"px.aaa", encode({"mid": [99.0, 0.0, 102.0], "size": [1.0, 1.0, 1.0]},
+                               time=[5.0, 21.0, 22.0]), now=25.0)
+    e.flush(25.0)
+    assert e.rejected["late"] == 1
+    assert e.rejected["not_positive"] == 1
+    v = _view(e, "aaa")
+    assert v.observations == 2
+    np.testing.assert_allclose(v.mean[0], np.mean(np.diff(np.log([100.0, 101.0, 102.0]))))
+
+
+def test_a_series_first_price_is_kept_for_its_first_return():
+    e = _engine(RETURNS)
+    e.ingest(b"px.aaa", encode({"mid": 100.0, "size": 1.0}, time=10.0), now=10.0)
+    e.flush(10.0)
+    assert e.snapshot.series == {}              # no return yet
+    e.ingest(b"px.aaa", encode({"mid": 110.0, "size": 1.0}, time=11.0), now=11.0)
+    e.flush(11.0)
+    assert _view(e, "aaa").mean[0] == pytest.approx(math.log(1.1), rel=1e-14)
+
+
+def test_volatility_is_exported_per_unit_and_in_api_state():
+    e = _engine(RETURNS)
+    mids = [100.0, 101.0, 99.0, 100.5]
+    times = [0.0, 60.0, 120.0, 240.0]
+    e.ingest(b"px.aaa", encode({"mid": mids, "size": [1.0] * 4}, time=times), now=200.0)
+    e.flush(200.0)
+    r, dt = np.diff(np.log(mids)), np.diff(times)
+    want = math.sqrt(float(np.mean(r * r / dt)) * 86400.0)   # numpy, the definition
+    text = SeriesRenderer().render(e.snapshot, 200.0).decode()
+    line = [ln for ln in text.splitlines() if ln.startswith("sigmad_volatility{")]
+    assert line == [f'sigmad_volatility{{field="mid",stream="px",sym="aaa"}} '
+                    f'{float(line[0].split()[-1])!r}']
+    assert float(line[0].split()[-1]) == pytest.approx(want, rel=1e-12)
+    doc = snapshot_json(e.snapshot, 200.0)
+    assert doc["series"][0]["volatility"]["mid"] == pytest.approx(want, rel=1e-12)
+
+
+def test_transform_state_survives_a_checkpoint_and_old_checkpoints_still_load():
+    e = _engine(RETURNS)
+    e.ingest(b"px.aaa", encode({"mid": [100.0, 101.0, 100.5], "size": [1.0, 2.0, 4.0]},
+                               time=[1.0, 2.0, 2.5]), now=2.0)
+    e.flush(2.0)
+    blob = cpmod.encode_checkpoint(cpmod.collect_columns(e), cpmod.stream_definitions(e),
+                                   2.0, {})
+    fresh = _engine(RETURNS)
+    cpmod.restore_checkpoint(fresh, cpmod.decode_checkpoint(blob), now=3.0)
+    for eng in (e, fresh):
+        eng.ingest(b"px.aaa", encode({"mid": 103.0, "size": 1.0}, time=3.0), now=3.0)
+        eng.flush(3.0)
+    assert _view(fresh, "aaa") == _view(e, "aaa")
+    assert _view(fresh, "aaa").observations == 3   # 100.5 -> 103 used the restored price
+    # a checkpoint written before the stream had a transform restores with fresh state
+    plain = RETURNS.replace('transform = { mid = "log_return" }\nvolatility_unit = "1d"\n', "")
+    old = _engine(plain)
+    old.ingest(b"px.aaa", encode({"mid": 5.0, "size": 1.0}, time=1.0), now=1.0)
+    old.flush(1.0)
+    blob = cpmod.encode_checkpoint(cpmod.collect_columns(old), cpmod.stream_definitions(old),
+                                   1.0, {})
+    again = _engine(RETURNS)
+    count, dropped = cpmod.restore_checkpoint(again, cpmod.decode_checkpoint(blob), now=2.0)
+    assert dropped == [] and count == 1
