@@ -11,6 +11,7 @@ import math
 
 import numpy as np
 import pytest
+from conftest import need_module
 from sigmad.daemon.config.load import ConfigError, parse_config
 from sigmad.daemon.engine.engine import Engine
 from sigmad.daemon.export.api_state import snapshot_json
@@ -153,3 +154,71 @@ def test_transform_state_survives_a_checkpoint_and_old_checkpoints_still_load():
     again = _engine(RETURNS)
     count, dropped = cpmod.restore_checkpoint(again, cpmod.decode_checkpoint(blob), now=2.0)
     assert dropped == [] and count == 1
+
+
+# ------------------------------------------------------------------ the spread
+
+PAIR = SOURCE + """
+[[stream]]
+name = "pair"
+topic = "pair"
+fields = ["alpha", "beta"]
+regression = { y = "beta", x = ["alpha"] }
+"""
+
+
+def _statsmodels_spread(a: np.ndarray, b: np.ndarray) -> tuple[float, float]:
+    """OLS of b on a over every row but the last; the last row's residual and
+    residual / prediction standard error (statsmodels, se_obs)."""
+    sm = need_module("statsmodels.api")
+    fit = sm.OLS(b[:-1], sm.add_constant(a[:-1])).fit()
+    pred = fit.get_prediction(np.array([[1.0, a[-1]]]))
+    residual = float(b[-1] - pred.predicted_mean[0])
+    return residual, residual / float(pred.se_obs[0])
+
+
+@pytest.mark.parametrize("batches", [[60], [59, 1], [20, 20, 20]])
+def test_spread_and_its_z_equal_statsmodels_ols_on_the_same_window(batches):
+    rng = np.random.default_rng(8)
+    n = sum(batches)
+    a = rng.normal(50.0, 2.0, n)
+    b = 1.5 * a + 3.0 + rng.normal(0.0, 0.4, n)
+    b[-1] += 2.0                                   # a wide last spread
+    e = _engine(PAIR)
+    start = 0
+    for size in batches:
+        e.ingest(b"pair", encode({"alpha": a[start:start + size],
+                                  "beta": b[start:start + size]}), now=1.0)
+        e.flush(1.0)
+        start += size
+    residual, z = _statsmodels_spread(a, b)
+    rg = e.snapshot.series[("pair", ())].regression
+    assert rg.residual == pytest.approx(residual, rel=1e-9)
+    assert rg.residual_z == pytest.approx(z, rel=1e-9)
+    assert rg.latest == (a[-1], b[-1])
+    text = SeriesRenderer().render(e.snapshot, 1.0).decode()
+    assert f'sigmad_regression_residual_z{{stream="pair"}} {rg.residual_z!r}' in text
+    assert "sigmad_regression_residual{" in text
+    # the whole window is still one least-squares fit (the split changes nothing)
+    sm = need_module("statsmodels.api")
+    whole = sm.OLS(b, sm.add_constant(a)).fit()
+    assert rg.coefficients[0] == pytest.approx(float(whole.params[1]), rel=1e-9)
+
+
+def test_spread_is_left_out_until_the_fit_is_defined():
+    e = _engine(PAIR)
+    e.ingest(b"pair", encode({"alpha": [1.0, 2.0], "beta": [2.0, 4.5]}), now=1.0)
+    e.flush(1.0)
+    text = SeriesRenderer().render(e.snapshot, 1.0).decode()
+    assert "sigmad_regression_residual{" not in text
+
+
+def test_the_regression_plot_marks_the_latest_point():
+    from sigmad.daemon.web.plots import pair_figure
+    e = _engine(PAIR)
+    rng = np.random.default_rng(2)
+    a = rng.normal(10.0, 1.0, 50)
+    e.ingest(b"pair", encode({"alpha": a, "beta": 2.0 * a + rng.normal(0, 0.1, 50)}), now=1.0)
+    e.flush(1.0)
+    svg = pair_figure(e.snapshot.series[("pair", ())])
+    assert 'class="latest"' in svg and "z = " in svg

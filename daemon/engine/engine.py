@@ -98,6 +98,7 @@ class Series:
     # () until needed: an idle series should cost as little memory as it can
     returns: Returns | None = None                # the stream's transform: previous row
     volatility: Volatility | None = None          # of the return fields
+    spread: tuple = ()                            # the last row's (x0, y, residual, z)
 
     def queue(self, chunk: tuple) -> None:
         if self.pending:
@@ -188,13 +189,15 @@ def series_state(s: Series) -> dict:
         "moments": s.moments.to_dict(),
         "regression": None if s.regression is None else s.regression.to_dict(),
         "mixture": None if s.mixture is None else s.mixture.to_dict(),
-        **transform_state(s),
+        **extra_state(s),
     }
 
 
-def transform_state(s: Series) -> dict:
-    """The transform and volatility states of a series (absent keys: none configured)."""
+def extra_state(s: Series) -> dict:
+    """A series' transform, volatility and last spread (absent keys: none configured)."""
     out = {}
+    if s.spread:
+        out["spread"] = list(s.spread)
     if s.returns is not None:
         out["returns"] = s.returns.to_dict()
     if s.volatility is not None:
@@ -202,11 +205,17 @@ def transform_state(s: Series) -> dict:
     return out
 
 
-def restore_transform(s: Series, d: dict) -> None:
-    """Put back a series' transform and volatility states saved by ``transform_state``;
-    a checkpoint from before transforms (or before this stream had one) leaves the fresh
-    states. Raises IncompatibleError when a saved state does not fit the stream."""
+def restore_extra(s: Series, d: dict) -> None:
+    """Put back what ``extra_state`` saved; a checkpoint from before transforms (or
+    before this stream had one) leaves the fresh states. Raises IncompatibleError when
+    a saved state does not fit the stream."""
     st = s.stream
+    spread = d.get("spread")
+    if s.regression is not None and spread is not None:
+        if not (isinstance(spread, list) and len(spread) == 4
+                and all(type(v) is float for v in spread)):
+            raise IncompatibleError("spread", spread, "must be 4 numbers")
+        s.spread = tuple(spread)
     if s.returns is not None and d.get("returns") is not None:
         r = Returns.from_dict(d["returns"])
         if r.kinds != s.returns.kinds:
@@ -248,7 +257,7 @@ def restore_series(st: StreamState, d: dict) -> Series:
         if s.mixture is not None:
             s.mixture = Mixture.from_dict(d["mixture"])
         check_estimators(st, s.regression, s.mixture)
-        restore_transform(s, d)
+        restore_extra(s, d)
         outliers = [int(c) for c in d["outliers"]]
         if len(outliers) != len(d["thresholds"]):
             raise IncompatibleError("outliers", outliers,
@@ -329,7 +338,9 @@ def view_of(s: Series) -> SeriesView:
             ok=bool(rg.ok), terms=terms, coefficients=coef, stderr=se,
             residual_stddev=float(rg.residual_stddev(corr)),
             residual_dof=float(rg.residual_dof(corr)),
-            r_squared=float(rg.r_squared), y=cfg.regression.y)
+            r_squared=float(rg.r_squared), y=cfg.regression.y,
+            latest=s.spread[:2], residual=s.spread[2] if s.spread else math.nan,
+            residual_z=s.spread[3] if s.spread else math.nan)
     volatility = () if s.volatility is None else tuple(zip(
         st.volatility_fields, _floats(s.volatility.volatility(cfg.volatility_unit)),
         strict=True))
@@ -868,13 +879,31 @@ class Engine:
         # rows are checked: the estimators' unchecked fold paths
         m._fold(x, w, t)
         if series.regression is not None:
-            series.regression._fold(x[:, st.reg_xy], w, t)
+            self._fold_regression(series, x[:, st.reg_xy], w, t)
         if series.mixture is not None:
             series.mixture._fold(x, w, t)
         series.observations += n
         series.version += 1
         series.last_update = now
         return True
+
+    @staticmethod
+    def _fold_regression(series: Series, xy: np.ndarray, w, t) -> None:
+        """Fold rows [X | y] in, the last one on its own: its residual against the fit of
+        every row before it (the spread) and that residual standardised by its prediction
+        standard error are kept for export. O(n k**2)."""
+        rg = series.regression
+        if xy.shape[0] > 1:
+            rg._fold(xy[:-1], None if w is None else w[:-1], None if t is None else t[:-1])
+        last_x, last_y = xy[-1:, :-1], xy[-1:, -1]
+        if rg.ok:
+            residual = float(last_y[0] - rg.predict(last_x)[0])
+            z = float(rg.standardized_residual(last_x, last_y,
+                                               series.stream.cfg.correction)[0])
+        else:
+            residual = z = math.nan
+        series.spread = (float(last_x[0, 0]), float(last_y[0]), residual, z)
+        rg._fold(xy[-1:], None if w is None else w[-1:], None if t is None else t[-1:])
 
     def _transform(self, series: Series, x: np.ndarray, w, t, now: float) -> tuple:
         """Rows turned into returns (``Returns.apply``), late and non-positive ones counted;

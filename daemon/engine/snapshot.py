@@ -38,6 +38,11 @@ class RegressionView:
     residual_dof: float
     r_squared: float
     y: str = ""                               # the response field
+    # the last row folded in: (first x, y), its residual against the fit of the rows
+    # before it (the spread) and that residual over its prediction standard error
+    latest: tuple[float, ...] = ()
+    residual: float = math.nan
+    residual_z: float = math.nan
 
 
 @dataclass(frozen=True, slots=True)

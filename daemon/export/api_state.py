@@ -22,7 +22,8 @@ Schema (version 1)::
                  "regression": null | {"ok": bool, "y": field, "terms": [..],
                                        "coefficients": [..], "stderr": [..],
                                        "residual_stddev": x, "residual_dof": x,
-                                       "r_squared": x},
+                                       "r_squared": x, "latest": [x0, y],
+                                       "residual": x, "residual_z": x},
                  "history": [[unix seconds, [mean per field]], ..]}]}
 
 Values that are not defined yet (NaN) are written as null. ``history`` holds the
@@ -80,7 +81,9 @@ def series_json(v: SeriesView, now: float, history: History | None = None) -> di
                              "coefficients": _nums(r.coefficients), "stderr": _nums(r.stderr),
                              "residual_stddev": _num(r.residual_stddev),
                              "residual_dof": _num(r.residual_dof),
-                             "r_squared": _num(r.r_squared)}
+                             "r_squared": _num(r.r_squared), "latest": _nums(r.latest),
+                             "residual": _num(r.residual),
+                             "residual_z": _num(r.residual_z)}
     return out
 
 

@@ -44,6 +44,10 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_regression_stderr": ("gauge", "Standard error of a least-squares coefficient."),
     "sigmad_regression_residual_stddev": ("gauge", "Noise standard deviation of the fitted line."),
     "sigmad_regression_r_squared": ("gauge", "Coefficient of determination of the fitted line."),
+    "sigmad_regression_residual": ("gauge", "The last row's residual y - fit (the spread), "
+                                            "against the fit of the rows before it."),
+    "sigmad_regression_residual_z": ("gauge", "The last row's residual over its prediction "
+                                              "standard error."),
     "sigmad_volatility": ("gauge", "Volatility of a return field per the stream's "
                                    "volatility_unit: sqrt of the decayed mean of r^2/dt."),
     "sigmad_observations": ("counter", "Accepted observations."),
@@ -112,6 +116,8 @@ def static_samples(v: SeriesView) -> Iterator[Sample]:
             yield "sigmad_regression_stderr", dict(base, term=term), se
         yield "sigmad_regression_residual_stddev", base, rg.residual_stddev
         yield "sigmad_regression_r_squared", base, rg.r_squared
+        yield "sigmad_regression_residual", base, rg.residual
+        yield "sigmad_regression_residual_z", base, rg.residual_z
 
 
 def dynamic_samples(v: SeriesView, now: float) -> Iterator[Sample]:

@@ -19,8 +19,8 @@ from sigmad.daemon.engine.engine import (
     Series,
     StreamState,
     check_estimators,
-    restore_transform,
-    transform_state,
+    extra_state,
+    restore_extra,
     view_of,
 )
 from sigmad.daemon.engine.snapshot import SeriesView
@@ -46,7 +46,8 @@ class StreamColumns(NamedTuple):
     moments: MomentsColumns
     regression: list | None               # Regression.to_dict per series, when configured
     mixture: list | None                  # Mixture.to_dict per series, when configured
-    transforms: list | None = None        # engine.transform_state per series, when configured
+    extras: list | None = None            # engine.extra_state per series (transform or
+    #                                       regression streams)
 
     @property
     def n(self) -> int:
@@ -79,7 +80,8 @@ def collect(st: StreamState) -> StreamColumns:
         MomentsColumns.of(_get("moments", series), st.dim, cfg.half_life),
         None if cfg.regression is None else [s.regression.to_dict() for s in series],
         None if cfg.mixture is None else [s.mixture.to_dict() for s in series],
-        None if cfg.transform is None else [transform_state(s) for s in series])
+        None if cfg.transform is None and cfg.regression is None else
+        [extra_state(s) for s in series])
 
 
 def pack(c: StreamColumns) -> dict:
@@ -93,7 +95,7 @@ def pack(c: StreamColumns) -> dict:
         "last_update": blob(c.last_update, _LE_F8), "outliers": blob(c.outliers, _LE_I8),
         "moments": c.moments.to_dict(),
         "regression": c.regression, "mixture": c.mixture,
-        **({} if c.transforms is None else {"transforms": c.transforms}),
+        **({} if c.extras is None else {"extras": c.extras}),
     }
 
 
@@ -136,10 +138,10 @@ def unpack(d: object) -> StreamColumns:
         raise IncompatibleError("labels", f"{name}", f"must be {width} lists of {n} strings")
     labels = list(zip(*cols, strict=True)) if width else [()] * n
     per_series = []
-    for key in ("regression", "mixture", "transforms"):
+    for key in ("regression", "mixture", "extras"):
         v = d.get(key)
         if v is not None and not (isinstance(v, list) and len(v) == n
-                                  and (key != "transforms" or all(isinstance(e, dict)
+                                  and (key != "extras" or all(isinstance(e, dict)
                                                                    for e in v))):
             raise IncompatibleError(key, type(v).__name__, f"must be absent or a list of {n}")
         per_series.append(v)
@@ -192,7 +194,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     regs = c.regression or [None] * c.n
     mixes = c.mixture or [None] * c.n
     # a checkpoint from before the stream had a transform: fresh transform states
-    extra = c.transforms or [{}] * c.n
+    extra = c.extras or [{}] * c.n
     out, dropped = [], []
     rows = zip(c.labels, c.moments.states(), c.observations.tolist(), c.version.tolist(),
                c.last_update.tolist(), regs, mixes, extra, strict=True)
@@ -207,7 +209,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
             if cfg.transform is not None:
                 fresh = st.new_series(labels)
                 s.returns, s.volatility = fresh.returns, fresh.volatility
-                restore_transform(s, ext)
+            restore_extra(s, ext)
         except IncompatibleError as exc:
             dropped.append((c.where(i), str(exc)))
             continue
@@ -266,5 +268,5 @@ def states(c: StreamColumns) -> list[dict]:
             "moments": moments[i].to_dict(),
             "regression": None if c.regression is None else c.regression[i],
             "mixture": None if c.mixture is None else c.mixture[i],
-            **({} if c.transforms is None else c.transforms[i])})
+            **({} if c.extras is None else c.extras[i])})
     return out
