@@ -15,6 +15,7 @@ from .errors import (
     WeightError,
 )
 from .forgetting import HalfLife
+from .legs import Joined, Legs
 from .mixture import Mixture
 from .moments import CORRECTIONS, Moments
 from .regression import Regression
@@ -28,6 +29,8 @@ __all__ = [
     "EstimatorError",
     "HalfLife",
     "IncompatibleError",
+    "Joined",
+    "Legs",
     "Mixture",
     "Moments",
     "NonFiniteError",
