@@ -222,3 +222,140 @@ def test_the_regression_plot_marks_the_latest_point():
     e.flush(1.0)
     svg = pair_figure(e.snapshot.series[("pair", ())])
     assert 'class="latest"' in svg and "z = " in svg
+
+
+# ------------------------------------------------------------------ legs
+
+LEGS = SOURCE + """
+[[stream]]
+name = "pair"
+legs = { alpha = "px.{venue}.alpha", beta = "px.{venue}.beta" }
+max_leg_age = "2s"
+regression = { y = "beta", x = ["alpha"] }
+"""
+
+
+def _two_feeds(seed: int, n: int = 600):
+    rng = np.random.default_rng(seed)
+    ta = 1.7e9 + np.cumsum(rng.exponential(1.0, n))
+    tb = 1.7e9 + np.cumsum(rng.exponential(1.5, n * 2 // 3))
+    a = 100.0 * np.exp(np.cumsum(rng.normal(0, 0.002, ta.size)))
+    b = 50.0 * np.exp(np.cumsum(rng.normal(0, 0.002, tb.size)))
+    return ta, a, tb, b
+
+
+def _asof_rows(ta, a, tb, b, tolerance):
+    """pandas merge_asof of each feed against the other (backward, the staleness bound as
+    tolerance), rows missing a leg dropped, the two sides unioned in time order."""
+    pd = need_module("pandas")
+    fa, fb = pd.DataFrame({"t": ta, "alpha": a}), pd.DataFrame({"t": tb, "beta": b})
+    kw = {"on": "t", "direction": "backward", "tolerance": tolerance}
+    left = pd.merge_asof(fa, fb, **kw)
+    right = pd.merge_asof(fb, fa, **kw)
+    both = pd.concat([left, right]).dropna().sort_values("t", kind="stable")
+    return both[["alpha", "beta"]].to_numpy()
+
+
+def _send_feeds(e: Engine, ta, a, tb, b, venue="x", flushes=20):
+    ticks = sorted([(t, b"alpha", v) for t, v in zip(ta, a, strict=True)]
+                   + [(t, b"beta", v) for t, v in zip(tb, b, strict=True)])
+    rng = np.random.default_rng(0)
+    for part in np.array_split(np.arange(len(ticks)), flushes):
+        for i in rng.permutation(part):         # shuffled within each flush
+            t, leg, v = ticks[i]
+            e.ingest(b"px." + venue.encode() + b"." + leg, encode(float(v), time=float(t)),
+                     now=float(t))
+        e.flush(ticks[part[-1]][0])
+
+
+def test_joined_legs_equal_pandas_merge_asof_with_the_staleness_bound():
+    ta, a, tb, b = _two_feeds(1)
+    e = _engine(LEGS)
+    _send_feeds(e, ta, a, tb, b)
+    rows = _asof_rows(ta, a, tb, b, 2.0)
+    v = e.snapshot.series[("pair", (("venue", "x"),))]
+    assert v.observations == rows.shape[0]
+    np.testing.assert_allclose(v.mean, rows.mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(v.variance, rows.var(axis=0, ddof=1), rtol=1e-9)
+    sm = need_module("statsmodels.api")
+    fit = sm.OLS(rows[:, 1], sm.add_constant(rows[:, 0])).fit()       # statsmodels OLS
+    assert v.regression.coefficients[0] == pytest.approx(float(fit.params[1]), rel=1e-9)
+    stale = ta.size + tb.size - rows.shape[0]
+    assert e.rejected["stale_leg"] == stale > 0
+
+
+def test_transforms_apply_to_joined_rows():
+    ta, a, tb, b = _two_feeds(2)
+    e = _engine(LEGS.replace('max_leg_age = "2s"', 'max_leg_age = "2s"\n'
+                             'transform = { alpha = "log_return", beta = "log_return" }'))
+    _send_feeds(e, ta, a, tb, b)
+    rows = _asof_rows(ta, a, tb, b, 2.0)
+    r = np.diff(np.log(rows), axis=0)                                   # numpy
+    v = e.snapshot.series[("pair", (("venue", "x"),))]
+    assert v.observations == r.shape[0]
+    np.testing.assert_allclose(v.mean, r.mean(axis=0), rtol=1e-9, atol=1e-15)
+
+
+def test_legs_state_survives_a_checkpoint():
+    e = _engine(LEGS)
+    e.ingest(b"px.x.alpha", encode(10.0, time=100.0), now=100.0)
+    e.flush(100.0)
+    assert e.snapshot.series == {}                      # one leg only: no row yet
+    blob = cpmod.encode_checkpoint(cpmod.collect_columns(e), cpmod.stream_definitions(e),
+                                   100.0, {})
+    fresh = _engine(LEGS)
+    cpmod.restore_checkpoint(fresh, cpmod.decode_checkpoint(blob), now=100.5)
+    fresh.ingest(b"px.x.beta", encode(20.0, time=101.0), now=101.0)
+    fresh.flush(101.0)
+    assert fresh.snapshot.series[("pair", (("venue", "x"),))].mean == (10.0, 20.0)
+
+
+@pytest.mark.parametrize("extra, words", [
+    ('legs = { alpha = "px.a", beta = "px.b" }\ntopic = "px"', ["topic", "and legs"]),
+    ('legs = { alpha = "px.a" }', ["legs", "at least two"]),
+    ('legs = { alpha = "px.{v}.a", beta = "px.b" }', ["legs.beta", "same labels"]),
+    ('legs = { alpha = "px.a", beta = "px.a" }', ["legs.beta", "leg 'alpha'"]),
+    ('topic = "px"\nfields = ["a"]\nmax_leg_age = "2s"', ["max_leg_age", "needs legs"]),
+    ('legs = { alpha = "px.a", beta = "px.b" }\nfields = ["alpha", "gamma"]',
+     ["fields", "each leg"]),
+])
+def test_bad_leg_keys_are_clear_errors(extra, words):
+    with pytest.raises(ConfigError) as err:
+        parse_config(SOURCE + f'[[stream]]\nname = "p"\n{extra}\n')
+    for w in words:
+        assert w in str(err.value)
+
+
+def test_a_leg_topic_no_source_subscribes_to_is_an_error():
+    text = """
+[[source]]
+socket = "sub"
+connect = "tcp://127.0.0.1:7999"
+topics = ["px.a"]
+
+[[stream]]
+name = "p"
+legs = { alpha = "px.a", beta = "fx.b" }
+"""
+    with pytest.raises(ConfigError, match=r"stream\[0\]\.legs\.beta = 'fx.b' is a topic no source"):
+        parse_config(text)
+
+
+def test_legs_through_the_hot_path_equal_one_by_one():
+    ta, a, tb, b = _two_feeds(5, 3000)
+    ticks = sorted([(t, b"px.x.alpha", v) for t, v in zip(ta, a, strict=True)]
+                   + [(t, b"px.x.beta", v) for t, v in zip(tb, b, strict=True)])
+    one, many = _engine(LEGS), _engine(LEGS)
+    for part in np.array_split(np.arange(len(ticks)), 10):
+        topics = [ticks[i][1] for i in part]
+        bodies = [encode({"alpha" if ticks[i][1].endswith(b"alpha") else "beta":
+                          float(ticks[i][2])}, time=float(ticks[i][0])) for i in part]
+        now = ticks[part[-1]][0]
+        for tp, body in zip(topics, bodies, strict=True):
+            one.ingest(tp, body, now)
+        many.ingest_many(topics, bodies, now)
+        one.flush(now)
+        many.flush(now)
+    key = ("pair", (("venue", "x"),))
+    assert many.snapshot.series[key] == one.snapshot.series[key]
+    assert many.rejected == one.rejected

@@ -176,6 +176,13 @@ class StreamConfig:
     idle_expiry: float | None = _duration(None)
     transform: tuple[tuple[str, str], ...] | None = None   # (field, "log_return" | ...)
     volatility_unit: float | None = _duration(None)
+    legs: tuple[tuple[str, TopicTemplate], ...] | None = None   # (field, its topic)
+    max_leg_age: float | None = _duration(None)
+
+    @property
+    def templates(self) -> tuple[TopicTemplate, ...]:
+        """Every topic template the stream takes: its legs', or its one topic."""
+        return tuple(tpl for _, tpl in self.legs) if self.legs else (self.topic,)
 
     @property
     def dim(self) -> int:
@@ -595,15 +602,17 @@ def _stream(data: object, path: str) -> StreamConfig:
     if not LABEL_NAME.fullmatch(name):
         raise ConfigError(t.key("name"), name, "is not a valid stream name (letters, digits "
                           "and _, not starting with a digit)")
-    try:
-        topic = TopicTemplate.parse(t.string("topic"), t.key("topic"))
-    except TopicError as exc:
-        raise ConfigError(exc.key, exc.value, exc.message) from None
-    for label in topic.labels:
-        if label in RESERVED_LABELS or label.startswith("__"):
-            raise ConfigError(t.key("topic"), topic.text, f"captures the label {{{label}}}, "
-                              "which sigmad's metrics (or Prometheus) reserve; rename it")
-    fields = _names(t, "fields", "field")
+    legs = _legs(t, name)
+    topic = legs[0][1] if legs else _template(t.string("topic"), t.key("topic"))
+    fields = _names(t, "fields", "field") if not legs or "fields" in t.data else \
+        tuple(f for f, _ in legs)
+    if legs and sorted(fields) != sorted(f for f, _ in legs):
+        raise ConfigError(t.key("fields"), list(fields), f"must name each leg of stream "
+                          f"{name!r} once ({[f for f, _ in legs]})")
+    age = t.duration("max_leg_age")
+    if age is not None and not legs:
+        raise ConfigError(t.key("max_leg_age"), t.data["max_leg_age"],
+                          f"needs legs: stream {name!r} takes one topic")
     half_life = t.raw("half_life")
     if half_life is not None:
         half_life = parse_half_life(half_life, t.key("half_life"))
@@ -632,8 +641,61 @@ def _stream(data: object, path: str) -> StreamConfig:
         _regression(regression, t.key("regression"), fields),
         max_series=t.integer("max_series", minimum=1),
         idle_expiry=None if idle is None else parse_duration(idle, t.key("idle_expiry")),
-        transform=transform, volatility_unit=unit,
+        transform=transform, volatility_unit=unit, legs=legs, max_leg_age=age,
     )
+
+
+def _template(text: str, key: str) -> TopicTemplate:
+    try:
+        topic = TopicTemplate.parse(text, key)
+    except TopicError as exc:
+        raise ConfigError(exc.key, exc.value, exc.message) from None
+    for label in topic.labels:
+        if label in RESERVED_LABELS or label.startswith("__"):
+            raise ConfigError(key, topic.text, f"captures the label {{{label}}}, "
+                              "which sigmad's metrics (or Prometheus) reserve; rename it")
+    return topic
+
+
+def _legs(t: _Table, name: str) -> tuple[tuple[str, TopicTemplate], ...] | None:
+    """``legs = { field = "topic", ... }``: each field from its own topic."""
+    table = t.raw("legs")
+    if table is None:
+        return None
+    if "topic" in t.data:
+        raise ConfigError(t.key("topic"), t.data["topic"], f"and legs cannot both be given: "
+                          f"stream {name!r} takes its topics from its legs")
+    if not isinstance(table, dict) or len(table) < 2:
+        raise ConfigError(t.key("legs"), table, 'must be a table of at least two fields and '
+                          'their topics, e.g. { alpha = "px.alpha", beta = "px.beta" }')
+    legs = []
+    for f, text in table.items():
+        key = t.key(f"legs.{f}")
+        if not LABEL_NAME.fullmatch(f):
+            raise ConfigError(key, text, "names an invalid field (letters, digits and _)")
+        if not isinstance(text, str):
+            raise ConfigError(key, text, "must be a topic string")
+        tpl = _template(text, key)
+        if legs and tpl.labels != legs[0][1].labels:
+            raise ConfigError(key, text, f"must capture the same labels as the first leg "
+                              f"{list(legs[0][1].labels)} (stream {name!r})")
+        for g, other in legs:
+            if other.overlaps(tpl):
+                raise ConfigError(key, text, f"could take the same topics as leg {g!r}")
+        legs.append((f, tpl))
+    return tuple(legs)
+
+
+def _deliverable(tpl: TopicTemplate, sources: tuple[SourceConfig, ...]) -> bool:
+    """Whether some source could receive topics of ``tpl`` (a PULL takes everything, a
+    SUB the topics starting with one of its prefixes)."""
+    for s in sources:
+        if s.socket != "sub":
+            return True
+        if any(tpl.prefix.startswith(p) or (p.startswith(tpl.prefix) and "{" in tpl.text)
+               or tpl.text.startswith(p) for p in s.topics):
+            return True
+    return False
 
 
 def _transform(t: _Table, name: str, fields: tuple[str, ...]
@@ -706,10 +768,18 @@ def _build(data: dict) -> Config:
                               f"is already the name of stream[{seen[s.name]}]")
         seen[s.name] = i
         for j in range(i):
-            if streams[j].topic.overlaps(s.topic):
-                raise ConfigError(f"stream[{i}].topic", s.topic.text,
-                                  f"could take the same topics as stream[{j}] "
-                                  f"({streams[j].topic.text!r}); make a literal segment differ")
+            for mine in s.templates:
+                for theirs in streams[j].templates:
+                    if theirs.overlaps(mine):
+                        raise ConfigError(f"stream[{i}].{'legs' if s.legs else 'topic'}",
+                                          mine.text, f"could take the same topics as stream"
+                                          f"[{j}] ({theirs.text!r}); make a literal segment "
+                                          "differ")
+        for f, tpl in s.legs or ():
+            if sources and not _deliverable(tpl, sources):
+                raise ConfigError(f"stream[{i}].legs.{f}", tpl.text, "is a topic no source "
+                                  f"subscribes to (stream {s.name!r}); add its prefix to a "
+                                  "sub source's topics")
     bound: dict[str, str] = {}
     binds = [(f"source[{i}].bind", ep) for i, s in enumerate(sources) for ep in s.bind]
     binds += [("publish.bind", ep) for ep in (publish.bind if publish else ())]
@@ -863,6 +933,11 @@ def describe(config: Config) -> str:
         if st.outlier_sigmas:
             lines.append(f"    outliers    beyond {', '.join(f'{s:g}' for s in st.outlier_sigmas)}"
                          f" sigma, after {st.outlier_warmup} observations")
+        if st.legs:
+            lines.append("    legs        " + ", ".join(f"{f} <- {tpl.text!r}"
+                                                        for f, tpl in st.legs)
+                         + (f"; a leg older than {_show_duration(st.max_leg_age)} forms no row"
+                            if st.max_leg_age else ""))
         if st.transform:
             lines.append("    transform   " + ", ".join(f"{f} -> {k}" for f, k in st.transform)
                          + (f"; volatility per {_show_duration(st.volatility_unit)}"

@@ -20,7 +20,15 @@ from sigmad.daemon.config.load import Config, StreamConfig
 from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
-from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression, Returns, Volatility
+from sigmad.estimators import (
+    IncompatibleError,
+    Legs,
+    Mixture,
+    Moments,
+    Regression,
+    Returns,
+    Volatility,
+)
 from sigmad.estimators.validation import screen_batch
 
 log = logging.getLogger("sigmad.engine")
@@ -99,6 +107,7 @@ class Series:
     returns: Returns | None = None                # the stream's transform: previous row
     volatility: Volatility | None = None          # of the return fields
     spread: tuple = ()                            # the last row's (x0, y, residual, z)
+    legs: Legs | None = None                      # a joined stream's latest value per leg
 
     def queue(self, chunk: tuple) -> None:
         if self.pending:
@@ -125,12 +134,53 @@ class Series:
         self.rows, self.extras = (), ()
 
 
+@dataclass(slots=True)
+class LegSeries(Series):
+    """One label set of one leg: its rows go to the joined stream's series."""
+
+    leg: LegState | None = None
+
+    def queue(self, chunk: tuple) -> None:
+        self.leg.forward(self.labels, chunk)
+
+
+class LegState:
+    """One leg of a stream whose fields come from several topics: routed and decoded as a
+    stream of the leg's one field; its rows are queued, tagged with the leg, on the joined
+    stream's series of the same labels (created there, up to its max_series)."""
+
+    def __init__(self, joined: StreamState, index: int, field: str, topic, engine) -> None:
+        self.joined, self.index, self.engine = joined, index, engine
+        self.cfg = joined.cfg
+        self.name = joined.name
+        self.topic = topic
+        self.fields = (field,)
+        self.dim = 1
+        self.series: dict[tuple[str, ...], LegSeries] = {}
+
+    def new_series(self, labels: tuple[str, ...]) -> LegSeries:
+        return LegSeries(self, labels, None, None, None, [], leg=self)
+
+    def forward(self, labels: tuple[str, ...], chunk: tuple) -> None:
+        st, engine = self.joined, self.engine
+        series = st.series.get(labels)
+        if series is None:
+            if len(st.series) >= st.cfg.max_series:
+                engine.reject("series_limit", chunk[0].shape[0],
+                              topic=_route_name((st, labels)), now=chunk[3])
+                return
+            series = st.series[labels] = st.new_series(labels)
+        series.queue((*chunk, self.index))
+        engine._dirty[id(series)] = series
+
+
 class StreamState:
     """A configured stream and its live series."""
 
     def __init__(self, cfg: StreamConfig) -> None:
         self.cfg = cfg
         self.name = cfg.name
+        self.topic = None if cfg.legs else cfg.topic   # None: routed through its legs
         self.fields = tuple(cfg.fields)
         self.dim = len(self.fields)
         self.series: dict[tuple[str, ...], Series] = {}
@@ -148,6 +198,9 @@ class StreamState:
         self.reg_y = None if reg is None else self.fields.index(reg.y)
         self.reg_xy = None if reg is None else self.reg_x + [self.reg_y]   # [X | y] columns
         self.log_mixture = cfg.mixture is not None and cfg.mixture.log
+        legs = [f for f, _ in cfg.legs or ()]
+        self.leg_order = [legs.index(f) for f in self.fields] if legs and \
+            legs != self.field_list else None
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
         cfg = self.cfg
@@ -163,6 +216,8 @@ class StreamState:
         key = (self.name, tuple(zip(cfg.topic.labels, labels, strict=True)))
         s = Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
                    [0] * len(cfg.outlier_sigmas), key=key)
+        if cfg.legs:
+            s.legs = Legs(len(cfg.legs), cfg.max_leg_age)
         if cfg.transform is not None:
             s.returns = Returns(cfg.transforms)
             if self.volatility_fields:
@@ -198,6 +253,8 @@ def extra_state(s: Series) -> dict:
     out = {}
     if s.spread:
         out["spread"] = list(s.spread)
+    if s.legs is not None:
+        out["legs"] = s.legs.to_dict()
     if s.returns is not None:
         out["returns"] = s.returns.to_dict()
     if s.volatility is not None:
@@ -216,6 +273,12 @@ def restore_extra(s: Series, d: dict) -> None:
                 and all(type(v) is float for v in spread)):
             raise IncompatibleError("spread", spread, "must be 4 numbers")
         s.spread = tuple(spread)
+    if s.legs is not None and d.get("legs") is not None:
+        j = Legs.from_dict(d["legs"])
+        if (j.count, j.max_age) != (s.legs.count, s.legs.max_age):
+            raise IncompatibleError("legs", j.count, "leg count or max_leg_age differ from "
+                                    "the stream's")
+        s.legs = j
     if s.returns is not None and d.get("returns") is not None:
         r = Returns.from_dict(d["returns"])
         if r.kinds != s.returns.kinds:
@@ -365,6 +428,10 @@ class Engine:
     def __init__(self, config: Config) -> None:
         self.config = config
         self.streams = [StreamState(s) for s in config.streams]
+        # what topics route to: plain streams, and each leg of a joined one
+        self._routable = [st for st in self.streams if st.topic is not None] + [
+            LegState(st, i, f, tpl, self) for st in self.streams
+            for i, (f, tpl) in enumerate(st.cfg.legs or ())]
         self._routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
         self._dirty: dict[int, Series] = {}
         self._views: dict = {}
@@ -409,8 +476,8 @@ class Engine:
         except UnicodeDecodeError:
             text = None
         if text is not None:
-            for st in self.streams:
-                labels = st.cfg.topic.match(text)
+            for st in self._routable:
+                labels = st.topic.match(text)
                 if labels is not None:
                     found = (st, labels)
                     break
@@ -835,12 +902,15 @@ class Engine:
         views = self._views
         changed = False
         for series in dirty.values():
+            if series.moments is None:   # a leg: its rows went to the joined series
+                continue
             if self._fold(series, now):
                 views = views if changed else dict(views)
                 changed = True
                 views[series.key] = view_of(series)
             elif series.observations == 0 and not series.pending and (
-                    series.returns is None or series.returns.clock is None):
+                    series.returns is None or series.returns.clock is None) and (
+                    series.legs is None or not series.legs.seen):
                 # every row of a new series was dropped: the rejected input leaves no trace
                 # (a series whose first price is kept for its first return stays)
                 st = series.stream
@@ -855,7 +925,10 @@ class Engine:
     def _fold(self, series: Series, now: float) -> bool:
         chunks, series.pending = series.pending, ()
         st = series.stream
-        x, w, t = _concat(chunks, st.time_based)
+        if series.legs is not None:
+            x, w, t = self._join(series, chunks, now)
+        else:
+            x, w, t = _concat(chunks, st.time_based)
         batch, dropped = screen_batch(x, st.dim, w, t, self.config.daemon.max_abs_value)
         for reason, count in dropped.items():
             self.reject(reason, count, topic=_where(series), now=now)
@@ -904,6 +977,29 @@ class Engine:
             residual = z = math.nan
         series.spread = (float(last_x[0, 0]), float(last_y[0]), residual, z)
         rg._fold(xy[-1:], None if w is None else w[-1:], None if t is None else t[-1:])
+
+    def _join(self, series: Series, chunks: list, now: float) -> tuple:
+        """The rows of a joined stream from its legs' ticks (``Legs.join``): ticks screened
+        one by one first, late and stale ones counted. O(n log n)."""
+        x = np.concatenate([np.column_stack((c[0][:, 0], np.full(c[0].shape[0], c[4])))
+                            for c in chunks])
+        w = None
+        if any(c[1] is not None for c in chunks):
+            w = np.concatenate([np.ones(len(c[0])) if c[1] is None else c[1] for c in chunks])
+        t = np.concatenate([np.full(len(c[0]), c[3]) if c[2] is None else c[2]
+                            for c in chunks])
+        (x, w, t), dropped = screen_batch(x, 2, w, t, self.config.daemon.max_abs_value)
+        where = _where(series)
+        for reason, count in dropped.items():
+            self.reject(reason, count, topic=where, now=now)
+        out = series.legs.join(x[:, 0], x[:, 1].astype(np.intp), t, w)
+        for reason, count in (("late", out.late), ("stale_leg", out.stale)):
+            if count:
+                self.reject(reason, count, topic=where, now=now)
+        # joined rows in field order (legs are in the order the legs table gives)
+        order = series.stream.leg_order
+        return out.values[:, order] if order is not None else out.values, out.weights, \
+            out.times
 
     def _transform(self, series: Series, x: np.ndarray, w, t, now: float) -> tuple:
         """Rows turned into returns (``Returns.apply``), late and non-positive ones counted;

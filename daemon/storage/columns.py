@@ -80,7 +80,7 @@ def collect(st: StreamState) -> StreamColumns:
         MomentsColumns.of(_get("moments", series), st.dim, cfg.half_life),
         None if cfg.regression is None else [s.regression.to_dict() for s in series],
         None if cfg.mixture is None else [s.mixture.to_dict() for s in series],
-        None if cfg.transform is None and cfg.regression is None else
+        None if cfg.transform is None and cfg.regression is None and not cfg.legs else
         [extra_state(s) for s in series])
 
 
@@ -206,9 +206,9 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
             s = Series(st, labels, m, reg, mix,   # positional: keywords cost here
                        outliers[i] if keep_outliers else [0] * width, obs, version, last,
                        (name, tuple(zip(label_names, labels, strict=True))))
-            if cfg.transform is not None:
+            if cfg.transform is not None or cfg.legs:
                 fresh = st.new_series(labels)
-                s.returns, s.volatility = fresh.returns, fresh.volatility
+                s.returns, s.volatility, s.legs = fresh.returns, fresh.volatility, fresh.legs
             restore_extra(s, ext)
         except IncompatibleError as exc:
             dropped.append((c.where(i), str(exc)))
@@ -226,7 +226,7 @@ def views(st: StreamState, series: list[Series],
     already). O(n (d**2 + quantiles))."""
     cfg = st.cfg
     if cfg.regression is not None or cfg.mixture is not None or cfg.transform is not None \
-            or not series:
+            or cfg.legs or not series:
         return [view_of(s) for s in series]
     n, d, corr = len(series), st.dim, cfg.correction
     m = moments if moments is not None and moments.n == n else \
