@@ -8,6 +8,7 @@ weighted means and the as-of join, statsmodels OLS for the spread.
 from __future__ import annotations
 
 import math
+from datetime import UTC
 
 import numpy as np
 import pytest
@@ -359,3 +360,101 @@ def test_legs_through_the_hot_path_equal_one_by_one():
     key = ("pair", (("venue", "x"),))
     assert many.snapshot.series[key] == one.snapshot.series[key]
     assert many.rejected == one.rejected
+
+
+# ------------------------------------------------------------------ sessions
+
+SESSIONS = SOURCE + """
+[[stream]]
+name = "vwap"
+topic = "trade.{sym}"
+fields = ["price"]
+session_reset = "17:00 America/New_York"
+"""
+
+
+def _utc(*args) -> float:
+    from datetime import datetime
+    return datetime(*args, tzinfo=UTC).timestamp()
+
+
+@pytest.mark.parametrize("before, boundary", [
+    # US rule (common practice): daylight saving starts the second Sunday of March and ends
+    # the first Sunday of November; 17:00 is 21:00 UTC under EDT, 22:00 UTC under EST
+    (_utc(2026, 3, 7, 23, 0), _utc(2026, 3, 8, 21, 0)),     # the 23-hour session
+    (_utc(2026, 10, 31, 22, 0), _utc(2026, 11, 1, 22, 0)),  # the 25-hour session
+    (_utc(2026, 3, 8, 21, 0), _utc(2026, 3, 9, 21, 0)),     # exactly at one: the next
+])
+def test_session_boundary_follows_daylight_saving(before, boundary):
+    from sigmad.daemon.config.session import SessionReset
+    assert SessionReset.parse("17:00 America/New_York").next_after(before) == boundary
+
+
+def test_session_reset_exports_closing_values_once_and_starts_afresh_at_a_dst_change():
+    from prometheus_client import CollectorRegistry, generate_latest
+    from sigmad.daemon.export.model import HealthCollector
+    e = _engine(SESSIONS)
+    registry = CollectorRegistry()
+    registry.register(HealthCollector(lambda: e.snapshot))
+    boundary = _utc(2026, 3, 8, 21, 0)       # 17:00 EDT on the first day of EDT
+    rng = np.random.default_rng(6)
+    p1, s1 = rng.normal(100, 1, 40), rng.integers(1, 500, 40).astype(float)
+    p2, s2 = rng.normal(101, 1, 30), rng.integers(1, 500, 30).astype(float)
+    start = boundary - 7200.0
+    e.flush(start)
+    for i in range(40):   # size-weighted: the trade size is the weight
+        e.ingest(b"trade.abc", encode({"price": p1[i]}, weight=s1[i]), now=start + i)
+    e.flush(boundary - 1.0)                  # 16:59:59 EDT (21:59:59 would be EST's)
+    assert e.snapshot.closed == ()
+    e.flush(boundary + 0.5)                  # past 17:00 EDT: the session closes
+    for i in range(30):
+        e.ingest(b"trade.abc", encode({"price": p2[i]}, weight=s2[i]), now=boundary + 1 + i)
+    e.flush(boundary + 60.0)
+    (name, at, views), = e.snapshot.closed
+    assert (name, at) == ("vwap", boundary)
+    assert views[0].mean[0] == pytest.approx(float(np.average(p1, weights=s1)), rel=1e-12)
+    now = e.snapshot.series[("vwap", (("sym", "abc"),))]
+    assert now.mean[0] == pytest.approx(float(np.average(p2, weights=s2)), rel=1e-12)
+    assert now.observations == 30
+    text = generate_latest(registry).decode()
+    assert 'sigmad_session_close_timestamp_seconds{stream="vwap"} 1.7730036e+09' in text
+    assert text.count("sigmad_session_close_mean{") == 1
+    assert 'sigmad_session_close_observations{stream="vwap",sym="abc"} 40.0' in text
+    doc = snapshot_json(e.snapshot, boundary + 60.0)
+    assert doc["sessions"]["vwap"]["closed_at"] == boundary
+    # the next boundary is a day later on the local clock (EDT now: 21:00 UTC again)
+    e.flush(_utc(2026, 3, 9, 20, 59))
+    assert e.snapshot.closed[0][1] == boundary
+    e.flush(_utc(2026, 3, 9, 21, 0, 1))
+    assert e.snapshot.closed[0][1] == _utc(2026, 3, 9, 21, 0)
+    assert e.snapshot.closed[0][2][0].observations == 30
+
+
+def test_rows_waiting_at_the_boundary_and_the_previous_price_carry_over():
+    text = SESSIONS.replace('fields = ["price"]', 'fields = ["price"]\n'
+                            'transform = { price = "difference" }')
+    e = _engine(text)
+    boundary = _utc(2026, 3, 8, 21, 0)
+    e.flush(boundary - 10)
+    e.ingest(b"trade.abc", encode({"price": [10.0, 11.0]}, time=[boundary - 5, boundary - 4]),
+             now=boundary - 4)
+    e.flush(boundary - 3)
+    e.ingest(b"trade.abc", encode({"price": 14.0}, time=boundary + 0.1), now=boundary + 0.1)
+    e.flush(boundary + 0.2)
+    v = e.snapshot.series[("vwap", (("sym", "abc"),))]
+    assert (v.observations, v.mean[0]) == (1, 3.0)      # 14 - 11: across the boundary
+    assert e.snapshot.closed[0][2][0].mean[0] == 1.0
+
+
+@pytest.mark.parametrize("value, words", [
+    ('"17:00 Mars/Olympus_Mons"', ["session_reset", "Mars/Olympus_Mons", "does not exist",
+                                   "'vwap'"]),
+    ('"25:00 UTC"', ["session_reset", "time of day"]),
+    ('"5pm New York"', ["session_reset", "HH:MM"]),
+    ("1700", ["session_reset", "string"]),
+])
+def test_bad_session_reset_is_a_clear_error(value, words):
+    with pytest.raises(ConfigError) as err:
+        parse_config(SESSIONS.replace('"17:00 America/New_York"', value))
+    for w in words:
+        assert w in str(err.value)

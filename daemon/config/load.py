@@ -30,6 +30,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Literal
 
+from sigmad.daemon.config.session import SessionError, SessionReset
 from sigmad.daemon.ingest.topics import LABEL_NAME, TopicError, TopicTemplate
 from sigmad.estimators import CORRECTIONS, TRANSFORMS, HalfLife
 
@@ -178,6 +179,7 @@ class StreamConfig:
     volatility_unit: float | None = _duration(None)
     legs: tuple[tuple[str, TopicTemplate], ...] | None = None   # (field, its topic)
     max_leg_age: float | None = _duration(None)
+    session_reset: SessionReset | None = None
 
     @property
     def templates(self) -> tuple[TopicTemplate, ...]:
@@ -642,7 +644,18 @@ def _stream(data: object, path: str) -> StreamConfig:
         max_series=t.integer("max_series", minimum=1),
         idle_expiry=None if idle is None else parse_duration(idle, t.key("idle_expiry")),
         transform=transform, volatility_unit=unit, legs=legs, max_leg_age=age,
+        session_reset=_session(t, name),
     )
+
+
+def _session(t: _Table, name: str) -> SessionReset | None:
+    text = t.raw("session_reset")
+    if text is None:
+        return None
+    try:
+        return SessionReset.parse(text)
+    except SessionError as exc:
+        raise ConfigError(t.key("session_reset"), text, f"{exc} (stream {name!r})") from None
 
 
 def _template(text: str, key: str) -> TopicTemplate:
@@ -942,6 +955,9 @@ def describe(config: Config) -> str:
             lines.append("    transform   " + ", ".join(f"{f} -> {k}" for f, k in st.transform)
                          + (f"; volatility per {_show_duration(st.volatility_unit)}"
                             if st.volatility_unit else ""))
+        if st.session_reset:
+            lines.append(f"    sessions    reset daily at {st.session_reset.text}, closing "
+                         "values exported")
         expiry = _show_duration(st.idle_expiry) if st.idle_expiry else "never"
         lines.append(f"    series      at most {st.max_series}; idle expiry {expiry}")
     if config.publish:

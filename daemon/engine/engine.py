@@ -181,6 +181,7 @@ class StreamState:
         self.cfg = cfg
         self.name = cfg.name
         self.topic = None if cfg.legs else cfg.topic   # None: routed through its legs
+        self.next_reset: float | None = None           # the next session boundary
         self.fields = tuple(cfg.fields)
         self.dim = len(self.fields)
         self.series: dict[tuple[str, ...], Series] = {}
@@ -434,6 +435,8 @@ class Engine:
             for i, (f, tpl) in enumerate(st.cfg.legs or ())]
         self._routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
         self._dirty: dict[int, Series] = {}
+        self._sessions = [st for st in self.streams if st.cfg.session_reset is not None]
+        self._closed: dict[str, tuple] = {}   # stream -> (boundary, closing views)
         self._views: dict = {}
         self.rejected: Counter[str] = Counter()
         self.messages: Counter[str] = Counter()
@@ -897,6 +900,8 @@ class Engine:
     # -------------------------------------------------------------- flush
     def flush(self, now: float) -> Snapshot:
         """Fold every pending micro-batch into its series and publish a new snapshot."""
+        if self._sessions:
+            self._reset_sessions(now)
         dirty, self._dirty = self._dirty, {}
         self.pending_rows = 0
         views = self._views
@@ -921,6 +926,38 @@ class Engine:
         self.flushes += 1
         self.snapshot = self._make_snapshot(now)
         return self.snapshot
+
+    def _reset_sessions(self, now: float) -> None:
+        """At a stream's session boundary: keep its series' read-outs as the closing values
+        and start every series afresh. Rows still waiting, the previous price of a
+        transform and the legs' latest values carry over (they are the feed, not an
+        estimate). The first boundary counts from the oldest restored update, so a
+        checkpoint from an earlier session closes at once. O(series of the stream)."""
+        for st in self._sessions:
+            reset = st.cfg.session_reset
+            if st.next_reset is None:
+                seen = [s.last_update for s in st.series.values() if s.last_update > 0.0]
+                st.next_reset = reset.next_after(min(seen) if seen else now)
+            if now < st.next_reset:
+                continue
+            views = self._views
+            self._closed[st.name] = (st.next_reset, tuple(
+                views[s.key] for s in st.series.values() if s.key in views))
+            fresh = {}
+            for labels, s in st.series.items():
+                keep = (s.returns is not None and s.returns.clock is not None) or \
+                    (s.legs is not None and s.legs.seen)
+                if not (s.pending or s.rows or keep):
+                    continue
+                n = st.new_series(labels)
+                n.returns, n.legs = s.returns, s.legs
+                n.pending, n.rows, n.extras = s.pending, s.rows, s.extras
+                fresh[labels] = n
+                if self._dirty.pop(id(s), None) is not None:
+                    self._dirty[id(n)] = n
+            st.series = fresh
+            self._views = {k: v for k, v in views.items() if k[0] != st.name}
+            st.next_reset = reset.next_after(now)
 
     def _fold(self, series: Series, now: float) -> bool:
         chunks, series.pending = series.pending, ()
@@ -1031,7 +1068,8 @@ class Engine:
         return Snapshot(taken_at=now, series=self._views,
                         series_per_stream=tuple((st.name, len(st.series))
                                                 for st in self.streams),
-                        health=health)
+                        health=health, closed=tuple(
+                            (name, *c) for name, c in sorted(self._closed.items())))
 
     def expire_idle(self, now: float) -> int:
         """Drop series idle for longer than their stream's idle_expiry; returns how many."""

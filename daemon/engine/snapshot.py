@@ -119,6 +119,8 @@ class Snapshot:
     series: dict = field(default_factory=dict)          # key -> SeriesView (never mutated)
     series_per_stream: tuple[tuple[str, int], ...] = ()
     health: Health = field(default_factory=Health)
+    # per stream with sessions: (stream, boundary unix seconds, read-outs at the close)
+    closed: tuple[tuple[str, float, tuple[SeriesView, ...]], ...] = ()
 
     def by_stream(self) -> dict[str, list[SeriesView]]:
         out: dict[str, list[SeriesView]] = {}

@@ -6,6 +6,8 @@ Schema (version 1)::
      "health": {"messages": {endpoint: n}, "rejected": {reason: n},
                 "sequence_gaps": {producer: n}, "flushes": n},
      "streams": {name: {"series": n}},
+     "sessions": {name: {"closed_at": unix seconds, "series": [series as below, as of
+                                                               the close]}},
      "series": [{"stream": name, "labels": {label: value}, "fields": [..],
                  "observations": n, "update_age_seconds": s,
                  "weight_sum": W, "effective_samples": n_eff,
@@ -94,5 +96,7 @@ def snapshot_json(snap: Snapshot, now: float, history: History | None = None) ->
         "health": {"messages": dict(h.messages), "rejected": dict(h.rejected),
                    "sequence_gaps": dict(h.sequence_gaps), "flushes": h.flushes},
         "streams": {name: {"series": n} for name, n in snap.series_per_stream},
+        "sessions": {name: {"closed_at": at, "series": [series_json(v, at) for v in views]}
+                     for name, at, views in snap.closed},
         "series": [series_json(v, now, history) for v in snap.series.values()],
     }
