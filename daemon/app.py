@@ -21,6 +21,7 @@ from sigmad.daemon.engine.allocator import keep_freed_blocks
 from sigmad.daemon.engine.blas import set_threads as set_blas_threads
 from sigmad.daemon.engine.engine import Engine
 from sigmad.daemon.export.api_state import snapshot_json
+from sigmad.daemon.export.feed import EstimateFeed
 from sigmad.daemon.export.metrics_text import SeriesRenderer
 from sigmad.daemon.export.model import HealthCollector
 from sigmad.daemon.ingest.curve_auth import RefusedCollector, stop_authenticator
@@ -74,11 +75,14 @@ class Daemon:
         self.sources: list[Source] = []
         self.publisher: Publisher | None = None
         self.merger: Merger | None = None
+        self.feed: EstimateFeed | None = None
         try:
             for s in config.sources:
                 self.sources.append(Source(self._ctx, s))
             if config.publish is not None:
                 self.publisher = Publisher(self._ctx, config.publish)
+            if config.feed is not None:
+                self.feed = EstimateFeed(self._ctx, config.feed.bind)
             if config.merge is not None:
                 self.merger = Merger(self._ctx, config)
                 self.registry.register(ShardCollector(self.merger, time.time))
@@ -127,7 +131,7 @@ class Daemon:
     def _close_sockets(self) -> None:
         for s in self.sources:
             s.close()
-        for extra in (self.publisher, self.merger):
+        for extra in (self.publisher, self.merger, self.feed):
             if extra is not None:
                 extra.close()
         stop_authenticator(self._ctx)
@@ -203,6 +207,8 @@ class Daemon:
         rows = self.engine.pending_rows
         t0 = time.perf_counter()
         self.engine.flush(now)
+        if self.feed is not None:
+            self.feed.send_changes(self.engine.snapshot, now)
         self.history.record(self.snapshot, now)
         if rows:
             self.flush_seconds.observe(time.perf_counter() - t0)

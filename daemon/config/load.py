@@ -206,6 +206,13 @@ class PublishConfig:
 
 
 @dataclass(frozen=True, slots=True)
+class FeedConfig:
+    """``[feed]``: this daemon pushes each changed series' estimates on a PUB socket."""
+
+    bind: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
 class MergeConfig:
     """``[merge]``: this daemon pools other daemons' snapshots (a merger)."""
 
@@ -222,6 +229,7 @@ class Config:
     streams: tuple[StreamConfig, ...] = ()
     publish: PublishConfig | None = None
     merge: MergeConfig | None = None
+    feed: FeedConfig | None = None
     origin: str = "<string>"
 
 
@@ -489,7 +497,7 @@ def _names(table: _Table, name: str, what: str) -> tuple[str, ...]:
 
 # --------------------------------------------------------------------------- sections
 
-_TOP_KEYS = ("daemon", "source", "stream", "publish", "merge")
+_TOP_KEYS = ("daemon", "source", "stream", "publish", "merge", "feed")
 
 
 def _daemon(data: object) -> DaemonConfig:
@@ -766,6 +774,13 @@ def _build(data: dict) -> Config:
             raise ConfigError("merge.connect", _MISSING, "a [merge] table needs endpoints")
         merge = MergeConfig(connect=connect, shard_expiry=t.duration("shard_expiry"))
 
+    feed = None
+    if "feed" in data:
+        t = _Table(data["feed"], "feed", FeedConfig)
+        bind = _endpoints(t, "bind", True)
+        if not bind:
+            raise ConfigError("feed.bind", _MISSING, "a [feed] table needs an endpoint")
+        feed = FeedConfig(bind=bind)
     if not sources and merge is None:
         raise ConfigError("source", _MISSING, "add a [[source]] (or a [merge] table) so the "
                           "daemon has something to read")
@@ -796,11 +811,13 @@ def _build(data: dict) -> Config:
     bound: dict[str, str] = {}
     binds = [(f"source[{i}].bind", ep) for i, s in enumerate(sources) for ep in s.bind]
     binds += [("publish.bind", ep) for ep in (publish.bind if publish else ())]
+    binds += [("feed.bind", ep) for ep in (feed.bind if feed else ())]
     for key, ep in binds:
         if ep in bound:
             raise ConfigError(key, ep, f"is already bound by {bound[ep]}")
         bound[ep] = key
-    return Config(daemon=daemon, sources=sources, streams=streams, publish=publish, merge=merge)
+    return Config(daemon=daemon, sources=sources, streams=streams, publish=publish, merge=merge,
+                  feed=feed)
 
 
 # --------------------------------------------------------------------------- entry points
@@ -963,6 +980,8 @@ def describe(config: Config) -> str:
     if config.publish:
         lines.append(f"publish snapshots on {', '.join(config.publish.bind)} every "
                      f"{_show_duration(config.publish.every)}")
+    if config.feed:
+        lines.append(f"push estimates on {', '.join(config.feed.bind)} after every flush")
     if config.merge:
         lines.append(f"merge snapshots from {', '.join(config.merge.connect)}; shards expire "
                      f"after {_show_duration(config.merge.shard_expiry)}")
