@@ -941,7 +941,9 @@ def describe(config: Config) -> str:
     lines.append(f"streams ({len(config.streams)})")
     for st in config.streams:
         labels = ", ".join(st.topic.labels) or "none"
-        lines.append(f"  {st.name}: topic {st.topic.text!r} (labels: {labels})")
+        topics = ", ".join(repr(tpl.text) for tpl in st.templates)
+        lines.append(f"  {st.name}: {'topics' if st.legs else 'topic'} {topics} "
+                     f"(labels: {labels})")
         lines.append(f"    fields      {', '.join(st.fields)} (d = {st.dim})")
         lines.append(f"    half-life   {_show_half_life(st.half_life)}; "
                      f"correction {st.correction}")
