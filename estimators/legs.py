@@ -31,6 +31,18 @@ class Joined(NamedTuple):
     stale: int
 
 
+def _listed(a: np.ndarray) -> list:
+    """A vector as a list with None for NaN (a leg with no value yet)."""
+    return [None if math.isnan(v) else v for v in a.tolist()]
+
+
+def _array(values: list, n: int) -> np.ndarray:
+    out = np.array([math.nan if v is None else float(v) for v in values], dtype=np.float64)
+    if out.shape != (n,) or np.isinf(out).any():
+        raise IncompatibleError("legs.last", values, f"must hold {n} finite numbers or nil")
+    return out
+
+
 class Legs:
     """As-of join of k one-value feeds into rows of k fields.
 
@@ -133,8 +145,8 @@ class Legs:
     # ------------------------------------------------------------- persistence
     def to_dict(self) -> dict:
         return {"kind": self.kind, "version": self.version, "count": self.count,
-                "max_age": self.max_age, "last": self.last.tolist(),
-                "last_time": self.last_time.tolist(), "clock": self.clock}
+                "max_age": self.max_age, "last": _listed(self.last),
+                "last_time": _listed(self.last_time), "clock": self.clock}
 
     @classmethod
     def from_dict(cls, d: dict) -> Legs:
@@ -146,8 +158,10 @@ class Legs:
                                     f"this build reads version {cls.version}")
         try:
             j = cls(int(d["count"]), None if d["max_age"] is None else float(d["max_age"]))
-            j.last = np.asarray(d["last"], dtype=np.float64).reshape(j.count)
-            j.last_time = np.asarray(d["last_time"], dtype=np.float64).reshape(j.count)
+            j.last = _array(d["last"], j.count)
+            j.last_time = _array(d["last_time"], j.count)
+            if not (np.isfinite(j.last) == np.isfinite(j.last_time)).all():
+                raise IncompatibleError("legs.last", d["last"], "and last_time come together")
             j.clock = None if d["clock"] is None else float(d["clock"])
         except (KeyError, TypeError, ValueError) as exc:
             if isinstance(exc, IncompatibleError):

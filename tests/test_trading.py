@@ -458,3 +458,72 @@ def test_bad_session_reset_is_a_clear_error(value, words):
         parse_config(SESSIONS.replace('"17:00 America/New_York"', value))
     for w in words:
         assert w in str(err.value)
+
+
+# ------------------------------------------------------------------ hostile input
+
+HOSTILE = SOURCE + """
+[[stream]]
+name = "pair"
+legs = { x = "lg.a", y = "lg.b" }
+max_leg_age = "5s"
+transform = { x = "log_return", y = "difference" }
+volatility_unit = "1d"
+regression = { y = "y", x = ["x"] }
+session_reset = "17:00 America/New_York"
+
+[[stream]]
+name = "mids"
+topic = "mid.{k}"
+fields = ["v"]
+transform = { v = "log_return" }
+volatility_unit = "1h"
+"""
+
+
+@pytest.mark.slow
+def test_fuzzed_messages_to_legs_and_transforms_never_escape_and_state_stays_finite():
+    from hypothesis import HealthCheck, given, settings
+    from hypothesis import strategies as hst
+    from test_hostile import NOW, bodies, finite_everywhere
+
+    topics = hst.sampled_from([b"lg.a", b"lg.b", b"mid.q", b"mid.r"])
+
+    @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(hst.lists(hst.tuples(topics, bodies), min_size=1, max_size=12))
+    def run(batch):
+        e = _engine(HOSTILE)
+        e.ingest(b"lg.a", encode({"x": [10.0, 11.0]}, time=[NOW - 2, NOW - 1]), NOW)
+        e.ingest(b"lg.b", encode({"y": [5.0, 6.0]}, time=[NOW - 1.5, NOW - 0.5]), NOW)
+        e.ingest(b"mid.q", encode({"v": [3.0, 3.1, 3.2]}, time=[NOW - 3, NOW - 2, NOW - 1]),
+                 NOW)
+        e.flush(NOW)
+        for topic, body in batch:
+            before = sorted(e.export_state(), key=lambda d: (d["stream"], d["labels"]))
+            queued = e.ingest(topic, body, NOW)
+            e.flush(NOW)
+            after = sorted(e.export_state(), key=lambda d: (d["stream"], d["labels"]))
+            if queued == 0:
+                assert after == before
+            assert finite_everywhere(after)
+            for v in e.snapshot.series.values():   # NaN: not defined yet, left out
+                assert not any(math.isinf(x) for _, x in v.volatility)
+    run()
+
+
+def test_the_merge_tier_pools_volatility_as_one_daemon_would():
+    from sigmad.daemon.cluster.merge import pool
+    rng = np.random.default_rng(12)
+    mids = 100.0 * np.exp(np.cumsum(rng.normal(0, 0.001, 200)))
+    times = np.cumsum(rng.exponential(1.0, 200))
+    shards = []
+    for part in (slice(0, 120), slice(119, 200)):   # each shard saw its own span of ticks
+        e = _engine(RETURNS)
+        e.ingest(b"px.aaa", encode({"mid": mids[part], "size": np.ones(200)[part]},
+                                   time=times[part]), now=times[part][-1])
+        e.flush(1.0)
+        shards.append(e.stream("px").series[("aaa",)])
+    pooled = pool(shards)
+    r, dt = np.diff(np.log(mids)), np.diff(times)
+    # no forgetting: the mean of r**2 / dt over every return (numpy)
+    assert pooled.volatility.rate[0] == pytest.approx(float(np.mean(r * r / dt)), rel=1e-12)

@@ -252,8 +252,8 @@ def series_state(s: Series) -> dict:
 def extra_state(s: Series) -> dict:
     """A series' transform, volatility and last spread (absent keys: none configured)."""
     out = {}
-    if s.spread:
-        out["spread"] = list(s.spread)
+    if s.spread:   # NaN (not defined yet) saved as nil: a state holds finite floats only
+        out["spread"] = [v if math.isfinite(v) else None for v in s.spread]
     if s.legs is not None:
         out["legs"] = s.legs.to_dict()
     if s.returns is not None:
@@ -271,9 +271,9 @@ def restore_extra(s: Series, d: dict) -> None:
     spread = d.get("spread")
     if s.regression is not None and spread is not None:
         if not (isinstance(spread, list) and len(spread) == 4
-                and all(type(v) is float for v in spread)):
-            raise IncompatibleError("spread", spread, "must be 4 numbers")
-        s.spread = tuple(spread)
+                and all(v is None or type(v) is float for v in spread)):
+            raise IncompatibleError("spread", spread, "must be 4 numbers or nil")
+        s.spread = tuple(math.nan if v is None else v for v in spread)
     if s.legs is not None and d.get("legs") is not None:
         j = Legs.from_dict(d["legs"])
         if (j.count, j.max_age) != (s.legs.count, s.legs.max_age):
