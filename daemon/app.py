@@ -24,6 +24,7 @@ from sigmad.daemon.engine.allocator import keep_freed_blocks
 from sigmad.daemon.engine.blas import set_threads as set_blas_threads
 from sigmad.daemon.engine.engine import Engine
 from sigmad.daemon.export.api_state import snapshot_json
+from sigmad.daemon.export.feed import EstimateFeed
 from sigmad.daemon.export.metrics_text import SeriesRenderer
 from sigmad.daemon.export.model import HealthCollector
 from sigmad.daemon.ingest.curve_auth import RefusedCollector, stop_authenticator
@@ -124,6 +125,7 @@ class Daemon:
         self.publisher: Publisher | None = None
         self.merger: Merger | None = None
         self.checkpointer = None
+        self.feed: EstimateFeed | None = None
         try:
             self.http = HttpServer(d.http, self._metrics, self._page, self._state,
                                    d.tls_cert, d.tls_key, d.tls_client_ca)
@@ -136,6 +138,8 @@ class Daemon:
                 self.registry.register(ConnectionCollector(lambda: self.sources))
             if config.publish is not None:
                 self.publisher = Publisher(self._ctx, config.publish)
+            if config.feed is not None:
+                self.feed = EstimateFeed(self._ctx, config.feed.bind)
             if config.merge is not None:
                 self.merger = Merger(self._ctx, config)
                 self.registry.register(ShardCollector(self.merger, time.time))
@@ -218,7 +222,7 @@ class Daemon:
     def _close_sockets(self) -> None:
         for s in self.sources:
             s.close()
-        for extra in (self.publisher, self.merger):
+        for extra in (self.publisher, self.merger, self.feed):
             if extra is not None:
                 extra.close()
         stop_authenticator(self._ctx)
@@ -301,6 +305,8 @@ class Daemon:
         rows = self.engine.pending_rows
         t0 = time.perf_counter()
         self.engine.flush(now)
+        if self.feed is not None:
+            self.feed.send_changes(self.engine.snapshot, now)
         self.history.record(self.snapshot, now)
         if rows:
             self.flush_seconds.observe(time.perf_counter() - t0)

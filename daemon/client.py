@@ -26,9 +26,12 @@ from __future__ import annotations
 
 import os
 import socket as _socket
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from types import TracebackType
+from typing import NamedTuple
 
+import msgpack
 import zmq
 import zmq.auth
 from sigmad.daemon.ingest.wire import encode
@@ -165,6 +168,102 @@ class Producer:
         return self._socket.closed
 
     def __enter__(self) -> Producer:
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        self.close()
+
+
+class Estimates(NamedTuple):
+    """One series' estimates from the push feed (``[feed]`` in the daemon's configuration).
+
+    ``series`` is the series' map as ``/api/state`` gives it (schema 1): ``stream``,
+    ``labels``, ``fields``, ``observations``, ``mean``, ``stddev``, ``variance``,
+    ``covariance``, ``correlation``, ``quantiles``, ``volatility``, ``regression``
+    (with ``residual`` and ``residual_z``, the spread and its z-score), ... ; values not
+    defined yet are None.
+    """
+
+    stream: str
+    labels: dict
+    sent_at: float
+    series: dict
+
+
+class Subscriber:
+    """Receives the latest estimates of a daemon's series as they change.
+
+    The daemon sends a series' estimates after every flush that changed them
+    (``daemon.flush_every``, 50 ms by default), so a strategy process sees new
+    data within one flush interval instead of waiting for a scrape. Messages
+    are ``[b"sigmad.estimates.<stream>.", body]`` with body a msgpack map
+    ``{"format": 1, "sent_at": unix seconds, "series": {...}}``; see
+    :mod:`sigmad.daemon.export.feed`.
+
+    Parameters
+    ----------
+    endpoint : str
+        The daemon's ``[feed] bind`` endpoint, e.g. ``tcp://127.0.0.1:7412``.
+    streams : sequence of str
+        Streams to receive; empty: all of them.
+    max_message_bytes : int
+        Larger messages are dropped by ZeroMQ before they reach Python.
+
+    Estimates are not trading advice: they are statistics of the data sent.
+
+    Examples
+    --------
+    >>> import zmq
+    >>> ctx = zmq.Context()
+    >>> with Subscriber("inproc://feed-doc", ["pair"], context=ctx) as sub:
+    ...     sub.receive(timeout=0.01) is None    # nothing published yet
+    True
+    >>> ctx.term()
+    """
+
+    def __init__(self, endpoint: str, streams: Sequence[str] = (), *,
+                 context: zmq.Context | None = None,
+                 max_message_bytes: int = 16 * 2**20) -> None:
+        self.endpoint = endpoint
+        self._context = context if context is not None else zmq.Context.instance()
+        self._socket = self._context.socket(zmq.SUB)
+        self._socket.setsockopt(zmq.LINGER, 0)
+        self._socket.setsockopt(zmq.MAXMSGSIZE, max_message_bytes)
+        for prefix in ([b"sigmad.estimates." + s.encode() + b"." for s in streams]
+                       or [b"sigmad.estimates."]):
+            self._socket.setsockopt(zmq.SUBSCRIBE, prefix)
+        try:
+            self._socket.connect(endpoint)
+        except zmq.ZMQError:
+            self._socket.close(0)
+            raise
+
+    def receive(self, timeout: float | None = None) -> Estimates | None:
+        """The next series' estimates; None when ``timeout`` seconds pass first.
+
+        Raises ValueError on a message of another format (naming the format seen).
+        """
+        if not self._socket.poll(None if timeout is None else int(timeout * 1000)):
+            return None
+        frames = self._socket.recv_multipart()
+        if len(frames) != 2:
+            raise ValueError(f"feed message has {len(frames)} frames, expected 2")
+        body = msgpack.unpackb(frames[1], raw=False)
+        if not isinstance(body, dict) or body.get("format") != 1:
+            seen = body.get("format") if isinstance(body, dict) else type(body).__name__
+            raise ValueError(f"feed message format {seen!r} is not 1: upgrade the client")
+        s = body["series"]
+        return Estimates(s["stream"], s["labels"], float(body["sent_at"]), s)
+
+    def __iter__(self) -> Iterator[Estimates]:
+        while True:
+            yield self.receive()
+
+    def close(self) -> None:
+        self._socket.close(0)
+
+    def __enter__(self) -> Subscriber:
         return self
 
     def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,

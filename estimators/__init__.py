@@ -16,10 +16,13 @@ from .errors import (
     WeightError,
 )
 from .forgetting import HalfLife
+from .legs import Joined, Legs
 from .mixture import Mixture
 from .moments import CORRECTIONS, Moments
 from .regression import Regression
+from .returns import TRANSFORMS, Returns, Stepped
 from .validation import check_batch, clean_batch
+from .volatility import Volatility
 
 __all__ = [
     "CORRECTIONS",
@@ -27,13 +30,19 @@ __all__ = [
     "EstimatorError",
     "HalfLife",
     "IncompatibleError",
+    "Joined",
+    "Legs",
     "Mixture",
     "Moments",
     "NonFiniteError",
     "RangeError",
     "Regression",
+    "Returns",
     "ShapeError",
+    "Stepped",
+    "TRANSFORMS",
     "TimeError",
+    "Volatility",
     "WeightError",
     "check_batch",
     "clean_batch",

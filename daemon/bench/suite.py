@@ -163,6 +163,39 @@ def bench_single(n: int, repeat: int = 3) -> Row:
                f"bare recv+decode {bare:,.0f} msg/s", ours / bare, ">= 0.5", ours / bare >= 0.5)
 
 
+_LEGS = _SCALAR.replace('''name = "bench"
+topic = "bench.{k}"
+fields = ["v"]''', '''name = "pair"
+legs = { alpha = "leg.alpha", beta = "leg.beta" }
+max_leg_age = "1h"
+transform = { alpha = "log_return", beta = "log_return" }
+volatility_unit = "1d"
+regression = { y = "beta", x = ["alpha"] }''')
+
+
+def bench_legs(n: int, repeat: int = 2) -> Row:
+    """Ticks/s of two legs on their own topics, joined, turned into log returns and fitted
+    (regression, moments, volatility), against the plain single-observation path over as
+    many messages, in the same run."""
+    rng = np.random.default_rng(5)
+    t0 = time.time()
+    prices = 100.0 * np.exp(np.cumsum(rng.normal(0.0, 1e-4, n)))
+    legs = [(b"leg.alpha", "alpha"), (b"leg.beta", "beta")]
+    frames = [(legs[i % 2][0], msgpack.packb({"values": {legs[i % 2][1]: float(p)},
+                                              "time": t0 + i * 1e-3, "source": "b", "seq": i}))
+              for i, p in enumerate(prices)]
+    plain = [(b"bench.a", msgpack.packb({"values": {"v": float(v)}, "source": "b", "seq": i}))
+             for i, v in enumerate(rng.normal(size=n))]
+    ours = ref = 0.0
+    for _ in range(repeat):   # interleaved, best of each
+        ref = max(ref, _daemon_rate(_SCALAR, plain, n))
+        # every tick after the first forms a joined row; the first row gives no return
+        ours = max(ours, _daemon_rate(_LEGS, frames, n - 2))
+    return Row("two legs joined, log returns, regression", f"{ours:,.0f} ticks/s",
+               f"single observations {ref:,.0f} obs/s", ours / ref, ">= 0.5",
+               ours / ref >= 0.5)
+
+
 def _batches(n_batches: int, rows: int, seed: int, positive: bool = False):
     rng = np.random.default_rng(seed)
     out, xs, ws = [], [], []
@@ -448,6 +481,7 @@ def run(quick: bool = False, out=sys.stderr) -> list[Row]:
         steps: list[tuple[str, Callable[[], Row | list[Row]]]] = [
             ("single observations", lambda: bench_single(50_000)),
             ("binary batches", lambda: bench_batches(3_000)),
+            ("joined legs", lambda: bench_legs(20_000)),
             ("mixture", lambda: bench_mixture(500)),
             ("scrape", lambda: bench_scrape(2_000)),
             ("many series", lambda: bench_scaling((1_000, 10_000), 100_000, repeat=1)),
@@ -460,6 +494,7 @@ def run(quick: bool = False, out=sys.stderr) -> list[Row]:
         steps = [
             ("single observations", lambda: bench_single(200_000)),
             ("binary batches", lambda: bench_batches(10_000)),
+            ("joined legs", lambda: bench_legs(100_000)),
             ("mixture", lambda: bench_mixture(2000)),
             ("scrape", lambda: bench_scrape(10_000)),
             ("many series", lambda: bench_scaling((1_000, 10_000, 100_000), 300_000)),

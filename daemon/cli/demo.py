@@ -8,8 +8,10 @@ The scenario is our own. A small online bakery, "Crumb & Co", watches:
 - a greenhouse gateway's temperature and humidity per bed, where bed 3's
   sensor is flaky (it sometimes sends garbage, which the daemon rejects and
   counts, and its readings are sent with a low trust weight);
-- two invented grain contracts, "kestrel" and "heron", whose price ratio
-  drifts, with an online hedge ratio (heron regressed on kestrel).
+- two invented grain contracts, "kestrel" and "heron", each published on its
+  own topic, whose price ratio drifts: joined as of each one's latest price,
+  with an online hedge ratio (heron regressed on kestrel), the spread's
+  z-score, and each contract's log returns and their volatility per day.
 """
 
 from __future__ import annotations
@@ -53,10 +55,19 @@ outlier_sigmas = [3.0]
 
 [[stream]]
 name = "grain_pair"
-topic = "px.grain"
-fields = ["kestrel", "heron"]
+legs = {{ kestrel = "px.grain.kestrel", heron = "px.grain.heron" }}
+max_leg_age = "1s"
 half_life = "2000 obs"
 regression = {{ y = "heron", x = ["kestrel"] }}
+
+[[stream]]
+name = "grain_mid"
+topic = "mid.{{contract}}"
+fields = ["mid"]
+transform = {{ mid = "log_return" }}
+volatility_unit = "1d"
+half_life = "2000 obs"
+quantiles = []
 """
 
 
@@ -64,6 +75,7 @@ def _produce(endpoint: str, stop: threading.Event, started: float) -> None:
     rng = np.random.default_rng(2026)
     with Producer(endpoint, source="demo-producer") as p:
         tick = 0
+        log_mid = {"kestrel": math.log(100.0), "heron": math.log(150.0)}   # random walks
         while not stop.is_set():
             age = time.monotonic() - started
             for region in ("north", "south"):
@@ -79,9 +91,15 @@ def _produce(endpoint: str, stop: threading.Event, started: float) -> None:
                     celsius = float("nan")          # the flaky sensor: rejected, counted
                 p.send(f"greenhouse.{bed}", {"celsius": celsius, "humidity": humidity},
                        weight=0.3 if bed == 3 else 1.0)
-            kestrel = 100 + 5 * math.sin(age / 15) + rng.normal(0, 0.5, 20)
-            heron = (1.5 + 0.002 * age) * kestrel + rng.normal(0, 0.3, 20)
-            p.send("px.grain", {"kestrel": kestrel, "heron": heron})
+            kestrel = 100 + 5 * math.sin(age / 15) + rng.normal(0, 0.5, 10)
+            heron = (1.5 + 0.002 * age) * kestrel + rng.normal(0, 0.3, 10)
+            when = time.time() - 0.02 + 0.002 * np.arange(10)   # ticks, interleaved
+            for name, px, at in (("kestrel", kestrel, when), ("heron", heron, when + 0.001)):
+                p.send(f"px.grain.{name}", {name: px}, time=at)   # each on its own topic
+                # mids: about 7 % a day (1e-5 per 2 ms tick, times sqrt(43.2 million ticks))
+                walk = log_mid[name] + np.cumsum(rng.normal(0.0, 1e-5, 10))
+                log_mid[name] = float(walk[-1])
+                p.send(f"mid.{name}", {"mid": np.exp(walk)}, time=at)
             tick += 1
             stop.wait(0.02)
 
@@ -92,7 +110,11 @@ def _line(v) -> str:
     if v.regression is not None and v.regression.ok:
         b = v.regression.coefficients[0]
         se = v.regression.stderr[0]
-        return f"  {name:34} n={v.observations:<7} hedge ratio {b:.4f} ± {se:.4f}"
+        return (f"  {name:34} n={v.observations:<7} hedge ratio {b:.4f} ± {se:.4f}  "
+                f"spread z {v.regression.residual_z:+.2f}")
+    if v.volatility:
+        return f"  {name:34} n={v.observations:<7} " + "  ".join(
+            f"{f} volatility {x:.3f}/day" for f, x in v.volatility)
     parts = [f"{f} {v.mean[i]:.2f}±{v.stddev[i]:.2f}" for i, f in enumerate(v.fields)]
     p99 = [x for i, q, x in v.quantiles if q == 0.99 and i == 0]
     tail = f" p99 {p99[0]:.1f}" if p99 and math.isfinite(p99[0]) else ""

@@ -39,7 +39,7 @@ from sigmad.daemon.config.load import Config
 from sigmad.daemon.engine.engine import Series, StreamState, restore_series, series_state, view_of
 from sigmad.daemon.engine.snapshot import Health, SeriesView, Snapshot
 from sigmad.daemon.export.model import METRICS
-from sigmad.estimators import IncompatibleError
+from sigmad.estimators import IncompatibleError, Volatility
 
 log = logging.getLogger("sigmad.merge")
 
@@ -129,6 +129,10 @@ def pool(parts: list[Series]) -> Series:
     if mix is not None and mix.components > st.cfg.mixture.components:
         mix = mix.reduce(st.cfg.mixture.components)
     out.mixture = mix
+    if first.volatility is not None:   # pools exactly, like the moments
+        out.volatility = Volatility.from_dict(first.volatility.to_dict())
+        for p in parts[1:]:
+            out.volatility.merge(p.volatility)
     out.observations = sum(p.observations for p in parts)
     out.outliers = [sum(c) for c in zip(*(p.outliers for p in parts), strict=True)]
     out.thresholds = [t.copy() for t in first.thresholds] or ()

@@ -30,8 +30,9 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Literal
 
+from sigmad.daemon.config.session import SessionError, SessionReset
 from sigmad.daemon.ingest.topics import LABEL_NAME, SEPARATORS, TopicError, TopicTemplate
-from sigmad.estimators import CORRECTIONS, HalfLife
+from sigmad.estimators import CORRECTIONS, TRANSFORMS, HalfLife
 
 #: Labels our metrics set themselves, so a topic template may not capture them
 #: (plus every name starting with ``__``, which Prometheus reserves).
@@ -202,10 +203,26 @@ class StreamConfig:
     idle_expiry: float | None = _duration(None)
     # per field, in field order: histogram bounds and exceedance thresholds (() = none)
     thresholds: tuple[tuple[float, ...], ...] = ()
+    transform: tuple[tuple[str, str], ...] | None = None   # (field, "log_return" | ...)
+    volatility_unit: float | None = _duration(None)
+    legs: tuple[tuple[str, TopicTemplate], ...] | None = None   # (field, its topic)
+    max_leg_age: float | None = _duration(None)
+    session_reset: SessionReset | None = None
+
+    @property
+    def templates(self) -> tuple[TopicTemplate, ...]:
+        """Every topic template the stream takes: its legs', or its one topic."""
+        return tuple(tpl for _, tpl in self.legs) if self.legs else (self.topic,)
 
     @property
     def dim(self) -> int:
         return len(self.fields)
+
+    @property
+    def transforms(self) -> tuple[str | None, ...]:
+        """Each field's transform, in field order (None: the field passes through)."""
+        kinds = dict(self.transform or ())
+        return tuple(kinds.get(f) for f in self.fields)
 
 
 @dataclass(frozen=True, slots=True)
@@ -214,6 +231,13 @@ class PublishConfig:
 
     bind: tuple[str, ...]
     every: float = _duration(2.0)
+
+
+@dataclass(frozen=True, slots=True)
+class FeedConfig:
+    """``[feed]``: this daemon pushes each changed series' estimates on a PUB socket."""
+
+    bind: tuple[str, ...]
 
 
 @dataclass(frozen=True, slots=True)
@@ -233,6 +257,7 @@ class Config:
     streams: tuple[StreamConfig, ...] = ()
     publish: PublishConfig | None = None
     merge: MergeConfig | None = None
+    feed: FeedConfig | None = None
     origin: str = "<string>"
 
 
@@ -542,7 +567,7 @@ def _names(table: _Table, name: str, what: str) -> tuple[str, ...]:
 # --------------------------------------------------------------------------- sections
 
 MAX_THRESHOLDS = 32   # per field: each is a histogram bucket and two gauges per series
-_TOP_KEYS = ("daemon", "source", "stream", "publish", "merge")
+_TOP_KEYS = ("daemon", "source", "stream", "publish", "merge", "feed")
 
 
 def _daemon(data: object) -> DaemonConfig:
@@ -827,16 +852,18 @@ def _stream(data: object, path: str) -> StreamConfig:
     if not LABEL_NAME.fullmatch(name):
         raise ConfigError(t.key("name"), name, "is not a valid stream name (letters, digits "
                           "and _, not starting with a digit)")
-    try:
-        topic = TopicTemplate.parse(t.string("topic"), t.key("topic"),
-                                    t.string("separator", None, SEPARATORS))
-    except TopicError as exc:
-        raise ConfigError(exc.key, exc.value, exc.message) from None
-    for label in topic.labels:
-        if label in RESERVED_LABELS or label.startswith("__"):
-            raise ConfigError(t.key("topic"), topic.text, f"captures the label {{{label}}}, "
-                              "which sigmad's metrics (or Prometheus) reserve; rename it")
-    fields = _names(t, "fields", "field")
+    separator = t.string("separator", None, SEPARATORS)
+    legs = _legs(t, name, separator)
+    topic = legs[0][1] if legs else _template(t.string("topic"), t.key("topic"), separator)
+    fields = _names(t, "fields", "field") if not legs or "fields" in t.data else \
+        tuple(f for f, _ in legs)
+    if legs and sorted(fields) != sorted(f for f, _ in legs):
+        raise ConfigError(t.key("fields"), list(fields), f"must name each leg of stream "
+                          f"{name!r} once ({[f for f, _ in legs]})")
+    age = t.duration("max_leg_age")
+    if age is not None and not legs:
+        raise ConfigError(t.key("max_leg_age"), t.data["max_leg_age"],
+                          f"needs legs: stream {name!r} takes one topic")
     half_life = t.raw("half_life")
     if half_life is not None:
         half_life = parse_half_life(half_life, t.key("half_life"))
@@ -852,6 +879,10 @@ def _stream(data: object, path: str) -> StreamConfig:
     regression = t.raw("regression")
     idle = t.raw("idle_expiry")
     thresholds = t.raw("thresholds", None)   # None: absent (the schema's () is the result)
+    transform, unit = _transform(t, name, fields)
+    if transform and isinstance(mixture, dict) and mixture.get("log") is True:
+        raise ConfigError(t.key("mixture.log"), True, f"cannot fit the log of returns "
+                          f"(stream {name!r} transforms {dict(transform)}; returns change sign)")
     return StreamConfig(
         name=name, topic=topic, fields=fields, half_life=half_life,
         correction=t.string("correction", choices=CORRECTIONS),
@@ -864,7 +895,97 @@ def _stream(data: object, path: str) -> StreamConfig:
         idle_expiry=None if idle is None else parse_duration(idle, t.key("idle_expiry")),
         thresholds=() if thresholds is None else
         _thresholds(thresholds, t.key("thresholds"), name, fields),
+        transform=transform, volatility_unit=unit, legs=legs, max_leg_age=age,
+        session_reset=_session(t, name),
     )
+
+
+def _session(t: _Table, name: str) -> SessionReset | None:
+    text = t.raw("session_reset")
+    if text is None:
+        return None
+    try:
+        return SessionReset.parse(text)
+    except SessionError as exc:
+        raise ConfigError(t.key("session_reset"), text, f"{exc} (stream {name!r})") from None
+
+
+def _template(text: str, key: str, separator: str | None = None) -> TopicTemplate:
+    try:
+        topic = TopicTemplate.parse(text, key, separator)
+    except TopicError as exc:
+        raise ConfigError(exc.key, exc.value, exc.message) from None
+    for label in topic.labels:
+        if label in RESERVED_LABELS or label.startswith("__"):
+            raise ConfigError(key, topic.text, f"captures the label {{{label}}}, "
+                              "which sigmad's metrics (or Prometheus) reserve; rename it")
+    return topic
+
+
+def _legs(t: _Table, name: str,
+          separator: str | None = None) -> tuple[tuple[str, TopicTemplate], ...] | None:
+    """``legs = { field = "topic", ... }``: each field from its own topic."""
+    table = t.raw("legs")
+    if table is None:
+        return None
+    if "topic" in t.data:
+        raise ConfigError(t.key("topic"), t.data["topic"], f"and legs cannot both be given: "
+                          f"stream {name!r} takes its topics from its legs")
+    if not isinstance(table, dict) or len(table) < 2:
+        raise ConfigError(t.key("legs"), table, 'must be a table of at least two fields and '
+                          'their topics, e.g. { alpha = "px.alpha", beta = "px.beta" }')
+    legs = []
+    for f, text in table.items():
+        key = t.key(f"legs.{f}")
+        if not LABEL_NAME.fullmatch(f):
+            raise ConfigError(key, text, "names an invalid field (letters, digits and _)")
+        if not isinstance(text, str):
+            raise ConfigError(key, text, "must be a topic string")
+        tpl = _template(text, key, separator)
+        if legs and tpl.labels != legs[0][1].labels:
+            raise ConfigError(key, text, f"must capture the same labels as the first leg "
+                              f"{list(legs[0][1].labels)} (stream {name!r})")
+        for g, other in legs:
+            if other.overlaps(tpl):
+                raise ConfigError(key, text, f"could take the same topics as leg {g!r}")
+        legs.append((f, tpl))
+    return tuple(legs)
+
+
+def _deliverable(tpl: TopicTemplate, sources: tuple[SourceConfig, ...]) -> bool:
+    """Whether some source could receive topics of ``tpl`` (a PULL takes everything, a
+    SUB the topics starting with one of its prefixes)."""
+    for s in sources:
+        if s.socket != "sub":
+            return True
+        if any(tpl.prefix.startswith(p) or (p.startswith(tpl.prefix) and "{" in tpl.text)
+               or tpl.text.startswith(p) for p in s.topics):
+            return True
+    return False
+
+
+def _transform(t: _Table, name: str, fields: tuple[str, ...]
+               ) -> tuple[tuple[tuple[str, str], ...] | None, float | None]:
+    """``transform = { field = "log_return" | "difference" }`` and ``volatility_unit``."""
+    table = t.raw("transform")
+    unit = t.duration("volatility_unit")
+    if table is None:
+        if unit is not None:
+            raise ConfigError(t.key("volatility_unit"), t.data["volatility_unit"],
+                              f"needs a transform: stream {name!r} has no return field")
+        return None, None
+    if not isinstance(table, dict) or not table:
+        raise ConfigError(t.key("transform"), table, 'must be a table such as '
+                          '{ mid = "log_return" } naming at least one field')
+    for f, kind in table.items():
+        if f not in fields:
+            raise ConfigError(t.key(f"transform.{f}"), kind, f"names no field of stream "
+                              f"{name!r} (its fields are {list(fields)})")
+        if kind not in TRANSFORMS:
+            quoted = " | ".join(f'"{k}"' for k in TRANSFORMS)
+            raise ConfigError(t.key(f"transform.{f}"), kind,
+                              f"is not a transform of stream {name!r}: use {quoted}")
+    return tuple((f, table[f]) for f in fields if f in table), unit
 
 
 def _array_of_tables(data: dict, name: str) -> list:
@@ -898,6 +1019,13 @@ def _build(data: dict) -> Config:
             raise ConfigError("merge.connect", _MISSING, "a [merge] table needs endpoints")
         merge = MergeConfig(connect=connect, shard_expiry=t.duration("shard_expiry"))
 
+    feed = None
+    if "feed" in data:
+        t = _Table(data["feed"], "feed", FeedConfig)
+        bind = _endpoints(t, "bind", True)
+        if not bind:
+            raise ConfigError("feed.bind", _MISSING, "a [feed] table needs an endpoint")
+        feed = FeedConfig(bind=bind)
     if not sources and merge is None:
         raise ConfigError("source", _MISSING, "add a [[source]] (or a [merge] table) so the "
                           "daemon has something to read")
@@ -913,18 +1041,28 @@ def _build(data: dict) -> Config:
                               f"is already the name of stream[{seen[s.name]}]")
         seen[s.name] = i
         for j in range(i):
-            if streams[j].topic.overlaps(s.topic):
-                raise ConfigError(f"stream[{i}].topic", s.topic.text,
-                                  f"could take the same topics as stream[{j}] "
-                                  f"({streams[j].topic.text!r}); make a literal segment differ")
+            for mine in s.templates:
+                for theirs in streams[j].templates:
+                    if theirs.overlaps(mine):
+                        raise ConfigError(f"stream[{i}].{'legs' if s.legs else 'topic'}",
+                                          mine.text, f"could take the same topics as stream"
+                                          f"[{j}] ({theirs.text!r}); make a literal segment "
+                                          "differ")
+        for f, tpl in s.legs or ():
+            if sources and not _deliverable(tpl, sources):
+                raise ConfigError(f"stream[{i}].legs.{f}", tpl.text, "is a topic no source "
+                                  f"subscribes to (stream {s.name!r}); add its prefix to a "
+                                  "sub source's topics")
     bound: dict[str, str] = {}
     binds = [(f"source[{i}].bind", ep) for i, s in enumerate(sources) for ep in s.bind]
     binds += [("publish.bind", ep) for ep in (publish.bind if publish else ())]
+    binds += [("feed.bind", ep) for ep in (feed.bind if feed else ())]
     for key, ep in binds:
         if ep in bound:
             raise ConfigError(key, ep, f"is already bound by {bound[ep]}")
         bound[ep] = key
-    return Config(daemon=daemon, sources=sources, streams=streams, publish=publish, merge=merge)
+    return Config(daemon=daemon, sources=sources, streams=streams, publish=publish, merge=merge,
+                  feed=feed)
 
 
 # --------------------------------------------------------------------------- entry points
@@ -1056,7 +1194,9 @@ def describe(config: Config) -> str:
     lines.append(f"streams ({len(config.streams)})")
     for st in config.streams:
         labels = ", ".join(st.topic.labels) or "none"
-        lines.append(f"  {st.name}: topic {st.topic.text!r} (labels: {labels})")
+        topics = ", ".join(repr(tpl.text) for tpl in st.templates)
+        lines.append(f"  {st.name}: {'topics' if st.legs else 'topic'} {topics} "
+                     f"(labels: {labels})")
         lines.append(f"    fields      {', '.join(st.fields)} (d = {st.dim})")
         lines.append(f"    half-life   {_show_half_life(st.half_life)}; "
                      f"correction {st.correction}")
@@ -1082,11 +1222,25 @@ def describe(config: Config) -> str:
         if st.outlier_sigmas:
             lines.append(f"    outliers    beyond {', '.join(f'{s:g}' for s in st.outlier_sigmas)}"
                          f" sigma, after {st.outlier_warmup} observations")
+        if st.legs:
+            lines.append("    legs        " + ", ".join(f"{f} <- {tpl.text!r}"
+                                                        for f, tpl in st.legs)
+                         + (f"; a leg older than {_show_duration(st.max_leg_age)} forms no row"
+                            if st.max_leg_age else ""))
+        if st.transform:
+            lines.append("    transform   " + ", ".join(f"{f} -> {k}" for f, k in st.transform)
+                         + (f"; volatility per {_show_duration(st.volatility_unit)}"
+                            if st.volatility_unit else ""))
+        if st.session_reset:
+            lines.append(f"    sessions    reset daily at {st.session_reset.text}, closing "
+                         "values exported")
         expiry = _show_duration(st.idle_expiry) if st.idle_expiry else "never"
         lines.append(f"    series      at most {st.max_series}; idle expiry {expiry}")
     if config.publish:
         lines.append(f"publish snapshots on {', '.join(config.publish.bind)} every "
                      f"{_show_duration(config.publish.every)}")
+    if config.feed:
+        lines.append(f"push estimates on {', '.join(config.feed.bind)} after every flush")
     if config.merge:
         lines.append(f"merge snapshots from {', '.join(config.merge.connect)}; shards expire "
                      f"after {_show_duration(config.merge.shard_expiry)}")

@@ -20,7 +20,15 @@ from sigmad.daemon.config.load import Config, StreamConfig
 from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
-from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
+from sigmad.estimators import (
+    IncompatibleError,
+    Legs,
+    Mixture,
+    Moments,
+    Regression,
+    Returns,
+    Volatility,
+)
 from sigmad.estimators.model_tail import nominal_rate, tail_probability
 from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
 from sigmad.estimators.validation import screen_batch
@@ -99,6 +107,10 @@ class Series:
     extras: list | tuple = ()                     # (row index, weight|None, time|None)
     thresholds: list | tuple = ()                 # Thresholds per field of st.threshold_at
     # () until needed: an idle series should cost as little memory as it can
+    returns: Returns | None = None                # the stream's transform: previous row
+    volatility: Volatility | None = None          # of the return fields
+    spread: tuple = ()                            # the last row's (x0, y, residual, z)
+    legs: Legs | None = None                      # a joined stream's latest value per leg
 
     def queue(self, chunk: tuple) -> None:
         if self.pending:
@@ -125,19 +137,66 @@ class Series:
         self.rows, self.extras = (), ()
 
 
+@dataclass(slots=True)
+class LegSeries(Series):
+    """One label set of one leg: its rows go to the joined stream's series."""
+
+    leg: LegState | None = None
+
+    def queue(self, chunk: tuple) -> None:
+        self.leg.forward(self.labels, chunk)
+
+
+class LegState:
+    """One leg of a stream whose fields come from several topics: routed and decoded as a
+    stream of the leg's one field; its rows are queued, tagged with the leg, on the joined
+    stream's series of the same labels (created there, up to its max_series)."""
+
+    def __init__(self, joined: StreamState, index: int, field: str, topic, engine) -> None:
+        self.joined, self.index, self.engine = joined, index, engine
+        self.cfg = joined.cfg
+        self.name = joined.name
+        self.topic = topic
+        self.fields = (field,)
+        self.dim = 1
+        self.series: dict[tuple[str, ...], LegSeries] = {}
+
+    def new_series(self, labels: tuple[str, ...]) -> LegSeries:
+        return LegSeries(self, labels, None, None, None, [], leg=self)
+
+    def forward(self, labels: tuple[str, ...], chunk: tuple) -> None:
+        st, engine = self.joined, self.engine
+        series = st.series.get(labels)
+        if series is None:
+            if len(st.series) >= st.cfg.max_series:
+                engine.reject("series_limit", chunk[0].shape[0],
+                              topic=_route_name((st, labels)), now=chunk[3])
+                return
+            series = st.series[labels] = st.new_series(labels)
+        series.queue((*chunk, self.index))
+        engine._dirty[id(series)] = series
+
+
 class StreamState:
     """A configured stream and its live series."""
 
     def __init__(self, cfg: StreamConfig) -> None:
         self.cfg = cfg
         self.name = cfg.name
+        self.topic = None if cfg.legs else cfg.topic   # None: routed through its legs
+        self.next_reset: float | None = None           # the next session boundary
         self.fields = tuple(cfg.fields)
         self.dim = len(self.fields)
         self.series: dict[tuple[str, ...], Series] = {}
         self.kinds = _kinds(cfg)
         self.field_list = list(cfg.fields)
         self.quantile_at = tuple((i, q) for q in cfg.quantiles for i in range(len(cfg.fields)))
-        self.time_based = cfg.half_life is not None and not cfg.half_life.by_count
+        # a transform orders rows by event time: every row needs one
+        self.time_based = cfg.half_life is not None and not cfg.half_life.by_count \
+            or cfg.transform is not None
+        self.return_cols = [i for i, k in enumerate(cfg.transforms) if k]
+        self.volatility_fields = tuple(self.fields[i] for i in self.return_cols) \
+            if cfg.volatility_unit is not None else ()
         reg = cfg.regression
         self.reg_x = None if reg is None else [self.fields.index(f) for f in reg.x]
         self.reg_y = None if reg is None else self.fields.index(reg.y)
@@ -146,6 +205,9 @@ class StreamState:
         # (field index, bounds) of each field with thresholds
         self.threshold_at = tuple((i, b) for i, b in enumerate(cfg.thresholds) if b)
         self.outlier_rates = tuple(nominal_rate(k) for k in cfg.outlier_sigmas)
+        legs = [f for f, _ in cfg.legs or ()]
+        self.leg_order = [legs.index(f) for f in self.fields] if legs and \
+            legs != self.field_list else None
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
         cfg = self.cfg
@@ -159,9 +221,16 @@ class StreamState:
             mix = Mixture(m.components, dim=self.dim, covariance=m.covariance, log=m.log,
                           half_life=cfg.half_life, warmup=m.warmup, seed=m.seed)
         key = (self.name, tuple(zip(cfg.topic.labels, labels, strict=True)))
-        return Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
-                      [0] * len(cfg.outlier_sigmas), key=key,
-                      thresholds=self.new_thresholds())
+        s = Series(self, labels, Moments(self.dim, cfg.half_life), reg, mix,
+                   [0] * len(cfg.outlier_sigmas), key=key,
+                   thresholds=self.new_thresholds())
+        if cfg.legs:
+            s.legs = Legs(len(cfg.legs), cfg.max_leg_age)
+        if cfg.transform is not None:
+            s.returns = Returns(cfg.transforms)
+            if self.volatility_fields:
+                s.volatility = Volatility(len(self.return_cols), cfg.half_life)
+        return s
 
     def new_thresholds(self) -> list[Thresholds] | tuple:
         return [Thresholds(b, self.cfg.half_life) for _, b in self.threshold_at] or ()
@@ -186,10 +255,56 @@ def series_state(s: Series) -> dict:
         "moments": s.moments.to_dict(),
         "regression": None if s.regression is None else s.regression.to_dict(),
         "mixture": None if s.mixture is None else s.mixture.to_dict(),
+        **extra_state(s),
     }
     if s.thresholds:   # absent for streams without thresholds, as before they existed
         d["threshold_counts"] = [th.to_dict() for th in s.thresholds]
     return d
+
+
+def extra_state(s: Series) -> dict:
+    """A series' transform, volatility and last spread (absent keys: none configured)."""
+    out = {}
+    if s.spread:   # NaN (not defined yet) saved as nil: a state holds finite floats only
+        out["spread"] = [v if math.isfinite(v) else None for v in s.spread]
+    if s.legs is not None:
+        out["legs"] = s.legs.to_dict()
+    if s.returns is not None:
+        out["returns"] = s.returns.to_dict()
+    if s.volatility is not None:
+        out["volatility"] = s.volatility.to_dict()
+    return out
+
+
+def restore_extra(s: Series, d: dict) -> None:
+    """Put back what ``extra_state`` saved; a checkpoint from before transforms (or
+    before this stream had one) leaves the fresh states. Raises IncompatibleError when
+    a saved state does not fit the stream."""
+    st = s.stream
+    spread = d.get("spread")
+    if s.regression is not None and spread is not None:
+        if not (isinstance(spread, list) and len(spread) == 4
+                and all(v is None or type(v) is float for v in spread)):
+            raise IncompatibleError("spread", spread, "must be 4 numbers or nil")
+        s.spread = tuple(math.nan if v is None else v for v in spread)
+    if s.legs is not None and d.get("legs") is not None:
+        j = Legs.from_dict(d["legs"])
+        if (j.count, j.max_age) != (s.legs.count, s.legs.max_age):
+            raise IncompatibleError("legs", j.count, "leg count or max_leg_age differ from "
+                                    "the stream's")
+        s.legs = j
+    if s.returns is not None and d.get("returns") is not None:
+        r = Returns.from_dict(d["returns"])
+        if r.kinds != s.returns.kinds:
+            raise IncompatibleError("returns", list(r.kinds),
+                                    f"the stream now transforms {list(s.returns.kinds)}")
+        s.returns = r
+    if s.volatility is not None and d.get("volatility") is not None:
+        v = Volatility.from_dict(d["volatility"])
+        if (v.dim, v.half_life) != (len(st.return_cols), st.cfg.half_life):
+            raise IncompatibleError("volatility", v.dim, "fields or half-life differ from "
+                                    "the stream's")
+        s.volatility = v
 
 
 def restore_series(st: StreamState, d: dict) -> Series:
@@ -219,6 +334,7 @@ def restore_series(st: StreamState, d: dict) -> Series:
         if s.mixture is not None:
             s.mixture = Mixture.from_dict(d["mixture"])
         check_estimators(st, s.regression, s.mixture)
+        restore_extra(s, d)
         outliers = [int(c) for c in d["outliers"]]
         if len(outliers) != len(d["thresholds"]):
             raise IncompatibleError("outliers", outliers,
@@ -314,7 +430,12 @@ def view_of(s: Series) -> SeriesView:
             ok=bool(rg.ok), terms=terms, coefficients=coef, stderr=se,
             residual_stddev=float(rg.residual_stddev(corr)),
             residual_dof=float(rg.residual_dof(corr)),
-            r_squared=float(rg.r_squared), y=cfg.regression.y)
+            r_squared=float(rg.r_squared), y=cfg.regression.y,
+            latest=s.spread[:2], residual=s.spread[2] if s.spread else math.nan,
+            residual_z=s.spread[3] if s.spread else math.nan)
+    volatility = () if s.volatility is None else tuple(zip(
+        st.volatility_fields, _floats(s.volatility.volatility(cfg.volatility_unit)),
+        strict=True))
     means, variances = _floats(m.mean), _floats(m.variance(corr))
     # positional, in SeriesView's field order: 22 keywords cost 2 us a view
     return SeriesView(
@@ -322,7 +443,12 @@ def view_of(s: Series) -> SeriesView:
         cfg.half_life, m.weight_sum, m.weight_sq_sum, m.effective_samples, means,
         variances, covariance, correlation, st.quantile_at, quantiles,
         cfg.outlier_sigmas, tuple(s.outliers), mixture, regression, _floats(m.scatter),
-        *(_threshold_views(s, means, variances) if s.thresholds else ()))
+        *(_threshold_views(s, means, variances) if s.thresholds else _NO_THRESHOLDS),
+        volatility)
+
+
+#: the threshold fields of a SeriesView without thresholds (see ``_threshold_views``)
+_NO_THRESHOLDS = ((), (), (), (), ())
 
 
 def _threshold_views(s: Series, means: tuple, variances: tuple) -> tuple:
@@ -359,8 +485,14 @@ class Engine:
     def __init__(self, config: Config) -> None:
         self.config = config
         self.streams = [StreamState(s) for s in config.streams]
+        # what topics route to: plain streams, and each leg of a joined one
+        self._routable = [st for st in self.streams if st.topic is not None] + [
+            LegState(st, i, f, tpl, self) for st in self.streams
+            for i, (f, tpl) in enumerate(st.cfg.legs or ())]
         self._routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
         self._dirty: dict[int, Series] = {}
+        self._sessions = [st for st in self.streams if st.cfg.session_reset is not None]
+        self._closed: dict[str, tuple] = {}   # stream -> (boundary, closing views)
         self._views: dict = {}
         self.rejected: Counter[str] = Counter()
         self.messages: Counter[str] = Counter()
@@ -403,8 +535,8 @@ class Engine:
         except UnicodeDecodeError:
             text = None
         if text is not None:
-            for st in self.streams:
-                labels = st.cfg.topic.match(text)
+            for st in self._routable:
+                labels = st.topic.match(text)
                 if labels is not None:
                     found = (st, labels)
                     break
@@ -824,17 +956,24 @@ class Engine:
     # -------------------------------------------------------------- flush
     def flush(self, now: float) -> Snapshot:
         """Fold every pending micro-batch into its series and publish a new snapshot."""
+        if self._sessions:
+            self._reset_sessions(now)
         dirty, self._dirty = self._dirty, {}
         self.pending_rows = 0
         views = self._views
         changed = False
         for series in dirty.values():
+            if series.moments is None:   # a leg: its rows went to the joined series
+                continue
             if self._fold(series, now):
                 views = views if changed else dict(views)
                 changed = True
                 views[series.key] = view_of(series)
-            elif series.observations == 0 and not series.pending:
+            elif series.observations == 0 and not series.pending and (
+                    series.returns is None or series.returns.clock is None) and (
+                    series.legs is None or not series.legs.seen):
                 # every row of a new series was dropped: the rejected input leaves no trace
+                # (a series whose first price is kept for its first return stays)
                 st = series.stream
                 if st.series.get(series.labels) is series:
                     del st.series[series.labels]
@@ -844,14 +983,51 @@ class Engine:
         self.snapshot = self._make_snapshot(now)
         return self.snapshot
 
+    def _reset_sessions(self, now: float) -> None:
+        """At a stream's session boundary: keep its series' read-outs as the closing values
+        and start every series afresh. Rows still waiting, the previous price of a
+        transform and the legs' latest values carry over (they are the feed, not an
+        estimate). The first boundary counts from the oldest restored update, so a
+        checkpoint from an earlier session closes at once. O(series of the stream)."""
+        for st in self._sessions:
+            reset = st.cfg.session_reset
+            if st.next_reset is None:
+                seen = [s.last_update for s in st.series.values() if s.last_update > 0.0]
+                st.next_reset = reset.next_after(min(seen) if seen else now)
+            if now < st.next_reset:
+                continue
+            views = self._views
+            self._closed[st.name] = (st.next_reset, tuple(
+                views[s.key] for s in st.series.values() if s.key in views))
+            fresh = {}
+            for labels, s in st.series.items():
+                keep = (s.returns is not None and s.returns.clock is not None) or \
+                    (s.legs is not None and s.legs.seen)
+                if not (s.pending or s.rows or keep):
+                    continue
+                n = st.new_series(labels)
+                n.returns, n.legs = s.returns, s.legs
+                n.pending, n.rows, n.extras = s.pending, s.rows, s.extras
+                fresh[labels] = n
+                if self._dirty.pop(id(s), None) is not None:
+                    self._dirty[id(n)] = n
+            st.series = fresh
+            self._views = {k: v for k, v in views.items() if k[0] != st.name}
+            st.next_reset = reset.next_after(now)
+
     def _fold(self, series: Series, now: float) -> bool:
         chunks, series.pending = series.pending, ()
         st = series.stream
-        x, w, t = _concat(chunks, st.time_based)
+        if series.legs is not None:
+            x, w, t = self._join(series, chunks, now)
+        else:
+            x, w, t = _concat(chunks, st.time_based)
         batch, dropped = screen_batch(x, st.dim, w, t, self.config.daemon.max_abs_value)
         for reason, count in dropped.items():
             self.reject(reason, count, topic=_where(series), now=now)
         x, w, t = batch
+        if series.returns is not None and x.shape[0]:
+            x, w, t = self._transform(series, x, w, t, now)
         if st.log_mixture and x.shape[0] and not (x > 0.0).all():
             positive = (x > 0.0).all(axis=1)
             self.reject("not_positive", int((~positive).sum()), topic=_where(series), now=now)
@@ -876,7 +1052,7 @@ class Engine:
         # rows are checked: the estimators' unchecked fold paths
         m._fold(x, w, t)
         if series.regression is not None:
-            series.regression._fold(x[:, st.reg_xy], w, t)
+            self._fold_regression(series, x[:, st.reg_xy], w, t)
         if series.mixture is not None:
             series.mixture._fold(x, w, t)
         for (i, _), th in zip(st.threshold_at, series.thresholds, strict=True):
@@ -885,6 +1061,59 @@ class Engine:
         series.version += 1
         series.last_update = now
         return True
+
+    @staticmethod
+    def _fold_regression(series: Series, xy: np.ndarray, w, t) -> None:
+        """Fold rows [X | y] in, the last one on its own: its residual against the fit of
+        every row before it (the spread) and that residual standardised by its prediction
+        standard error are kept for export. O(n k**2)."""
+        rg = series.regression
+        if xy.shape[0] > 1:
+            rg._fold(xy[:-1], None if w is None else w[:-1], None if t is None else t[:-1])
+        last_x, last_y = xy[-1:, :-1], xy[-1:, -1]
+        if rg.ok:
+            residual = float(last_y[0] - rg.predict(last_x)[0])
+            z = float(rg.standardized_residual(last_x, last_y,
+                                               series.stream.cfg.correction)[0])
+        else:
+            residual = z = math.nan
+        series.spread = (float(last_x[0, 0]), float(last_y[0]), residual, z)
+        rg._fold(xy[-1:], None if w is None else w[-1:], None if t is None else t[-1:])
+
+    def _join(self, series: Series, chunks: list, now: float) -> tuple:
+        """The rows of a joined stream from its legs' ticks (``Legs.join``): ticks screened
+        one by one first, late and stale ones counted. O(n log n)."""
+        x = np.concatenate([np.column_stack((c[0][:, 0], np.full(c[0].shape[0], c[4])))
+                            for c in chunks])
+        w = None
+        if any(c[1] is not None for c in chunks):
+            w = np.concatenate([np.ones(len(c[0])) if c[1] is None else c[1] for c in chunks])
+        t = np.concatenate([np.full(len(c[0]), c[3]) if c[2] is None else c[2]
+                            for c in chunks])
+        (x, w, t), dropped = screen_batch(x, 2, w, t, self.config.daemon.max_abs_value)
+        where = _where(series)
+        for reason, count in dropped.items():
+            self.reject(reason, count, topic=where, now=now)
+        out = series.legs.join(x[:, 0], x[:, 1].astype(np.intp), t, w)
+        for reason, count in (("late", out.late), ("stale_leg", out.stale)):
+            if count:
+                self.reject(reason, count, topic=where, now=now)
+        # joined rows in field order (legs are in the order the legs table gives)
+        order = series.stream.leg_order
+        return out.values[:, order] if order is not None else out.values, out.weights, \
+            out.times
+
+    def _transform(self, series: Series, x: np.ndarray, w, t, now: float) -> tuple:
+        """Rows turned into returns (``Returns.apply``), late and non-positive ones counted;
+        the volatility takes the return fields. O(n log n)."""
+        step = series.returns.apply(x, t, w)
+        for reason, count in (("late", step.late), ("not_positive", step.not_positive)):
+            if count:
+                self.reject(reason, count, topic=_where(series), now=now)
+        if series.volatility is not None and step.values.shape[0]:
+            series.volatility._fold(step.values[:, series.stream.return_cols], step.spans,
+                                    step.weights, step.times)
+        return step.values, step.weights, step.times
 
     def _distance(self, series: Series, x: np.ndarray) -> np.ndarray:
         """Outlier distance under the state before the update (NaN never exceeds)."""
@@ -904,7 +1133,8 @@ class Engine:
         return Snapshot(taken_at=now, series=self._views,
                         series_per_stream=tuple((st.name, len(st.series))
                                                 for st in self.streams),
-                        health=health)
+                        health=health, closed=tuple(
+                            (name, *c) for name, c in sorted(self._closed.items())))
 
     def expire_idle(self, now: float) -> int:
         """Drop series idle for longer than their stream's idle_expiry; returns how many."""

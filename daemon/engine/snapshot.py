@@ -38,6 +38,11 @@ class RegressionView:
     residual_dof: float
     r_squared: float
     y: str = ""                               # the response field
+    # the last row folded in: (first x, y), its residual against the fit of the rows
+    # before it (the spread) and that residual over its prediction standard error
+    latest: tuple[float, ...] = ()
+    residual: float = math.nan
+    residual_z: float = math.nan
 
 
 @dataclass(frozen=True, slots=True)
@@ -75,6 +80,7 @@ class SeriesView:
     value_sums: tuple[float, ...] = ()
     exceedance: tuple[tuple[float, ...], ...] = ()
     exceedance_observed: tuple[tuple[float, ...], ...] = ()
+    volatility: tuple[tuple[str, float], ...] = ()   # (return field, per volatility_unit)
 
     @property
     def key(self) -> tuple[str, tuple[tuple[str, str], ...]]:
@@ -122,6 +128,8 @@ class Snapshot:
     series: dict = field(default_factory=dict)          # key -> SeriesView (never mutated)
     series_per_stream: tuple[tuple[str, int], ...] = ()
     health: Health = field(default_factory=Health)
+    # per stream with sessions: (stream, boundary unix seconds, read-outs at the close)
+    closed: tuple[tuple[str, float, tuple[SeriesView, ...]], ...] = ()
 
     def by_stream(self) -> dict[str, list[SeriesView]]:
         out: dict[str, list[SeriesView]] = {}

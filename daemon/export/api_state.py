@@ -6,6 +6,8 @@ Schema (version 1)::
      "health": {"messages": {endpoint: n}, "rejected": {reason: n},
                 "sequence_gaps": {producer: n}, "flushes": n},
      "streams": {name: {"series": n}},
+     "sessions": {name: {"closed_at": unix seconds, "series": [series as below, as of
+                                                               the close]}},
      "series": [{"stream": name, "labels": {label: value}, "fields": [..],
                  "observations": n, "update_age_seconds": s,
                  "weight_sum": W, "effective_samples": n_eff,
@@ -17,6 +19,7 @@ Schema (version 1)::
                  "thresholds": [{"field": f, "bounds": [..], "cumulative": [.., total],
                                  "sum": x, "exceedance": [..],
                                  "exceedance_observed": [..]}, ..],
+                 "volatility": {return field: per volatility_unit},
                  "mixture": null | {"warm": bool, "log": bool, "weights": [..],
                                     "means": [[..]], "stddevs": [[..]],
                                     "average_loglik": x, "reseeds": n,
@@ -24,7 +27,8 @@ Schema (version 1)::
                  "regression": null | {"ok": bool, "y": field, "terms": [..],
                                        "coefficients": [..], "stderr": [..],
                                        "residual_stddev": x, "residual_dof": x,
-                                       "r_squared": x},
+                                       "r_squared": x, "latest": [x0, y],
+                                       "residual": x, "residual_z": x},
                  "history": [[unix seconds, [mean per field]], ..]}]}
 
 Values that are not defined yet (NaN) are written as null. ``history`` holds the
@@ -68,6 +72,7 @@ def series_json(v: SeriesView, now: float, history: History | None = None) -> di
                        for (i, b), c, s, p, q in zip(v.threshold_at, v.buckets, v.value_sums,
                                                      v.exceedance, v.exceedance_observed,
                                                      strict=True)],
+        "volatility": {name: _num(x) for name, x in v.volatility},
         "mixture": None, "regression": None,
         "history": ([[t, _nums(m)] for t, m in history.of(v.key)] if history is not None
                     else []),
@@ -86,7 +91,9 @@ def series_json(v: SeriesView, now: float, history: History | None = None) -> di
                              "coefficients": _nums(r.coefficients), "stderr": _nums(r.stderr),
                              "residual_stddev": _num(r.residual_stddev),
                              "residual_dof": _num(r.residual_dof),
-                             "r_squared": _num(r.r_squared)}
+                             "r_squared": _num(r.r_squared), "latest": _nums(r.latest),
+                             "residual": _num(r.residual),
+                             "residual_z": _num(r.residual_z)}
     return out
 
 
@@ -97,5 +104,7 @@ def snapshot_json(snap: Snapshot, now: float, history: History | None = None) ->
         "health": {"messages": dict(h.messages), "rejected": dict(h.rejected),
                    "sequence_gaps": dict(h.sequence_gaps), "flushes": h.flushes},
         "streams": {name: {"series": n} for name, n in snap.series_per_stream},
+        "sessions": {name: {"closed_at": at, "series": [series_json(v, at) for v in views]}
+                     for name, at, views in snap.closed},
         "series": [series_json(v, now, history) for v in snap.series.values()],
     }

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Iterator
+from itertools import chain
 
 from prometheus_client.metrics_core import Metric
 from prometheus_client.utils import floatToGoString
@@ -51,6 +52,12 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_regression_stderr": ("gauge", "Standard error of a least-squares coefficient."),
     "sigmad_regression_residual_stddev": ("gauge", "Noise standard deviation of the fitted line."),
     "sigmad_regression_r_squared": ("gauge", "Coefficient of determination of the fitted line."),
+    "sigmad_regression_residual": ("gauge", "The last row's residual y - fit (the spread), "
+                                            "against the fit of the rows before it."),
+    "sigmad_regression_residual_z": ("gauge", "The last row's residual over its prediction "
+                                              "standard error."),
+    "sigmad_volatility": ("gauge", "Volatility of a return field per the stream's "
+                                   "volatility_unit: sqrt of the decayed mean of r^2/dt."),
     "sigmad_observations": ("counter", "Accepted observations."),
     "sigmad_outliers": ("counter",
                         "Observations beyond a distance threshold, scored before the update."),
@@ -62,13 +69,30 @@ METRICS: dict[str, tuple[str, str]] = {
     "sigmad_merge_shards": ("gauge", "Shards whose snapshots a merger pools (live) or has "
                                      "left out after they went silent (expired)."),
     "sigmad_shard_age_seconds": ("gauge", "Seconds since a live shard's latest snapshot arrived."),
+    "sigmad_session_close_timestamp_seconds": ("gauge", "Unix time of the stream's latest "
+                                                        "session boundary."),
+    "sigmad_session_close_mean": ("gauge", "Mean of a field when the latest session closed."),
+    "sigmad_session_close_stddev": ("gauge", "Standard deviation of a field when the latest "
+                                             "session closed."),
+    "sigmad_session_close_weight": ("gauge", "Decayed sum of weights when the latest session "
+                                             "closed."),
+    "sigmad_session_close_observations": ("gauge", "Observations in the latest closed "
+                                                   "session."),
+    "sigmad_session_close_volatility": ("gauge", "Volatility of a return field when the "
+                                                 "latest session closed."),
+    "sigmad_session_close_regression_coefficient": ("gauge", "Least-squares coefficient of "
+                                                             "a term when the latest session "
+                                                             "closed."),
 }
 
 
 HEALTH = ("sigmad_series", "sigmad_rejected", "sigmad_messages", "sigmad_sequence_gaps")
 #: Exported by the merge tier's own collector (daemon/merge.py), not from a snapshot.
 MERGE_METRICS = ("sigmad_merge_shards", "sigmad_shard_age_seconds")
-SERIES = tuple(name for name in METRICS if name not in HEALTH and name not in MERGE_METRICS)
+#: The closing values of the latest session of each stream with session_reset.
+SESSION = tuple(name for name in METRICS if name.startswith("sigmad_session_close_"))
+SERIES = tuple(name for name in METRICS if name not in HEALTH and name not in MERGE_METRICS
+               and name not in SESSION)
 
 Sample = tuple[str, dict[str, str], float]   # (family, labels, value)
 #: A histogram's samples name their part; the family is the histogram's name.
@@ -95,6 +119,8 @@ def static_samples(v: SeriesView) -> Iterator[Sample]:
         yield "sigmad_covariance", dict(base, field=v.fields[i], field_b=v.fields[j]), c
     for i, j, r in v.correlation:
         yield "sigmad_correlation", dict(base, field=v.fields[i], field_b=v.fields[j]), r
+    for f, vol in v.volatility:
+        yield "sigmad_volatility", dict(base, field=f), vol
     for i, q, value in v.quantiles:
         yield "sigmad_quantile", dict(per_field[i], q=_fmt_q(q)), value
     for thr, count in v.outliers:
@@ -130,6 +156,8 @@ def static_samples(v: SeriesView) -> Iterator[Sample]:
             yield "sigmad_regression_stderr", dict(base, term=term), se
         yield "sigmad_regression_residual_stddev", base, rg.residual_stddev
         yield "sigmad_regression_r_squared", base, rg.r_squared
+        yield "sigmad_regression_residual", base, rg.residual
+        yield "sigmad_regression_residual_z", base, rg.residual_z
 
 
 def dynamic_samples(v: SeriesView, now: float) -> Iterator[Sample]:
@@ -153,6 +181,25 @@ def health_samples(snap: Snapshot) -> Iterator[Sample]:
         yield "sigmad_messages", {"endpoint": endpoint}, float(count)
     for producer, count in h.sequence_gaps:
         yield "sigmad_sequence_gaps", {"producer": producer}, float(count)
+
+
+def session_samples(snap: Snapshot) -> Iterator[Sample]:
+    """The closing values of each stream's latest session, until the next one closes."""
+    for stream, boundary, views in snap.closed:
+        yield "sigmad_session_close_timestamp_seconds", {"stream": stream}, boundary
+        for v in views:
+            base = series_labels(v)
+            yield "sigmad_session_close_observations", base, float(v.observations)
+            yield "sigmad_session_close_weight", base, v.weights_at(boundary)[0]
+            for i, f in enumerate(v.fields):
+                yield "sigmad_session_close_mean", dict(base, field=f), v.mean[i]
+                yield "sigmad_session_close_stddev", dict(base, field=f), v.stddev[i]
+            for f, vol in v.volatility:
+                yield "sigmad_session_close_volatility", dict(base, field=f), vol
+            rg = v.regression
+            if rg is not None and rg.ok:
+                for term, b in zip(rg.terms, rg.coefficients, strict=True):
+                    yield "sigmad_session_close_regression_coefficient", dict(base, term=term), b
 
 
 def sample_name(family: str) -> str:
@@ -200,7 +247,8 @@ class HealthCollector:
         self._current = current
 
     def collect(self) -> Iterator[Metric]:
-        return _families(HEALTH, health_samples(self._current()))
+        snap = self._current()
+        return _families(HEALTH + SESSION, chain(health_samples(snap), session_samples(snap)))
 
     def describe(self) -> list:
         return []   # unchecked collector: its samples depend on the traffic

@@ -19,6 +19,8 @@ from sigmad.daemon.engine.engine import (
     Series,
     StreamState,
     check_estimators,
+    extra_state,
+    restore_extra,
     restore_thresholds,
     view_of,
 )
@@ -48,6 +50,8 @@ class StreamColumns(NamedTuple):
     # per series, a list of Thresholds.to_dict (one per field with thresholds); None in
     # checkpoints written before thresholds existed
     threshold_counts: list | None = None
+    extras: list | None = None            # engine.extra_state per series (transform or
+    #                                       regression streams)
 
     @property
     def n(self) -> int:
@@ -80,7 +84,9 @@ def collect(st: StreamState) -> StreamColumns:
         MomentsColumns.of(_get("moments", series), st.dim, cfg.half_life),
         None if cfg.regression is None else [s.regression.to_dict() for s in series],
         None if cfg.mixture is None else [s.mixture.to_dict() for s in series],
-        [[th.to_dict() for th in s.thresholds] for s in series] if st.threshold_at else None)
+        [[th.to_dict() for th in s.thresholds] for s in series] if st.threshold_at else None,
+        None if cfg.transform is None and cfg.regression is None and not cfg.legs else
+        [extra_state(s) for s in series])
 
 
 def pack(c: StreamColumns) -> dict:
@@ -95,6 +101,7 @@ def pack(c: StreamColumns) -> dict:
         "moments": c.moments.to_dict(),
         "regression": c.regression, "mixture": c.mixture,
         "threshold_counts": c.threshold_counts,
+        **({} if c.extras is None else {"extras": c.extras}),
     }
 
 
@@ -137,9 +144,11 @@ def unpack(d: object) -> StreamColumns:
         raise IncompatibleError("labels", f"{name}", f"must be {width} lists of {n} strings")
     labels = list(zip(*cols, strict=True)) if width else [()] * n
     per_series = []
-    for key in ("regression", "mixture", "threshold_counts"):
+    for key in ("regression", "mixture", "threshold_counts", "extras"):
         v = d.get(key)
-        if v is not None and not (isinstance(v, list) and len(v) == n):
+        if v is not None and not (isinstance(v, list) and len(v) == n
+                                  and (key != "extras" or all(isinstance(e, dict)
+                                                                   for e in v))):
             raise IncompatibleError(key, type(v).__name__, f"must be absent or a list of {n}")
         per_series.append(v)
     return StreamColumns(
@@ -191,22 +200,28 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     regs = c.regression or [None] * c.n
     mixes = c.mixture or [None] * c.n
     counts = c.threshold_counts or [None] * c.n
+    # a checkpoint from before the stream had a transform: fresh transform states
+    extra = c.extras or [{}] * c.n
     out, dropped = [], []
     rows = zip(c.labels, c.moments.states(), c.observations.tolist(), c.version.tolist(),
-               c.last_update.tolist(), regs, mixes, counts, strict=True)
-    for i, (labels, m, obs, version, last, reg, mix, tc) in enumerate(rows):
+               c.last_update.tolist(), regs, mixes, counts, extra, strict=True)
+    for i, (labels, m, obs, version, last, reg, mix, tc, ext) in enumerate(rows):
         try:
             reg = None if reg is None else Regression.from_dict(reg)
             mix = None if mix is None else Mixture.from_dict(mix)
             check_estimators(st, reg, mix)
             ths = restore_thresholds(st, tc)
+            s = Series(st, labels, m, reg, mix,   # positional: keywords cost here
+                       outliers[i] if keep_outliers else [0] * width, obs, version, last,
+                       (name, tuple(zip(label_names, labels, strict=True))))
+            s.thresholds = ths
+            if cfg.transform is not None or cfg.legs:
+                fresh = st.new_series(labels)
+                s.returns, s.volatility, s.legs = fresh.returns, fresh.volatility, fresh.legs
+            restore_extra(s, ext)
         except IncompatibleError as exc:
             dropped.append((c.where(i), str(exc)))
             continue
-        s = Series(st, labels, m, reg, mix,   # positional: keywords cost here
-                   outliers[i] if keep_outliers else [0] * width, obs, version, last,
-                   (name, tuple(zip(label_names, labels, strict=True))))
-        s.thresholds = ths
         out.append(s)
     return out, dropped
 
@@ -220,7 +235,7 @@ def views(st: StreamState, series: list[Series],
     already). O(n (d**2 + quantiles))."""
     cfg = st.cfg
     if cfg.regression is not None or cfg.mixture is not None or st.threshold_at \
-            or not series:
+            or cfg.transform is not None or cfg.legs or not series:
         return [view_of(s) for s in series]
     n, d, corr = len(series), st.dim, cfg.correction
     m = moments if moments is not None and moments.n == n else \
@@ -261,7 +276,8 @@ def states(c: StreamColumns) -> list[dict]:
             "outliers": c.outliers[i].tolist(), "thresholds": c.thresholds,
             "moments": moments[i].to_dict(),
             "regression": None if c.regression is None else c.regression[i],
-            "mixture": None if c.mixture is None else c.mixture[i]})
+            "mixture": None if c.mixture is None else c.mixture[i],
+            **({} if c.extras is None else c.extras[i])})
         if c.threshold_counts is not None:
             d["threshold_counts"] = c.threshold_counts[i]
     return out

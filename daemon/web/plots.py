@@ -134,6 +134,19 @@ def _cov2(v: SeriesView, i: int, j: int) -> np.ndarray:
     return np.array([[v.variance[i], cij], [cij, v.variance[j]]])
 
 
+def _latest(r, sx: Scale, sy: Scale) -> str:
+    """The last row as a point (kept inside the frame), titled with its spread and z."""
+    if len(r.latest) != 2 or not all(map(math.isfinite, r.latest)):
+        return ""
+    x = min(max(r.latest[0], sx.domain[0]), sx.domain[1])
+    y = min(max(r.latest[1], sy.domain[0]), sy.domain[1])
+    spread = (f"residual {r.residual:.4g}, z = {r.residual_z:.2f}"
+              if math.isfinite(r.residual_z) else "residual not defined yet")
+    return (f'<circle class="latest" cx="{float(sx(x)):.1f}" cy="{float(sy(y)):.1f}" r="3.5" '
+            f'fill="{BAND}" stroke="{INK}" stroke-width="1"><title>latest row: '
+            f'{esc(spread)}</title></circle>')
+
+
 def pair_figure(v: SeriesView) -> str:
     """Covariance ellipses of two fields, and the regression line and band if any."""
     i, j = _pair(v)
@@ -159,6 +172,7 @@ def pair_figure(v: SeriesView) -> str:
         clip = lambda a: np.clip(a, ylo, yhi)  # noqa: E731 (keep the band inside the frame)
         body.append(area(sx(xs), sy(clip(hi)), sy(clip(lo)), BAND, 0.16))
         body.append(line(sx(xs), sy(clip(centre)), BAND, 1.8, cls="fit"))
+        body.append(_latest(r, sx, sy))
     for n, dash in ((1.0, None), (2.0, "5 3")):
         e = ellipse(mean, cov, n, 72)
         body.append(polygon(sx(e[:, 0]), sy(e[:, 1]), TOTAL, 0.07 if n == 1 else 0.0, 1.6,
