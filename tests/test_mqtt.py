@@ -33,9 +33,9 @@ from sigmad.daemon.ingest.wire import WireError, encode
 class Broker:
     """``mosquitto -c FILE`` on a free loopback port; sessions kept in memory only."""
 
-    def __init__(self, tmp: Path) -> None:
+    def __init__(self, tmp: Path, port: int | None = None) -> None:
         self.binary = need_binary("mosquitto")
-        self.port = free_port()
+        self.port = port or free_port()
         self.conf = tmp / "mosquitto.conf"
         # max_queued_messages: room for what a stopped daemon's session collects
         self.conf.write_text(f"listener {self.port} 127.0.0.1\nallow_anonymous true\n"
@@ -99,7 +99,7 @@ def publisher(broker):
     p.close()
 
 
-def config(broker: Broker, client_id: str = "sigmad-test", extra_daemon: str = "",
+def config(url: str, client_id: str = "sigmad-test", extra_daemon: str = "",
            extra_source: str = "") -> str:
     return f"""
 [daemon]
@@ -110,7 +110,7 @@ max_clock_skew = "1h"
 
 [[source]]
 socket = "mqtt"
-connect = "{broker.url}"
+connect = "{url}"
 topics = ["greenhouse/+/climate", "tank/#"]
 client_id = "{client_id}"
 qos = 1
@@ -159,7 +159,7 @@ def observations(d: Sigmad, stream: str, **labels) -> float:
 
 def test_json_msgpack_and_number_payloads_reach_their_series_as_numpy_says(
         tmp_path, broker, publisher):
-    d = start(tmp_path, config(broker), broker.url)
+    d = start(tmp_path, config(broker.url), broker.url)
     try:
         rng = np.random.default_rng(7)
         now = time.time()
@@ -219,7 +219,7 @@ BAD_PAYLOADS = [
 
 
 def test_malformed_payloads_are_counted_by_reason_and_never_fatal(tmp_path, broker, publisher):
-    d = start(tmp_path, config(broker, extra_daemon="max_message_bytes = 2048"), broker.url)
+    d = start(tmp_path, config(broker.url, extra_daemon="max_message_bytes = 2048"), broker.url)
     try:
         for payload, _ in BAD_PAYLOADS:
             publisher.send("greenhouse/bad/climate", payload)
@@ -245,7 +245,7 @@ def test_malformed_payloads_are_counted_by_reason_and_never_fatal(tmp_path, brok
 
 def test_sigterm_then_restart_with_the_same_client_id_counts_every_message_once(
         tmp_path, broker, publisher):
-    text = config(broker, client_id="gw-restart",
+    text = config(broker.url, client_id="gw-restart",
                   extra_daemon='state_file = "gw.state"\ncheckpoint_every = "1h"')
     sent: list[float] = []
     stop_sending = threading.Event()
@@ -294,8 +294,8 @@ def test_sigterm_then_restart_with_the_same_client_id_counts_every_message_once(
 def test_two_daemons_in_one_shared_group_split_the_load_and_pool_to_the_whole(
         tmp_path, broker, publisher):
     group = 'shared_group = "sigmad"'
-    a = start(tmp_path, config(broker, "gw-a", extra_source=group), broker.url, "a.toml")
-    b = start(tmp_path, config(broker, "gw-b", extra_source=group), broker.url, "b.toml")
+    a = start(tmp_path, config(broker.url, "gw-a", extra_source=group), broker.url, "a.toml")
+    b = start(tmp_path, config(broker.url, "gw-b", extra_source=group), broker.url, "b.toml")
     try:
         xs = np.random.default_rng(3).gamma(2.0, 3.0, size=400)
         for x in xs:
@@ -324,7 +324,7 @@ def test_two_daemons_in_one_shared_group_split_the_load_and_pool_to_the_whole(
 
 
 def test_a_restarted_broker_is_reconnected_and_resubscribed(tmp_path, broker):
-    d = start(tmp_path, config(broker, "gw-reconnect"), broker.url)
+    d = start(tmp_path, config(broker.url, "gw-reconnect"), broker.url)
     endpoint = f"mqtt {broker.url}"
     try:
         pub = Publisher(broker)
@@ -350,6 +350,63 @@ def test_a_restarted_broker_is_reconnected_and_resubscribed(tmp_path, broker):
         assert d.proc.poll() is None
     finally:
         d.stop()
+
+
+def test_a_daemon_started_before_its_broker_connects_when_the_broker_comes(tmp_path):
+    need_binary("mosquitto")
+    port = free_port()
+    url = f"mqtt://127.0.0.1:{port}"
+    d = Sigmad(tmp_path, config(url, "gw-late"))   # starts and serves /metrics with no broker
+    try:
+        assert value(d.metrics(), "sigmad_source_connected", endpoint=f"mqtt {url}") == 0
+        broker = Broker(tmp_path, port)
+        try:
+            wait_until(lambda: value(d.metrics(), "sigmad_source_connected",
+                                     endpoint=f"mqtt {url}") == 1,
+                       timeout=40, what="the first connection")
+            pub = Publisher(broker)
+            pub.send("tank/late/level", b"4.5")
+            pub.close()
+            d.wait_for("sigmad_observations_total", 1, stream="level", tank="late")
+        finally:
+            broker.stop()
+    finally:
+        d.stop()
+
+
+# --------------------------------------------------------------------------- the hand-off
+
+class _Message:
+    """What paho hands to on_message: topic, payload, QoS 0 (nothing to acknowledge)."""
+
+    def __init__(self, topic: str, payload: bytes) -> None:
+        self.topic, self.payload, self.qos, self.mid = topic, payload, 0, 0
+
+
+def test_a_full_hand_off_drops_and_counts_instead_of_growing(tmp_path):
+    from sigmad.daemon.engine.engine import Engine
+    from sigmad.daemon.ingest.mqtt import MqttSource
+
+    cfg = parse_config(config(f"mqtt://127.0.0.1:{free_port()}", "gw-full",   # nobody listens
+                              extra_daemon="max_message_bytes = 1024",
+                              extra_source="high_water_mark = 5").replace("{HTTP}", "127.0.0.1:0"))
+    src = MqttSource(cfg.sources[0], cfg.daemon.max_message_bytes)
+    try:
+        woken = socket.socket(fileno=socket.dup(src.socket))
+        woken.setblocking(False)
+        for i in range(20):
+            src._on_message(src.client, None, _Message("tank/t/level", str(i).encode()))
+        src._on_message(src.client, None, _Message("tank/t/level", b"1" * 2000))
+        assert woken.recv(16) == b"\0"   # woken once, at half the high-water mark
+        woken.close()
+        engine = Engine(cfg)
+        assert src.drain(engine, time.time()) == 5
+        engine.flush(time.time())
+        assert engine.messages[src.label] == 21
+        assert engine.rejected["queue_full"] == 15 and engine.rejected["too_large"] == 1
+        assert sum(v.observations for v in engine.snapshot.series.values()) == 5
+    finally:
+        src.close()
 
 
 # --------------------------------------------------------------------------- payloads
@@ -444,6 +501,7 @@ fields = ["v"]
     ('connect = "mqtt://h"\ntopics = ["$share/g/a/+"]', "topics", "shared_group"),
     ('connect = "mqtt://h"\ntopics = []', "topics", "at least one"),
     ('connect = "mqtt://h"\ntopics = ["a/+"]\nqos = 3', "qos", "0 to 2"),
+    ('connect = "mqtt://h"\ntopics = ["a/+"]\nqos = 2', "qos", "not supported"),
     ('connect = "mqtt://h"\ntopics = ["a/+"]\nshared_group = "a/b"', "shared_group", "without"),
     ('connect = "mqtt://h"\ntopics = ["a/+"]\nusername = "u"\npassword_file = "missing.txt"',
      "password_file", "cannot be read"),
