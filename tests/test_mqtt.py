@@ -374,6 +374,52 @@ def test_a_daemon_started_before_its_broker_connects_when_the_broker_comes(tmp_p
         d.stop()
 
 
+def test_mqtts_with_a_client_certificate_and_a_password_file(tmp_path):
+    import getpass
+
+    from test_security import make_pki
+    make_pki(tmp_path)
+    subprocess.run([need_binary("mosquitto_passwd"), "-b", "-c", str(tmp_path / "passwd"),
+                    "gw", "s3cret"], check=True, capture_output=True, timeout=30)
+    broker = Broker(tmp_path)
+    broker.stop()
+    broker.conf.write_text(
+        f"listener {broker.port} 127.0.0.1\nuser {getpass.getuser()}\npersistence false\n"
+        f"cafile {tmp_path}/ca.crt\ncertfile {tmp_path}/server.crt\n"
+        f"keyfile {tmp_path}/server.key\nrequire_certificate true\n"
+        f"allow_anonymous false\npassword_file {tmp_path}/passwd\n")
+    broker.start()
+    url = f"mqtts://127.0.0.1:{broker.port}"
+    tls = (f'tls_ca = "{tmp_path}/ca.crt"\ntls_cert = "{tmp_path}/client.crt"\n'
+           f'tls_key = "{tmp_path}/client.key"\nusername = "gw"\n')
+    (tmp_path / "good.pw").write_text("s3cret\n")
+    (tmp_path / "bad.pw").write_text("guess\n")
+    good = start(tmp_path, config(url, "gw-tls", extra_source=tls
+                                  + f'password_file = "{tmp_path}/good.pw"'), url, "good.toml")
+    bad = Sigmad(tmp_path, config(url, "gw-tls-bad", extra_source=tls
+                                  + f'password_file = "{tmp_path}/bad.pw"'), name="bad.toml")
+    try:
+        pub = paho.Client(CallbackAPIVersion.VERSION2, protocol=paho.MQTTv5)
+        pub.tls_set(ca_certs=f"{tmp_path}/ca.crt", certfile=f"{tmp_path}/client.crt",
+                    keyfile=f"{tmp_path}/client.key")
+        pub.username_pw_set("gw", "s3cret")
+        pub.connect("127.0.0.1", broker.port)
+        pub.loop_start()
+        pub.publish("tank/tls/level", b"2.5", qos=1).wait_for_publish(10)
+        pub.disconnect()
+        pub.loop_stop()
+        parsed = good.wait_for("sigmad_observations_total", 1, stream="level", tank="tls")
+        assert value(parsed, "sigmad_mean", stream="level", tank="tls", field="cm") == 2.5
+        wait_until(lambda: "refused the connection" in bad.log.read_text(),
+                   what="the refusal to be logged")
+        assert value(bad.metrics(), "sigmad_source_connected", endpoint=f"mqtt {url}") == 0
+        assert bad.proc.poll() is None   # a refused login is retried, not fatal
+    finally:
+        good.stop()
+        bad.stop()
+        broker.stop()
+
+
 # --------------------------------------------------------------------------- the hand-off
 
 class _Message:
@@ -527,6 +573,16 @@ def test_a_shared_group_subscribes_with_the_share_prefix():
     assert m.subscriptions(cfg.sources[0].topics) == ("$share/g/a/+", "$share/g/b/#")
     m = parse_config(mqtt_config('connect = "mqtt://[::1]"\ntopics = ["#"]')).sources[0].mqtt
     assert (m.host, m.port, m.tls) == ("::1", 1883, False)   # MQTT's registered port (IANA)
+
+
+def test_a_stream_names_its_separator_in_the_config():
+    text = mqtt_config('connect = "mqtt://h"\ntopics = ["#"]').replace(
+        'topic = "a/{b}"', 'topic = "plant/v1.2/{b}"\nseparator = "/"')
+    topic = parse_config(text).streams[0].topic
+    assert topic.match("plant/v1.2/b7") == ("b7",)
+    with pytest.raises(ConfigError) as exc:
+        parse_config(text.replace('separator = "/"', 'separator = ":"'))
+    assert exc.value.key == "stream[0].separator"
 
 
 def test_time_text_is_bounded():
