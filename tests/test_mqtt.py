@@ -8,6 +8,7 @@ counts are compared with what the test published.
 from __future__ import annotations
 
 import doctest
+import json
 import math
 import socket
 import subprocess
@@ -21,12 +22,14 @@ import paho.mqtt.client as paho
 import pytest
 from conftest import need_binary
 from harness import Sigmad, free_port, value
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from paho.mqtt.enums import CallbackAPIVersion
 from sigmad.daemon.config.load import ConfigError, parse_config
 from sigmad.daemon.ingest import payloads
 from sigmad.daemon.ingest.payloads import to_body
 from sigmad.daemon.ingest.topics import TopicError, TopicTemplate
-from sigmad.daemon.ingest.wire import WireError, encode
+from sigmad.daemon.ingest.wire import REASONS, WireError, decode, encode
 
 # --------------------------------------------------------------------------- a broker
 
@@ -473,6 +476,40 @@ def test_deeply_nested_json_is_refused_not_fatal():
     with pytest.raises(WireError) as exc:
         to_body(deep, 1 << 20)
     assert exc.value.reason == "not_json"
+
+
+def test_a_json_object_with_values_is_a_wire_body_written_in_json():
+    msg = msgpack.unpackb(to_body(b'{"values": {"v": [1.5, 2.5]}, "weight": [1, 2], '
+                                  b'"time": "2026-01-02T00:00:00Z", "seq": 7}', 1024))
+    assert msg == {"values": {"v": [1.5, 2.5]}, "weight": [1, 2], "time": 1767312000.0,
+                   "seq": 7}
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.one_of(st.binary(max_size=300),
+                 st.recursive(st.none() | st.booleans() | st.floats() | st.integers()
+                              | st.text(max_size=20),
+                              lambda c: st.lists(c, max_size=4)
+                              | st.dictionaries(st.sampled_from(["v", "time", "weight",
+                                                                 "values", "x"]), c,
+                                                max_size=4), max_leaves=12).map(
+                     lambda o: json.dumps(o).encode())))
+def test_any_payload_is_a_body_or_a_counted_reason(payload):
+    try:
+        body = to_body(payload, 1024)
+    except WireError as exc:
+        assert exc.reason in payloads.PAYLOAD_REASONS + REASONS
+        return
+    try:   # what the engine does next: decode it, or reject it by reason
+        decode(body, ("v",), max_bytes=1 << 16, max_rows=1000)
+    except WireError as exc:
+        assert exc.reason in REASONS
+
+
+def test_a_json_wire_body_msgpack_cannot_carry_is_refused():
+    with pytest.raises(WireError) as exc:
+        to_body(b'{"values": {"v": 123456789012345678901234567890}}', 1 << 20)
+    assert exc.value.reason == "bad_value"
 
 
 def test_a_msgpack_body_passes_unchanged():
