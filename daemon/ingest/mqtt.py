@@ -63,7 +63,7 @@ WAKE_AT, WAKE_BYTES = 512, 1 << 20
 # The broker drops packets above the MQTT 5 maximum packet size we announce:
 # max_message_bytes of payload plus room for the longest topic and properties.
 _PACKET_OVERHEAD = 65_536 + 1_024
-_MAX_PACKET = 268_435_455 + 5   # the protocol's own limit (MQTT 5.0, 2.2.3)
+_MAX_PACKET = 268_435_455 + 5   # the protocol's own limit: a 4-byte remaining length + header
 
 
 def _read_password(cfg: SourceConfig) -> str | None:
