@@ -8,6 +8,7 @@ counts are compared with what the test published.
 from __future__ import annotations
 
 import doctest
+import json
 import math
 import socket
 import subprocess
@@ -21,21 +22,23 @@ import paho.mqtt.client as paho
 import pytest
 from conftest import need_binary
 from harness import Sigmad, free_port, value
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from paho.mqtt.enums import CallbackAPIVersion
 from sigmad.daemon.config.load import ConfigError, parse_config
 from sigmad.daemon.ingest import payloads
 from sigmad.daemon.ingest.payloads import to_body
 from sigmad.daemon.ingest.topics import TopicError, TopicTemplate
-from sigmad.daemon.ingest.wire import WireError, encode
+from sigmad.daemon.ingest.wire import REASONS, WireError, decode, encode
 
 # --------------------------------------------------------------------------- a broker
 
 class Broker:
     """``mosquitto -c FILE`` on a free loopback port; sessions kept in memory only."""
 
-    def __init__(self, tmp: Path) -> None:
+    def __init__(self, tmp: Path, port: int | None = None) -> None:
         self.binary = need_binary("mosquitto")
-        self.port = free_port()
+        self.port = port or free_port()
         self.conf = tmp / "mosquitto.conf"
         # max_queued_messages: room for what a stopped daemon's session collects
         self.conf.write_text(f"listener {self.port} 127.0.0.1\nallow_anonymous true\n"
@@ -99,7 +102,7 @@ def publisher(broker):
     p.close()
 
 
-def config(broker: Broker, client_id: str = "sigmad-test", extra_daemon: str = "",
+def config(url: str, client_id: str = "sigmad-test", extra_daemon: str = "",
            extra_source: str = "") -> str:
     return f"""
 [daemon]
@@ -110,7 +113,7 @@ max_clock_skew = "1h"
 
 [[source]]
 socket = "mqtt"
-connect = "{broker.url}"
+connect = "{url}"
 topics = ["greenhouse/+/climate", "tank/#"]
 client_id = "{client_id}"
 qos = 1
@@ -159,7 +162,7 @@ def observations(d: Sigmad, stream: str, **labels) -> float:
 
 def test_json_msgpack_and_number_payloads_reach_their_series_as_numpy_says(
         tmp_path, broker, publisher):
-    d = start(tmp_path, config(broker), broker.url)
+    d = start(tmp_path, config(broker.url), broker.url)
     try:
         rng = np.random.default_rng(7)
         now = time.time()
@@ -219,7 +222,7 @@ BAD_PAYLOADS = [
 
 
 def test_malformed_payloads_are_counted_by_reason_and_never_fatal(tmp_path, broker, publisher):
-    d = start(tmp_path, config(broker, extra_daemon="max_message_bytes = 2048"), broker.url)
+    d = start(tmp_path, config(broker.url, extra_daemon="max_message_bytes = 2048"), broker.url)
     try:
         for payload, _ in BAD_PAYLOADS:
             publisher.send("greenhouse/bad/climate", payload)
@@ -245,7 +248,7 @@ def test_malformed_payloads_are_counted_by_reason_and_never_fatal(tmp_path, brok
 
 def test_sigterm_then_restart_with_the_same_client_id_counts_every_message_once(
         tmp_path, broker, publisher):
-    text = config(broker, client_id="gw-restart",
+    text = config(broker.url, client_id="gw-restart",
                   extra_daemon='state_file = "gw.state"\ncheckpoint_every = "1h"')
     sent: list[float] = []
     stop_sending = threading.Event()
@@ -294,8 +297,8 @@ def test_sigterm_then_restart_with_the_same_client_id_counts_every_message_once(
 def test_two_daemons_in_one_shared_group_split_the_load_and_pool_to_the_whole(
         tmp_path, broker, publisher):
     group = 'shared_group = "sigmad"'
-    a = start(tmp_path, config(broker, "gw-a", extra_source=group), broker.url, "a.toml")
-    b = start(tmp_path, config(broker, "gw-b", extra_source=group), broker.url, "b.toml")
+    a = start(tmp_path, config(broker.url, "gw-a", extra_source=group), broker.url, "a.toml")
+    b = start(tmp_path, config(broker.url, "gw-b", extra_source=group), broker.url, "b.toml")
     try:
         xs = np.random.default_rng(3).gamma(2.0, 3.0, size=400)
         for x in xs:
@@ -324,7 +327,7 @@ def test_two_daemons_in_one_shared_group_split_the_load_and_pool_to_the_whole(
 
 
 def test_a_restarted_broker_is_reconnected_and_resubscribed(tmp_path, broker):
-    d = start(tmp_path, config(broker, "gw-reconnect"), broker.url)
+    d = start(tmp_path, config(broker.url, "gw-reconnect"), broker.url)
     endpoint = f"mqtt {broker.url}"
     try:
         pub = Publisher(broker)
@@ -352,6 +355,109 @@ def test_a_restarted_broker_is_reconnected_and_resubscribed(tmp_path, broker):
         d.stop()
 
 
+def test_a_daemon_started_before_its_broker_connects_when_the_broker_comes(tmp_path):
+    need_binary("mosquitto")
+    port = free_port()
+    url = f"mqtt://127.0.0.1:{port}"
+    d = Sigmad(tmp_path, config(url, "gw-late"))   # starts and serves /metrics with no broker
+    try:
+        assert value(d.metrics(), "sigmad_source_connected", endpoint=f"mqtt {url}") == 0
+        broker = Broker(tmp_path, port)
+        try:
+            wait_until(lambda: value(d.metrics(), "sigmad_source_connected",
+                                     endpoint=f"mqtt {url}") == 1,
+                       timeout=40, what="the first connection")
+            pub = Publisher(broker)
+            pub.send("tank/late/level", b"4.5")
+            pub.close()
+            d.wait_for("sigmad_observations_total", 1, stream="level", tank="late")
+        finally:
+            broker.stop()
+    finally:
+        d.stop()
+
+
+def test_mqtts_with_a_client_certificate_and_a_password_file(tmp_path):
+    import getpass
+
+    from test_security import make_pki
+    make_pki(tmp_path)
+    subprocess.run([need_binary("mosquitto_passwd"), "-b", "-c", str(tmp_path / "passwd"),
+                    "gw", "s3cret"], check=True, capture_output=True, timeout=30)
+    broker = Broker(tmp_path)
+    broker.stop()
+    broker.conf.write_text(
+        f"listener {broker.port} 127.0.0.1\nuser {getpass.getuser()}\npersistence false\n"
+        f"cafile {tmp_path}/ca.crt\ncertfile {tmp_path}/server.crt\n"
+        f"keyfile {tmp_path}/server.key\nrequire_certificate true\n"
+        f"allow_anonymous false\npassword_file {tmp_path}/passwd\n")
+    broker.start()
+    url = f"mqtts://127.0.0.1:{broker.port}"
+    tls = (f'tls_ca = "{tmp_path}/ca.crt"\ntls_cert = "{tmp_path}/client.crt"\n'
+           f'tls_key = "{tmp_path}/client.key"\nusername = "gw"\n')
+    (tmp_path / "good.pw").write_text("s3cret\n")
+    (tmp_path / "bad.pw").write_text("guess\n")
+    good = start(tmp_path, config(url, "gw-tls", extra_source=tls
+                                  + f'password_file = "{tmp_path}/good.pw"'), url, "good.toml")
+    bad = Sigmad(tmp_path, config(url, "gw-tls-bad", extra_source=tls
+                                  + f'password_file = "{tmp_path}/bad.pw"'), name="bad.toml")
+    try:
+        pub = paho.Client(CallbackAPIVersion.VERSION2, protocol=paho.MQTTv5)
+        pub.tls_set(ca_certs=f"{tmp_path}/ca.crt", certfile=f"{tmp_path}/client.crt",
+                    keyfile=f"{tmp_path}/client.key")
+        pub.username_pw_set("gw", "s3cret")
+        pub.connect("127.0.0.1", broker.port)
+        pub.loop_start()
+        pub.publish("tank/tls/level", b"2.5", qos=1).wait_for_publish(10)
+        pub.disconnect()
+        pub.loop_stop()
+        parsed = good.wait_for("sigmad_observations_total", 1, stream="level", tank="tls")
+        assert value(parsed, "sigmad_mean", stream="level", tank="tls", field="cm") == 2.5
+        wait_until(lambda: "refused the connection" in bad.log.read_text(),
+                   what="the refusal to be logged")
+        assert value(bad.metrics(), "sigmad_source_connected", endpoint=f"mqtt {url}") == 0
+        assert bad.proc.poll() is None   # a refused login is retried, not fatal
+    finally:
+        good.stop()
+        bad.stop()
+        broker.stop()
+
+
+# --------------------------------------------------------------------------- the hand-off
+
+class _Message:
+    """What paho hands to on_message: topic, payload, QoS 0 (nothing to acknowledge)."""
+
+    def __init__(self, topic: str, payload: bytes) -> None:
+        self.topic, self.payload, self.qos, self.mid = topic, payload, 0, 0
+
+
+def test_a_full_hand_off_drops_and_counts_instead_of_growing(tmp_path):
+    from sigmad.daemon.engine.engine import Engine
+    from sigmad.daemon.ingest.mqtt import MqttSource
+
+    cfg = parse_config(config(f"mqtt://127.0.0.1:{free_port()}", "gw-full",   # nobody listens
+                              extra_daemon="max_message_bytes = 1024",
+                              extra_source="high_water_mark = 5").replace("{HTTP}", "127.0.0.1:0"))
+    src = MqttSource(cfg.sources[0], cfg.daemon.max_message_bytes)
+    try:
+        woken = socket.socket(fileno=socket.dup(src.socket))
+        woken.setblocking(False)
+        for i in range(20):
+            src._on_message(src.client, None, _Message("tank/t/level", str(i).encode()))
+        src._on_message(src.client, None, _Message("tank/t/level", b"1" * 2000))
+        assert woken.recv(16) == b"\0"   # woken once, at half the high-water mark
+        woken.close()
+        engine = Engine(cfg)
+        assert src.drain(engine, time.time()) == 5
+        engine.flush(time.time())
+        assert engine.messages[src.label] == 21
+        assert engine.rejected["queue_full"] == 15 and engine.rejected["too_large"] == 1
+        assert sum(v.observations for v in engine.snapshot.series.values()) == 5
+    finally:
+        src.close()
+
+
 # --------------------------------------------------------------------------- payloads
 
 def test_payload_examples_run():
@@ -370,6 +476,40 @@ def test_deeply_nested_json_is_refused_not_fatal():
     with pytest.raises(WireError) as exc:
         to_body(deep, 1 << 20)
     assert exc.value.reason == "not_json"
+
+
+def test_a_json_object_with_values_is_a_wire_body_written_in_json():
+    msg = msgpack.unpackb(to_body(b'{"values": {"v": [1.5, 2.5]}, "weight": [1, 2], '
+                                  b'"time": "2026-01-02T00:00:00Z", "seq": 7}', 1024))
+    assert msg == {"values": {"v": [1.5, 2.5]}, "weight": [1, 2], "time": 1767312000.0,
+                   "seq": 7}
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.one_of(st.binary(max_size=300),
+                 st.recursive(st.none() | st.booleans() | st.floats() | st.integers()
+                              | st.text(max_size=20),
+                              lambda c: st.lists(c, max_size=4)
+                              | st.dictionaries(st.sampled_from(["v", "time", "weight",
+                                                                 "values", "x"]), c,
+                                                max_size=4), max_leaves=12).map(
+                     lambda o: json.dumps(o).encode())))
+def test_any_payload_is_a_body_or_a_counted_reason(payload):
+    try:
+        body = to_body(payload, 1024)
+    except WireError as exc:
+        assert exc.reason in payloads.PAYLOAD_REASONS + REASONS
+        return
+    try:   # what the engine does next: decode it, or reject it by reason
+        decode(body, ("v",), max_bytes=1 << 16, max_rows=1000)
+    except WireError as exc:
+        assert exc.reason in REASONS
+
+
+def test_a_json_wire_body_msgpack_cannot_carry_is_refused():
+    with pytest.raises(WireError) as exc:
+        to_body(b'{"values": {"v": 123456789012345678901234567890}}', 1 << 20)
+    assert exc.value.reason == "bad_value"
 
 
 def test_a_msgpack_body_passes_unchanged():
@@ -444,6 +584,7 @@ fields = ["v"]
     ('connect = "mqtt://h"\ntopics = ["$share/g/a/+"]', "topics", "shared_group"),
     ('connect = "mqtt://h"\ntopics = []', "topics", "at least one"),
     ('connect = "mqtt://h"\ntopics = ["a/+"]\nqos = 3', "qos", "0 to 2"),
+    ('connect = "mqtt://h"\ntopics = ["a/+"]\nqos = 2', "qos", "not supported"),
     ('connect = "mqtt://h"\ntopics = ["a/+"]\nshared_group = "a/b"', "shared_group", "without"),
     ('connect = "mqtt://h"\ntopics = ["a/+"]\nusername = "u"\npassword_file = "missing.txt"',
      "password_file", "cannot be read"),
@@ -469,6 +610,16 @@ def test_a_shared_group_subscribes_with_the_share_prefix():
     assert m.subscriptions(cfg.sources[0].topics) == ("$share/g/a/+", "$share/g/b/#")
     m = parse_config(mqtt_config('connect = "mqtt://[::1]"\ntopics = ["#"]')).sources[0].mqtt
     assert (m.host, m.port, m.tls) == ("::1", 1883, False)   # MQTT's registered port (IANA)
+
+
+def test_a_stream_names_its_separator_in_the_config():
+    text = mqtt_config('connect = "mqtt://h"\ntopics = ["#"]').replace(
+        'topic = "a/{b}"', 'topic = "plant/v1.2/{b}"\nseparator = "/"')
+    topic = parse_config(text).streams[0].topic
+    assert topic.match("plant/v1.2/b7") == ("b7",)
+    with pytest.raises(ConfigError) as exc:
+        parse_config(text.replace('separator = "/"', 'separator = ":"'))
+    assert exc.value.key == "stream[0].separator"
 
 
 def test_time_text_is_bounded():

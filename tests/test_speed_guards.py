@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import pytest
 import sigmad.daemon.bench.suite as bench
-from conftest import need_module
+from conftest import need_binary, need_module
 
 pytestmark = pytest.mark.slow   # timed throughput guards
 
@@ -62,3 +62,11 @@ def test_checkpoint_of_20000_series_writes_and_restores_at_half_the_target_rate(
     wrote, read = write.ratio * 2.0, restore.ratio * 2.0     # ratio = seconds / 2 s budget
     assert wrote <= 0.8, write.cells()
     assert read <= 0.8, restore.cells()
+
+
+def test_json_readings_over_mqtt_keep_half_the_target_share_of_a_bare_paho_subscriber():
+    from sigmad.daemon.bench.mqtt import bench_mqtt_json
+
+    need_binary("mosquitto")
+    row = bench_mqtt_json(3_000)               # target 0.5 (best of 2 interleaved runs each)
+    assert row.met is not None and row.ratio >= 0.25, row.cells()

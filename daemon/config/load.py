@@ -732,6 +732,15 @@ def _readable_file(t: _Table, name: str) -> str | None:
     return path
 
 
+def _mqtt_qos(t: _Table) -> int:
+    qos = t.integer("qos", maximum=2)
+    if qos == 2:
+        raise ConfigError(t.key("qos"), qos, "is not supported: paho keeps QoS 2 exchanges in "
+                          "memory only, so a restart could lose or stall them; use 1 (at least "
+                          "once, kept by the broker's session) or 0")
+    return qos
+
+
 def _mqtt_source(t: _Table) -> SourceConfig:
     """A ``socket = "mqtt"`` source: one broker URL, topic filters, the session's keys."""
     url, host, port = _mqtt_url(t)
@@ -765,7 +774,7 @@ def _mqtt_source(t: _Table) -> SourceConfig:
         raise ConfigError(t.key(missing), _MISSING, f"{present} needs it too (a client "
                           "certificate takes both)")
     mqtt = MqttConfig(host=host, port=port, tls=tls, client_id=client_id,
-                      qos=t.integer("qos", maximum=2), shared_group=group, username=username,
+                      qos=_mqtt_qos(t), shared_group=group, username=username,
                       password_file=password_file, session_expiry=t.duration("session_expiry"),
                       **files)
     if mqtt.session_expiry > 2**32 - 1:

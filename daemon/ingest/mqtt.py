@@ -11,7 +11,7 @@ sockets says WAKE_AT messages are waiting. It drains like a ZeroMQ socket
 What the broker session gives, and what it does not (MQTT 5):
 
 - With a ``client_id`` the session is persistent (clean start off, session
-  expiry ``session_expiry``): QoS 1 and 2 messages published while sigmad is
+  expiry ``session_expiry``): QoS 1 messages published while sigmad is
   down are queued by the broker (within its own limits) and delivered after it
   returns. Subscriptions are made again on every connection, so a broker that
   lost them (or a new session) gets them back.
@@ -63,7 +63,7 @@ WAKE_AT, WAKE_BYTES = 512, 1 << 20
 # The broker drops packets above the MQTT 5 maximum packet size we announce:
 # max_message_bytes of payload plus room for the longest topic and properties.
 _PACKET_OVERHEAD = 65_536 + 1_024
-_MAX_PACKET = 268_435_455 + 5   # the protocol's own limit (MQTT 5.0, 2.2.3)
+_MAX_PACKET = 268_435_455 + 5   # the protocol's own limit: a 4-byte remaining length + header
 
 
 def _read_password(cfg: SourceConfig) -> str | None:
@@ -100,6 +100,7 @@ class MqttSource:
         self.connections = 0
         self._max_bytes = max_bytes
         self._limit = cfg.high_water_mark
+        self._wake_at = max(1, min(WAKE_AT, cfg.high_water_mark // 2))   # well before full
         self._lock = threading.Lock()
         self._queue: list[tuple[bytes, bytes]] = []
         self._queued_bytes = 0
@@ -199,7 +200,7 @@ class MqttSource:
             else:
                 self._queue.append((topic, payload))
                 self._queued_bytes += len(payload)
-                if not self._woke and (len(self._queue) >= WAKE_AT
+                if not self._woke and (len(self._queue) >= self._wake_at
                                        or self._queued_bytes >= WAKE_BYTES):
                     self._woke = True
                     with contextlib.suppress(OSError):   # full: the engine is woken already

@@ -8,7 +8,9 @@ msgpack. A payload is read as one of:
 - a JSON object of field -> number, with optional ``time`` (unix seconds, or
   an ISO 8601 / RFC 3339 string with a UTC offset) and ``weight``:
   ``{"temperature": 21.4, "humidity": 48, "time": "2026-01-02T03:04:05Z"}``;
-- a bare number as text, for a stream with exactly one field: ``21.4``.
+- a bare number as text, for a stream with exactly one field: ``21.4``;
+- a JSON object with a ``values`` key: a wire-format body written in JSON
+  (batches as arrays), as ``sigmad send`` also takes.
 
 JSON and text are turned into the msgpack body a producer would have sent
 (``{"values": {...}, "time": t, "weight": w}`` or ``{"values": x}``), so the
@@ -91,6 +93,13 @@ def to_body(payload: bytes, max_bytes: int) -> bytes:
                         f"({str(exc)[:80]})") from None
     if type(obj) is not dict:
         raise WireError("not_json", "payload is JSON but not one object")
+    if "values" in obj:   # a wire-format body written as JSON (as ``sigmad send`` takes)
+        if type(obj.get("time")) is str:
+            obj["time"] = _time(obj["time"])
+        try:
+            return _pack(obj)
+        except (OverflowError, ValueError) as exc:   # an integer beyond 64 bits, say
+            raise WireError("bad_value", f"the body cannot be a wire body ({exc})") from None
     values: dict = {}
     msg: dict = {"values": values}
     for key, value in obj.items():
