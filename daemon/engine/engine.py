@@ -6,20 +6,18 @@ state, so the hot path takes no locks. Readers get immutable ``Snapshot``s.
 
 from __future__ import annotations
 
-import functools
 import logging
 import math
 from collections import Counter
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from itertools import compress
 
-import msgpack
 import numpy as np
 from sigmad.daemon.config.load import Config, StreamConfig
 from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
-from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
-from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
+from sigmad.daemon.ingest.layouts import LayoutTable, Readout, learn, runs
+from sigmad.daemon.ingest.wire import Reader, Single, WireError
 from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
 from sigmad.estimators.validation import screen_batch
 
@@ -27,21 +25,16 @@ log = logging.getLogger("sigmad.engine")
 
 _ROUTE_CACHE_LIMIT = 65_536
 _UNSEEN = object()
-_F8 = np.dtype("<f8")
-_PLAIN = frozenset((float, int))   # value types a single observation may use
 _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
-# Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES go message
-# by message, and so does a drain that misfits cut into more than MAX_RUNS blocks.
-# A drain of n messages learns at most max(LEARN_PER_DRAIN, n // 8) layouts (one
-# costs about what 20 messages do message by message), and a (topic, length) whose
-# body taught none is not tried again for RETRY_AFTER drains.
+# Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES are decoded
+# message by message, and so is a drain that misfits cut into more than MAX_RUNS
+# blocks. A drain of n messages learns at most max(LEARN_PER_DRAIN, n // 8) layouts
+# (one costs about what 20 messages do decoded one by one), and a (topic, length)
+# whose body taught none is not tried again for RETRY_AFTER drains.
 LAYOUT_MIN_MESSAGES = 16
 MAX_RUNS = 16
 LEARN_PER_DRAIN = 64
 RETRY_AFTER = 64
-# One-field binary batches of at least this many bytes are read by a learnt
-# BatchLayout (no unpacking) once their (topic, length) has been seen twice.
-BATCH_LAYOUT_BYTES = 256
 
 
 def _floats(a) -> tuple[float, ...]:
@@ -52,6 +45,15 @@ def _route_name(route: tuple) -> str:
     """How a (stream, labels) route, and so its series, is named in the rejection log."""
     st, labels = route
     return f"{st.name}{dict(zip(st.cfg.topic.labels, labels, strict=True)) or ''}"
+
+
+def _single(st: StreamState, body: bytes) -> bool:
+    """Whether the stream's reader takes ``body`` for one plain observation: the only
+    bodies a byte layout is learnt from."""
+    try:
+        return type(st.read(body)) is Single
+    except WireError:
+        return False
 
 
 def _where(series: Series) -> str:
@@ -123,10 +125,12 @@ class Series:
 
 
 class StreamState:
-    """A configured stream and its live series."""
+    """A configured stream and its live series; ``read`` turns one of its message
+    bodies into rows (``Reader.read``; None where the stream takes no messages)."""
 
-    def __init__(self, cfg: StreamConfig) -> None:
+    def __init__(self, cfg: StreamConfig, read: Callable | None = None) -> None:
         self.cfg = cfg
+        self.read = read
         self.name = cfg.name
         self.fields = tuple(cfg.fields)
         self.dim = len(self.fields)
@@ -306,7 +310,10 @@ class Engine:
 
     def __init__(self, config: Config) -> None:
         self.config = config
-        self.streams = [StreamState(s) for s in config.streams]
+        d = config.daemon
+        self.streams = [StreamState(s, Reader(s.fields, max_bytes=d.max_message_bytes,
+                                              max_rows=d.max_batch_rows).read)
+                        for s in config.streams]
         self._routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
         self._dirty: dict[int, Series] = {}
         self._views: dict = {}
@@ -319,19 +326,11 @@ class Engine:
         self._log_budget = config.daemon.log_rejected
         self._log_window = 0.0
         self.snapshot = Snapshot(taken_at=0.0)
-        d = config.daemon
         self._max_bytes, self._max_rows = d.max_message_bytes, d.max_batch_rows
         self._max_skew = d.max_clock_skew
         self._layouts = LayoutTable(max(st.dim for st in self.streams) if self.streams else 1)
         self._not_learnt: dict[tuple[bytes, int], int] = {}
-        self._batch_layouts: dict[tuple[bytes, int], BatchLayout] = {}
-        self._batch_lengths_seen: dict[tuple[bytes, int], bool] = {}
         self._drains = 0
-        # the hot path unpacks with fixed limits (the general path's are tighter)
-        self._unpack_one = functools.partial(
-            msgpack.unpackb, use_list=False, max_str_len=d.max_message_bytes,
-            max_bin_len=d.max_message_bytes, max_ext_len=0, max_array_len=d.max_batch_rows,
-            max_map_len=d.max_message_bytes // 2)
 
     # ------------------------------------------------------------- ingest
     @property
@@ -373,84 +372,29 @@ class Engine:
             log.warning("rejected %d observation(s) from %s: %s%s", count, where, reason,
                         f" ({detail})" if detail else "")
 
-    def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "",
-               unpacked: dict | None = None) -> int:
-        """Decode one message and queue its rows for the next flush.
-
-        Returns the number of rows queued (0 when the message was rejected). Never
-        raises on bad input: every rejection is counted by reason. A single
-        observation of plain numbers takes a short path that builds no arrays;
-        its row waits in a list until the flush. ``unpacked`` is the body already
-        unpacked without error by the caller (unpacking twice is what it saves).
-        O(len(body)).
-        """
-        self.messages[endpoint] += 1
-        route = self._routes.get(topic, _UNSEEN)
-        if route is _UNSEEN:
-            route = self.route(topic)
-        if route is None:
-            self.reject("no_stream", topic=topic, now=now)
-            return 0
-        st, labels = route
-        try:
-            msg = unpacked if type(unpacked) is dict else \
-                unpack(body, max_bytes=self._max_bytes, max_rows=self._max_rows)
-            one = single(msg, st.fields)
-            dec = interpret(msg, st.fields, max_rows=self._max_rows) if one is None else None
-            source, seq = origin(msg)
-        except WireError as exc:
-            self.reject(exc.reason, topic=topic, detail=exc.detail, now=now)
-            return 0
-        if seq is not None and source is not None:
-            self._count_gap(source, seq)
-        if dec is None:
-            row, weight, when = one
-            if when is not None and abs(when - now) > self._max_skew and math.isfinite(when):
-                self.reject("clock_skew", topic=topic, now=now)
-                return 0
-            n = 1
-        else:
-            dec = self._drop_skewed(dec, now, topic)
-            n = dec.values.shape[0]
-            if n == 0:
-                return 0
-        # created only for rows that passed every check here: rejected input adds no series
-        series = st.series.get(labels)
-        if series is None:
-            if len(st.series) >= st.cfg.max_series:
-                self.reject("series_limit", n, topic=topic, now=now)
-                return 0
-            series = st.series[labels] = st.new_series(labels)
-        if dec is None:
-            series.rows = [*series.rows, row[0] if st.dim == 1 else row]
-            if weight is not None or when is not None:
-                series.extras = [*series.extras, (len(series.rows) - 1, weight, when)]
-            series.seal_rows(now)
-        else:
-            series.seal_rows(now)   # keep arrival order: single rows queued so far go first
-            series.queue((dec.values, dec.weights, dec.times, now))
-        self.pending_rows += n
-        self._dirty[id(series)] = series
-        return n
+    def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "") -> int:
+        """Decode one message and queue its rows for the next flush. Returns the number
+        of rows queued (0 when it was rejected). See :meth:`_decode_each`."""
+        return self._decode_each((topic,), (body,), now, endpoint)
 
     def ingest_many(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
                     endpoint: str = "") -> int:
         """``ingest`` for many messages that arrived together (message i is
         ``[topics[i], bodies[i]]``): the daemon's hot path.
 
-        Bodies that fit a learnt byte layout (:mod:`daemon.layouts`: the same
+        Bodies that fit a learnt byte layout (:mod:`~sigmad.daemon.ingest.layouts`: the same
         keys, encodings and fixed bytes as an earlier body of their topic and
         length) are read together with numpy, with no msgpack call and no Python
-        per message; the rest go through :meth:`_ingest_each`. Arrival order is
+        per message; the rest go through :meth:`_decode_each`. Arrival order is
         kept: each block of messages that fit no layout is fed in its place, and a
-        drain cut into more than MAX_RUNS blocks is left to ``_ingest_each`` whole.
+        drain cut into more than MAX_RUNS blocks is left to ``_decode_each`` whole.
         The result equals feeding every message to ``ingest`` in order (rows,
         rejections, sequence gaps, series created). Returns the rows queued.
         O(total body length).
         """
         n = len(bodies)
         if n < LAYOUT_MIN_MESSAGES:
-            return self._ingest_each(topics, bodies, now, endpoint)
+            return self._decode_each(topics, bodies, now, endpoint)
         table = self._layouts
         lengths = np.fromiter(map(len, bodies), np.int64, n)
         rows = table.find(topics, lengths)
@@ -459,18 +403,18 @@ class Engine:
             rows = table.find(topics, lengths)
             missing = rows < 0
         if missing.all():
-            return self._ingest_each(topics, bodies, now, endpoint)
+            return self._decode_each(topics, bodies, now, endpoint)
         found = self._read_layouts(topics, bodies, lengths, rows)
         queued = start = 0
         misfit = ~found.ok
         if misfit.any():   # blocks of messages that fit no layout go message by message
             edges = np.flatnonzero(np.diff(np.r_[0, misfit.view(np.int8), 0])).tolist()
             if len(edges) > 2 * MAX_RUNS:   # too cut up: one pass, message by message
-                return self._ingest_each(topics, bodies, now, endpoint)
+                return self._decode_each(topics, bodies, now, endpoint)
             for first, stop in zip(edges[::2], edges[1::2], strict=True):
                 if first > start:
                     queued += self._queue_fitting(found, start, first, now, endpoint)
-                queued += self._ingest_each(topics[first:stop], bodies[first:stop], now,
+                queued += self._decode_each(topics[first:stop], bodies[first:stop], now,
                                             endpoint)
                 start = stop
         if start < n:
@@ -495,7 +439,7 @@ class Engine:
             topic, length = key
             route = self.route(topic)   # cached after the first time
             layout = None
-            if route is not None and length <= self._max_bytes:
+            if route is not None and length <= self._max_bytes and _single(route[0], body):
                 layout = learn(body, route[0].fields, self._max_rows)
             if layout is None:
                 tried[key] = self._drains
@@ -594,14 +538,16 @@ class Engine:
         return queued
 
     def _count_gaps(self, source: np.ndarray, seq: np.ndarray) -> None:
-        """``_count_gap`` for many (source id, seq) pairs in arrival order, vectorised."""
+        """``_count_gap`` for many (source id, seq) pairs in arrival order, vectorised
+        (in int64, so exactly and one by one when a seq reaches 2**53)."""
         names = self._layouts.sources
         last_seq = self._last_seq
         order, ids, starts, counts = runs(source)
         who = [names[i] for i in ids.tolist()]
         last = list(map(last_seq.get, who))
         new = last.count(None)
-        if (new and len(last_seq) + new > _MAX_PRODUCERS) or int(seq.max()) >= 2**53:
+        if (new and len(last_seq) + new > _MAX_PRODUCERS) or int(seq.max()) >= 2**53 \
+                or any(v is not None and v >= 2**53 for v in last):
             for i, q in zip(source.tolist(), seq.tolist(), strict=True):  # rare: exact, slow
                 self._count_gap(names[i], q)
             return
@@ -618,134 +564,85 @@ class Engine:
             gaps[who[k]] += int(lost[k])
         last_seq.update(zip(who, q[starts + counts - 1].tolist(), strict=True))
 
-    def _ingest_each(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
+    def _decode_each(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
                      endpoint: str = "") -> int:
-        """``ingest`` for many messages, one message at a time.
+        """Decode messages one by one and queue their rows for the next flush: the
+        path of every message that fits no byte layout.
 
-        A plain single observation (numbers only, scalar or absent weight and time,
-        a valid or absent source/seq, for a series that exists) is queued here with
-        no function call of its own; anything else goes through ``ingest``, which
-        gives the same result for these and judges everything else. Returns the
-        rows queued. O(total body length).
+        Each body becomes rows through its stream's :class:`~sigmad.daemon.ingest.wire.Reader`.
+        Never raises on bad input: every rejection is counted by reason (``no_stream``,
+        the wire format's reasons, ``clock_skew``, ``series_limit``); rows of a bad
+        value, weight or time are judged at the flush. A series is created only for
+        rows that passed every check here, so rejected input adds no series. A single
+        observation waits as a plain row in its series until the flush; arrival order
+        is kept within each series. Returns the rows queued. O(total body length).
         """
-        routes, unpackb = self._routes, self._unpack_one
-        batch_layouts = self._batch_layouts
-        max_bytes, max_skew = self._max_bytes, self._max_skew
-        last_seq, gaps, slow = self._last_seq, self.gaps, self.ingest
+        routes, route_of, reject = self._routes, self.route, self.reject
+        max_skew, count_gap = self._max_skew, self._count_gap
+        isfinite = math.isfinite
         touched: dict[int, Series] = {}
-        fast = queued = batches = batch_rows = 0
-        max_bin = self._max_rows * 8
+        queued = 0
         for topic, body in zip(topics, bodies, strict=True):
-            route = routes.get(topic)
-            if route is None or len(body) > max_bytes:
-                queued += slow(topic, body, now, endpoint)
+            route = routes.get(topic, _UNSEEN)
+            if route is _UNSEEN:
+                route = route_of(topic)
+            if route is None:
+                reject("no_stream", topic=topic, now=now)
                 continue
             st, labels = route
-            series = st.series.get(labels)
-            msg = found = None
-            if len(body) >= BATCH_LAYOUT_BYTES and series is not None and batch_layouts:
-                layout = batch_layouts.get((topic, len(body)))
-                found = None if layout is None else layout.read(body)
-            if found is not None:   # a binary batch read by its layout: no unpacking
-                row, weight, source, seq = found
-                when, binned = None, True
+            try:
+                dec = st.read(body)
+            except WireError as exc:
+                reject(exc.reason, topic=topic, detail=exc.detail, now=now)
+                continue
+            row, weight, when, source, seq = dec
+            if seq is not None and source is not None:
+                count_gap(source, seq)
+            single = type(dec) is Single
+            if single:
+                if when is not None and abs(when - now) > max_skew and isfinite(when):
+                    reject("clock_skew", topic=topic, now=now)
+                    continue
+                n = 1
             else:
-                try:
-                    msg = unpackb(body)
-                    values = msg["values"]
-                    if type(values) is dict:
-                        row = values[st.fields[0]] if st.dim == 1 else \
-                            tuple(map(values.__getitem__, st.fields))
-                    else:
-                        row = values if st.dim == 1 else None
-                    weight, when = msg.get("weight"), msg.get("time")
-                    source, seq = msg.get("source"), msg.get("seq")
-                except Exception:   # anything unusual: the general path judges and counts it
-                    row = series = None
-                # a one-field batch of little-endian float64 (bin), weights likewise, no times
-                binned = (type(row) is bytes and st.dim == 1 and when is None
-                          and 0 < len(row) <= max_bin and len(row) % 8 == 0
-                          and (weight is None or type(weight) is bytes
-                               and len(weight) == len(row)))
-            if (series is None or row is None
-                    or not binned and (
-                        not ((type(row) is float or type(row) is int) if st.dim == 1
-                             else _PLAIN.issuperset(map(type, row)))
-                        or (weight is not None and type(weight) is not float
-                            and type(weight) is not int)
-                        or (when is not None and (type(when) is not float
-                                                  and type(when) is not int
-                                                  or abs(when - now) > max_skew)))):
-                queued += slow(topic, body, now, endpoint, msg)
-                continue
-            if source is not None or seq is not None:
-                if type(source) is not str or type(seq) is not int:
-                    queued += slow(topic, body, now, endpoint)
+                dec = self._drop_skewed(dec, now, topic)
+                n = dec.values.shape[0]
+                if n == 0:
                     continue
-                last = last_seq.get(source)
-                if last is None:    # a producer not seen before: validate it once
-                    if not (0 < len(source) <= MAX_SOURCE and source.isprintable()
-                            and 0 <= seq < 2**64):
-                        queued += slow(topic, body, now, endpoint)
-                        continue
-                    if len(last_seq) < _MAX_PRODUCERS:
-                        last_seq[source] = seq
-                elif 0 <= seq < 2**64:
-                    if seq > last + 1:
-                        gaps[source] += seq - last - 1
-                    last_seq[source] = seq
-                else:
-                    queued += slow(topic, body, now, endpoint)
+            series = st.series.get(labels)
+            if series is None:
+                if len(st.series) >= st.cfg.max_series:
+                    reject("series_limit", n, topic=topic, now=now)
                     continue
-            if binned:
-                series.seal_rows(now)   # keep arrival order
-                if found is None:
-                    row = np.frombuffer(row, _F8)
-                    weight = None if weight is None else np.frombuffer(weight, _F8)
-                    if len(body) >= BATCH_LAYOUT_BYTES:
-                        self._learn_batch_layout(topic, body, st.fields[0])
-                x = row.reshape(-1, 1)
-                series.queue((x, weight, None, now))
-                touched[id(series)] = series
-                fast += 1
-                batches += 1
-                batch_rows += x.shape[0]
-                continue
-            rows = series.rows
-            if not rows:
-                rows = series.rows = []
-            rows.append(row)
-            if weight is not None or when is not None:
-                if not series.extras:
-                    series.extras = []
-                series.extras.append((len(rows) - 1, weight, when))
+                series = st.series[labels] = st.new_series(labels)
+            if single:
+                rows = series.rows
+                if not rows:
+                    rows = series.rows = []
+                rows.append(row[0] if st.dim == 1 else row)
+                if weight is not None or when is not None:
+                    if not series.extras:
+                        series.extras = []
+                    series.extras.append((len(rows) - 1, weight, when))
+            else:
+                series.seal_rows(now)   # keep arrival order: single rows queued so far go first
+                series.queue((dec.values, dec.weights, dec.times, now))
             touched[id(series)] = series
-            fast += 1
+            queued += n
         for series in touched.values():
             series.seal_rows(now)
         self._dirty.update(touched)
-        self.messages[endpoint] += fast
-        singles = fast - batches
-        self.pending_rows += singles + batch_rows
-        return queued + singles + batch_rows
+        self.messages[endpoint] += len(bodies)
+        self.pending_rows += queued
+        return queued
 
-    def _learn_batch_layout(self, topic: bytes, body: bytes, field: str) -> None:
-        """Learn the layout of a binary batch the second time its (topic, length) is
-        seen (batches of varying length teach nothing and cost one look-up each)."""
-        key = (topic, len(body))
-        if key in self._batch_layouts:
-            return
-        seen = self._batch_lengths_seen
-        if len(seen) >= _ROUTE_CACHE_LIMIT:
-            seen.clear()
-        if seen.pop(key, None) is None:
-            seen[key] = True
-            return
-        layout = learn_batch(body, field, self._max_rows)
-        if layout is not None:
-            if len(self._batch_layouts) >= _ROUTE_CACHE_LIMIT:
-                self._batch_layouts.clear()
-            self._batch_layouts[key] = layout
+    def _count_gap(self, source: str, seq: int) -> None:
+        """Count the messages of ``source`` missed before ``seq`` (Python ints: exact)."""
+        last = self._last_seq.get(source)
+        if last is not None and seq > last + 1:
+            self.gaps[source] += seq - last - 1
+        if last is not None or len(self._last_seq) < _MAX_PRODUCERS:
+            self._last_seq[source] = seq
 
     def _drop_skewed(self, dec, now: float, topic: bytes):
         """The decoded batch without rows whose event time is too far from ``now``."""
@@ -761,13 +658,6 @@ class Engine:
         keep = ~skew
         return dec._replace(values=dec.values[keep], times=times[keep],
                             weights=None if dec.weights is None else dec.weights[keep])
-
-    def _count_gap(self, source: str, seq: int) -> None:
-        last = self._last_seq.get(source)
-        if last is not None and seq > last + 1:
-            self.gaps[source] += seq - last - 1
-        if last is not None or len(self._last_seq) < _MAX_PRODUCERS:
-            self._last_seq[source] = seq
 
     # -------------------------------------------------------------- flush
     def flush(self, now: float) -> Snapshot:

@@ -31,16 +31,25 @@ msgpack extension types (the Timestamp extension included) are refused as
 Decoding is bounded: the body length is checked before unpacking, and the
 unpacker's length limits are set from it (and from ``max_rows`` for arrays),
 so a header that claims a 2 GB array fails at the header, before anything is
-allocated.
+allocated (:func:`unpack_bounded`, the one bounded unpacker of the daemon).
+
+How a body becomes rows is decided in one place, :meth:`Reader.read`: a typed
+msgspec decoder reads the usual shapes (one observation of numbers, or a batch
+of bins) straight into structs; any body that does not fit them exactly (an
+unknown key, an array of numbers, an ext type, a nil value, bad bytes) is read
+by the general decoder (:func:`unpack` then :func:`interpret`), which accepts
+it or names the reason for rejecting it.
 """
 
 from __future__ import annotations
 
+import functools
 import re
 from collections.abc import Mapping
-from typing import NamedTuple
+from typing import Annotated, NamedTuple
 
 import msgpack
+import msgspec
 import numpy as np
 
 #: Reasons a whole message is rejected, as counted in ``sigmad_rejected_total{reason}``.
@@ -162,8 +171,43 @@ def decode(body: bytes, fields: tuple[str, ...], *, max_bytes: int, max_rows: in
     >>> d.values.tolist(), d.weights
     ([[12.5]], None)
     """
-    return interpret(unpack(body, max_bytes=max_bytes, max_rows=max_rows), fields,
-                     max_rows=max_rows)
+    return _reader(tuple(fields), max_bytes, max_rows).decode(body)
+
+
+class MsgpackError(ValueError):
+    """Bytes that are not one msgpack object within the limits of :func:`unpack_bounded`.
+
+    ``kind`` names the unpacker's exception type; ``array_claim`` is the length an
+    over-long array header claimed, or None.
+    """
+
+    def __init__(self, detail: str, kind: str, array_claim: int | None = None) -> None:
+        super().__init__(detail)
+        self.kind = kind
+        self.array_claim = array_claim
+
+
+def unpack_bounded(data: bytes, *, max_array: int | None = None, strict_map_key: bool = True,
+                   use_list: bool = True) -> object:
+    """Unpack one msgpack object with every length limit derived from ``len(data)``.
+
+    No string, bin, array or map may claim more items than the data has bytes
+    (an array also at most ``max_array``), and ext types are refused, so a header
+    that claims gigabytes fails at the header, before anything is allocated.
+    Strings must be UTF-8; map keys must be strings (or bytes) unless
+    ``strict_map_key`` is False. Raises :class:`MsgpackError`. O(len(data)).
+    """
+    size = len(data)
+    arrays = size if max_array is None else min(size, max_array)
+    try:
+        return msgpack.unpackb(data, raw=False, use_list=use_list,
+                               strict_map_key=strict_map_key, max_str_len=size,
+                               max_bin_len=size, max_ext_len=0, max_array_len=arrays,
+                               max_map_len=size // 2)
+    except (ValueError, TypeError, msgpack.UnpackException) as exc:
+        claim = _ARRAY_CLAIM.match(str(exc))
+        raise MsgpackError(str(exc), type(exc).__name__,
+                           int(claim.group(1)) if claim else None) from None
 
 
 def unpack(body: bytes, *, max_bytes: int, max_rows: int) -> dict:
@@ -176,15 +220,13 @@ def unpack(body: bytes, *, max_bytes: int, max_rows: int) -> dict:
     if size > max_bytes:
         raise WireError("too_large", f"body of {size} bytes exceeds max_message_bytes {max_bytes}")
     try:
-        msg = msgpack.unpackb(body, raw=False, use_list=False, strict_map_key=True,
-                              max_str_len=size, max_bin_len=size, max_ext_len=0,
-                              max_array_len=min(size, max_rows), max_map_len=size // 2)
-    except (ValueError, TypeError, msgpack.UnpackException) as exc:
-        claim = _ARRAY_CLAIM.match(str(exc))
-        if claim and int(claim.group(1)) <= size:
+        msg = unpack_bounded(body, max_array=max_rows, use_list=False)
+    except MsgpackError as exc:
+        claim = exc.array_claim
+        if claim is not None and claim <= size:
             # The array would fit in the body, so it is a real array, just too long.
             raise WireError("too_many_rows",
-                            f"an array of {claim.group(1)} items exceeds max_batch_rows "
+                            f"an array of {claim} items exceeds max_batch_rows "
                             f"{max_rows}") from None
         raise WireError("not_msgpack", f"body is not one msgpack object ({exc})") from None
     if type(msg) is not dict:
@@ -192,31 +234,137 @@ def unpack(body: bytes, *, max_bytes: int, max_rows: int) -> dict:
     return msg
 
 
-def single(msg: dict, fields: tuple[str, ...]) -> tuple[tuple, object, object] | None:
-    """The hot path: ``(row, weight, time)`` when ``msg`` is one observation given as a
-    map of plain numbers with scalar (or absent) weight and time; None for anything
-    else, which :func:`interpret` then reads (or rejects). Checks types only: row
-    values, weight and time may still be non-finite. O(d).
+class Single(NamedTuple):
+    """One observation read by the typed decoder: ``row`` holds the stream's d fields
+    as floats, in the stream's order; ``weight`` and ``time`` are floats or None.
+    Row values, weight and time may still be non-finite (left for ``clean_batch``)."""
+
+    row: tuple[float, ...]
+    weight: float | None
+    time: float | None
+    source: str | None
+    seq: int | None
+
+
+_new_single = tuple.__new__
+_astuple = msgspec.structs.astuple
+_SourceText = Annotated[str, msgspec.Meta(min_length=1, max_length=MAX_SOURCE)]
+_SeqNumber = Annotated[int, msgspec.Meta(ge=0)]
+
+
+def _message_struct(name: str, fields: tuple[str, ...], kind: type) -> type:
+    """A struct for a body whose ``values`` holds the stream's fields, each of ``kind``
+    (a one-field stream may give the bare value). No other key is allowed, in the body
+    or in ``values``: a body that has one is left to the general decoder."""
+    names = [f"f{i}" for i in range(len(fields))]
+    values = msgspec.defstruct(f"{name}Values", [(n, kind) for n in names],
+                               rename=dict(zip(names, fields, strict=True)),
+                               forbid_unknown_fields=True, gc=False)
+    per_row = float if kind is float else bytes | float
+    return msgspec.defstruct(name, [
+        ("values", values | kind if len(fields) == 1 else values),
+        ("weight", per_row | None, None), ("time", per_row | None, None),
+        ("source", _SourceText | None, None), ("seq", _SeqNumber | None, None),
+    ], forbid_unknown_fields=True, gc=False)
+
+
+class Reader:
+    """How a body becomes rows, for a stream with the given fields: the one place
+    that decides it.
+
+    Parameters
+    ----------
+    fields : tuple of str
+        The stream's fields, in the column order wanted.
+    max_bytes, max_rows : int
+        As for :func:`decode`.
+
+    Notes
+    -----
+    Two typed msgspec decoders read the usual bodies without building a dict:
+    one observation (``values`` a map of numbers, scalar or absent weight and
+    time) and a batch of bins (``values`` a map of bins of little-endian float64,
+    weight and time bins or numbers). They accept only bodies made of the five
+    keys of wire format v1, ``values`` holding exactly the stream's fields, with
+    a valid source and seq; for those the result equals the general decoder's.
+    Every other body (unknown keys, arrays of numbers, nil, ext types, lengths
+    that do not match, anything malformed) is read by the general decoder,
+    :func:`unpack` then :func:`interpret`, which accepts it or raises the
+    :class:`WireError` naming why not.
     """
-    values = msg.get("values")
-    if type(values) is dict:
+
+    def __init__(self, fields: tuple[str, ...], *, max_bytes: int, max_rows: int) -> None:
+        self.fields = tuple(fields)
+        self.max_bytes, self.max_rows = max_bytes, max_rows
+        self._one = msgspec.msgpack.Decoder(_message_struct("One", self.fields, float)).decode
+        self._many = msgspec.msgpack.Decoder(_message_struct("Many", self.fields, bytes)).decode
+
+    def read(self, body: bytes) -> Single | Decoded:
+        """A :class:`Single` for one observation read by the typed decoder, else a
+        :class:`Decoded` of n rows. Raises WireError. O(len(body))."""
+        if len(body) <= self.max_bytes:
+            try:
+                m = self._one(body)
+            except msgspec.DecodeError:
+                batch = self._batch(body)
+                if batch is not None:
+                    return batch
+            else:
+                source = m.source
+                if source is None or source.isprintable():
+                    values = m.values
+                    row = (values,) if type(values) is float else _astuple(values)
+                    # tuple.__new__ skips the NamedTuple's Python-level __new__
+                    return _new_single(Single, (row, m.weight, m.time, source, m.seq))
+        return interpret(unpack(body, max_bytes=self.max_bytes, max_rows=self.max_rows),
+                         self.fields, max_rows=self.max_rows)
+
+    def _batch(self, body: bytes) -> Decoded | None:
+        """A batch of bins read by the typed decoder; None when the body is not one
+        whose every column fits (the general decoder then judges it)."""
         try:
-            row = tuple(map(values.__getitem__, fields))
-        except KeyError:
+            m = self._many(body)
+        except msgspec.DecodeError:
             return None
-        if not set(map(type, row)) <= _NUMBER_TYPES:
+        values, source = m.values, m.source
+        columns = (values,) if type(values) is bytes else _astuple(values)
+        size = len(columns[0])
+        n = size >> 3
+        if (not n or size & 7 or n > self.max_rows or (source is not None and not
+                                                        source.isprintable())
+                or any(len(c) != size for c in columns)):
             return None
-    elif type(values) is float or type(values) is int:
-        if len(fields) != 1:
-            return None
-        row = (values,)
-    else:
-        return None
-    weight, when = msg.get("weight"), msg.get("time")
-    if (weight is None or type(weight) is float or type(weight) is int) and \
-            (when is None or type(when) is float or type(when) is int):
-        return row, weight, when
-    return None
+        per_row = []
+        for value in (m.weight, m.time):
+            if value is None or type(value) is float:
+                per_row.append(None if value is None else np.full(n, value))
+            elif len(value) == size:
+                per_row.append(np.frombuffer(value, _F8))
+            else:
+                return None
+        if len(columns) == 1:
+            x = np.frombuffer(columns[0], _F8).reshape(-1, 1)
+        else:
+            x = np.empty((n, len(columns)))
+            for j, column in enumerate(columns):
+                x[:, j] = np.frombuffer(column, _F8)
+        return _new_decoded(Decoded, (x, per_row[0], per_row[1], source, m.seq))
+
+    def decode(self, body: bytes) -> Decoded:
+        """:meth:`read` with a single observation given as arrays too (see :func:`decode`)."""
+        out = self.read(body)
+        if type(out) is Decoded:
+            return out
+        row, weight, when, source, seq = out
+        return _new_decoded(Decoded, (
+            np.array((row,), dtype=np.float64),
+            None if weight is None else np.array((weight,), dtype=np.float64),
+            None if when is None else np.array((when,), dtype=np.float64), source, seq))
+
+
+@functools.lru_cache(maxsize=64)
+def _reader(fields: tuple[str, ...], max_bytes: int, max_rows: int) -> Reader:
+    return Reader(fields, max_bytes=max_bytes, max_rows=max_rows)
 
 
 def origin(msg: dict) -> tuple[str | None, int | None]:
