@@ -446,3 +446,25 @@ def test_describe_lists_sources_streams_and_estimators():
 
 def test_describe_says_a_sub_source_without_topics_takes_everything():
     assert "sub  bind tcp://127.0.0.1:7412 topics (everything)" in describe(default_config())
+
+
+# ------------------------------------------------- bounds on what one stream may ask
+@pytest.mark.parametrize("key", ["quantiles", "outlier_sigmas"])
+def test_at_most_32_quantiles_or_thresholds_per_stream(key):
+    values = [round(0.01 + i * 0.0009, 4) if key == "quantiles" else 1.0 + i
+              for i in range(33)]
+    assert len(parse_config(minimal(f"{key} = {values[:32]}\n")).streams[0]
+               .__getattribute__(key)) == 32
+    exc = error(minimal(f"{key} = {values}\n"))
+    assert exc.key == f"stream[0].{key}" and "at most 32" in str(exc)
+
+
+def test_topic_and_time_ahead_bounds_have_defaults_and_are_checked():
+    d = parse_config(minimal()).daemon
+    assert (d.max_topic_bytes, d.max_time_ahead) == (256, 10.0)
+    d = parse_config(minimal(head='[daemon]\nmax_topic_bytes = 64\nmax_time_ahead = "2s"\n'))
+    assert (d.daemon.max_topic_bytes, d.daemon.max_time_ahead) == (64, 2.0)
+    assert error(minimal(head="[daemon]\nmax_topic_bytes = 0\n")).key == \
+        "daemon.max_topic_bytes"
+    assert error(minimal(head='[daemon]\nmax_time_ahead = "soon"\n')).key == \
+        "daemon.max_time_ahead"

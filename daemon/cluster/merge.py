@@ -65,7 +65,7 @@ def decode_state(body: bytes) -> dict:
     if n > MAX_STATE_BYTES:
         raise StateError("state_too_large", f"{n} bytes exceeds {MAX_STATE_BYTES}")
     try:
-        msg = unpack_bounded(body)
+        msg = unpack_bounded(body, max_depth=32)   # a state message nests about 8 levels
     except MsgpackError as exc:
         raise StateError("state_malformed", f"not msgpack ({exc.kind})") from None
     if not isinstance(msg, dict):

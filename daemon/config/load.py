@@ -98,8 +98,10 @@ class DaemonConfig:
     tls_client_ca: str | None = None
     max_message_bytes: int = 1_048_576
     max_batch_rows: int = 100_000
+    max_topic_bytes: int = 256
     flush_every: float = 0.05
     max_clock_skew: float = 86400.0
+    max_time_ahead: float = 10.0
     max_abs_value: float = 1e100
     strict_restore: bool = False
     log_rejected: int = 10
@@ -419,7 +421,8 @@ def _names(table: _Table, name: str, what: str) -> tuple[str, ...]:
 
 _DAEMON_KEYS = ("http", "state_file", "checkpoint_every", "tls_cert", "tls_key", "tls_client_ca",
                 "max_message_bytes", "max_batch_rows", "flush_every", "max_clock_skew",
-                "strict_restore", "log_rejected", "max_abs_value")
+                "strict_restore", "log_rejected", "max_abs_value", "max_topic_bytes",
+                "max_time_ahead")
 _SOURCE_KEYS = ("socket", "bind", "connect", "topics", "curve_secret", "curve_allow",
                 "high_water_mark")
 _STREAM_KEYS = ("name", "topic", "fields", "half_life", "correction", "quantiles",
@@ -444,8 +447,10 @@ def _daemon(data: object) -> DaemonConfig:
         tls_client_ca=t.path_string("tls_client_ca"),
         max_message_bytes=t.integer("max_message_bytes", d.max_message_bytes, 16, 2**31 - 1),
         max_batch_rows=t.integer("max_batch_rows", d.max_batch_rows, 1, 2**31 - 1),
+        max_topic_bytes=t.integer("max_topic_bytes", d.max_topic_bytes, 1, 65536),
         flush_every=t.duration("flush_every", d.flush_every),
         max_clock_skew=t.duration("max_clock_skew", d.max_clock_skew),
+        max_time_ahead=t.duration("max_time_ahead", d.max_time_ahead),
         strict_restore=t.boolean("strict_restore", d.strict_restore),
         log_rejected=t.integer("log_rejected", d.log_rejected, 0),
         max_abs_value=_max_abs_value(t, d.max_abs_value),
@@ -537,6 +542,17 @@ def _regression(data: object, path: str, fields: tuple[str, ...]) -> RegressionC
     return RegressionConfig(y=y, x=x, intercept=intercept)
 
 
+# Most quantiles, or outlier thresholds, one stream may ask for: each costs every
+# series a sample per field on every scrape and work on every flush.
+MAX_PER_STREAM = 32
+
+
+def _at_most(t: _Table, name: str, items: tuple) -> None:
+    if len(items) > MAX_PER_STREAM:
+        raise ConfigError(t.key(name), f"{len(items)} entries",
+                          f"is too many: at most {MAX_PER_STREAM} per stream")
+
+
 def _stream(data: object, path: str) -> StreamConfig:
     t = _Table(data, path, _STREAM_KEYS)
     name = t.string("name")
@@ -556,10 +572,12 @@ def _stream(data: object, path: str) -> StreamConfig:
     if half_life is not None:
         half_life = parse_half_life(half_life, t.key("half_life"))
     quantiles = t.numbers("quantiles", (0.5, 0.9, 0.99))
+    _at_most(t, "quantiles", quantiles)
     for q in quantiles:
         if not 0.0 < q < 1.0:
             raise ConfigError(t.key("quantiles"), q, "must lie strictly between 0 and 1")
     sigmas = t.numbers("outlier_sigmas", ())
+    _at_most(t, "outlier_sigmas", sigmas)
     for s in sigmas:
         if not (math.isfinite(s) and s > 0):
             raise ConfigError(t.key("outlier_sigmas"), s, "must be a finite number > 0")

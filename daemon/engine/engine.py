@@ -23,7 +23,14 @@ from sigmad.estimators.validation import screen_batch
 
 log = logging.getLogger("sigmad.engine")
 
-_ROUTE_CACHE_LIMIT = 65_536
+# The topic -> route cache keeps the routes of recently seen topics within this many
+# bytes (topics are at most max_topic_bytes long; an entry is counted as twice its
+# topic's length, the topic and its label strings, plus _ROUTE_ENTRY_BYTES of dict
+# slot and tuples).
+ROUTE_CACHE_BYTES = 8 << 20
+_ROUTE_ENTRY_BYTES = 300
+# (topic, length) pairs whose body taught no layout, remembered up to this many
+_NOT_LEARNT_LIMIT = 16_384
 _UNSEEN = object()
 _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
 # Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES are decoded
@@ -32,6 +39,9 @@ _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this 
 # (one costs about what 20 messages do decoded one by one), and a (topic, length)
 # whose body taught none is not tried again for RETRY_AFTER drains.
 LAYOUT_MIN_MESSAGES = 16
+# Bodies longer than this teach no layout (a plain single observation is far shorter;
+# the table keeps two copies of each body it learns from).
+LAYOUT_MAX_BYTES = 1024
 MAX_RUNS = 16
 LEARN_PER_DRAIN = 64
 RETRY_AFTER = 64
@@ -314,7 +324,12 @@ class Engine:
         self.streams = [StreamState(s, Reader(s.fields, max_bytes=d.max_message_bytes,
                                               max_rows=d.max_batch_rows).read)
                         for s in config.streams]
+        # two generations of routes: a hit in the older one moves the route to the
+        # newer; when the newer holds half of ROUTE_CACHE_BYTES it becomes the older
+        # and the older is dropped (least recently used first, with no work per hit)
         self._routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
+        self._older_routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
+        self._route_bytes = 0
         self._dirty: dict[int, Series] = {}
         self._views: dict = {}
         self.rejected: Counter[str] = Counter()
@@ -327,7 +342,9 @@ class Engine:
         self._log_window = 0.0
         self.snapshot = Snapshot(taken_at=0.0)
         self._max_bytes, self._max_rows = d.max_message_bytes, d.max_batch_rows
+        self._max_topic = d.max_topic_bytes
         self._max_skew = d.max_clock_skew
+        self._max_ahead = d.max_time_ahead
         self._layouts = LayoutTable(max(st.dim for st in self.streams) if self.streams else 1)
         self._not_learnt: dict[tuple[bytes, int], int] = {}
         self._drains = 0
@@ -339,37 +356,49 @@ class Engine:
         return self._routes
 
     def route(self, topic: bytes) -> tuple[StreamState, tuple[str, ...]] | None:
-        """The stream and label values for a topic (first matching stream wins)."""
+        """The stream and label values for a topic (first matching stream wins); None
+        for a topic no stream takes or one longer than max_topic_bytes (not cached)."""
         try:
             return self._routes[topic]
         except KeyError:
             pass
-        found = None
-        try:
-            text = topic.decode("utf-8")
-        except UnicodeDecodeError:
-            text = None
-        if text is not None:
-            for st in self.streams:
-                labels = st.cfg.topic.match(text)
-                if labels is not None:
-                    found = (st, labels)
-                    break
-        if len(self._routes) >= _ROUTE_CACHE_LIMIT:
-            self._routes.clear()
+        if len(topic) > self._max_topic:
+            return None
+        found = self._older_routes.pop(topic, _UNSEEN)
+        if found is _UNSEEN:
+            found = None
+            try:
+                text = topic.decode("utf-8")
+            except UnicodeDecodeError:
+                text = None
+            if text is not None:
+                for st in self.streams:
+                    labels = st.cfg.topic.match(text)
+                    if labels is not None:
+                        found = (st, labels)
+                        break
+        size = 2 * len(topic) + _ROUTE_ENTRY_BYTES
+        self._route_bytes += size
+        if self._route_bytes > ROUTE_CACHE_BYTES // 2:
+            self._older_routes, self._routes = self._routes, {}
+            self._route_bytes = size
         self._routes[topic] = found
         return found
 
     def reject(self, reason: str, count: int = 1, topic: bytes | str = b"", detail: str = "",
                now: float = 0.0) -> None:
-        """Count rejected observations by reason; log a bounded sample of them."""
+        """Count rejected observations by reason; log a bounded sample of them, one
+        line each of at most about 500 characters (topic and detail are cut)."""
         self.rejected[reason] += count
         if now - self._log_window >= 60.0:
             self._log_window, self._log_budget = now, self.config.daemon.log_rejected
         if self._log_budget > 0:
             self._log_budget -= 1
-            where = topic if isinstance(topic, str) else topic[:200].decode("utf-8", "replace")
-            log.warning("rejected %d observation(s) from %s: %s%s", count, where, reason,
+            where = topic[:200] if isinstance(topic, str) else \
+                topic[:200].decode("utf-8", "replace")
+            if len(detail) > 240:
+                detail = detail[:240] + "..."
+            log.warning("rejected %d observation(s) from %r: %s%s", count, where, reason,
                         f" ({detail})" if detail else "")
 
     def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "") -> int:
@@ -429,7 +458,7 @@ class Engine:
         self._drains += 1
         tried, learnt = self._not_learnt, False
         budget = max(LEARN_PER_DRAIN, len(bodies) // 8)
-        if len(tried) > _ROUTE_CACHE_LIMIT:
+        if len(tried) > _NOT_LEARNT_LIMIT:
             tried.clear()
         m = missing.tolist()
         keys = zip(compress(topics, m), compress(lengths.tolist(), m), strict=True)
@@ -437,9 +466,11 @@ class Engine:
             if self._drains - tried.get(key, -RETRY_AFTER) < RETRY_AFTER:
                 continue
             topic, length = key
+            if length > LAYOUT_MAX_BYTES or len(topic) > self._max_topic:
+                continue   # not a plain single observation, or a bad topic: nothing kept
             route = self.route(topic)   # cached after the first time
             layout = None
-            if route is not None and length <= self._max_bytes and _single(route[0], body):
+            if route is not None and _single(route[0], body):
                 layout = learn(body, route[0].fields, self._max_rows)
             if layout is None:
                 tried[key] = self._drains
@@ -492,16 +523,20 @@ class Engine:
             self._count_gaps(r.source[part][counted], r.seq[part][counted])
         route = r.route[part]
         keep = None
-        if r.has_time[part].any():
-            t = r.time[part]
-            with np.errstate(invalid="ignore"):
-                skewed = r.has_time[part] & np.isfinite(t) & (np.abs(t - now) > self._max_skew)
-            if skewed.any():
-                keep = ~skewed
-                _, ids, _, counts = runs(route[skewed])
-                for rid, count in zip(ids.tolist(), counts.tolist(), strict=True):
-                    self.reject("clock_skew", int(count),
-                                topic=_route_name(self._layouts.routes[rid]), now=now)
+        has_time = r.has_time[part]
+        if has_time.any():
+            future, skewed = self._off_clock(r.time[part], now)
+            future &= has_time
+            skewed &= has_time
+            if future.any() or skewed.any():
+                keep = ~(future | skewed)
+                for reason, off in (("future_time", future), ("clock_skew", skewed)):
+                    if not off.any():
+                        continue
+                    _, ids, _, counts = runs(route[off])
+                    for rid, count in zip(ids.tolist(), counts.tolist(), strict=True):
+                        self.reject(reason, int(count),
+                                    topic=_route_name(self._layouts.routes[rid]), now=now)
         at = np.arange(start, stop) if keep is None else np.flatnonzero(keep) + start
         if not at.size:
             return 0
@@ -571,14 +606,14 @@ class Engine:
 
         Each body becomes rows through its stream's :class:`~sigmad.daemon.ingest.wire.Reader`.
         Never raises on bad input: every rejection is counted by reason (``no_stream``,
-        the wire format's reasons, ``clock_skew``, ``series_limit``); rows of a bad
+        the wire format's reasons, ``future_time``, ``clock_skew``, ``series_limit``); rows of a bad
         value, weight or time are judged at the flush. A series is created only for
         rows that passed every check here, so rejected input adds no series. A single
         observation waits as a plain row in its series until the flush; arrival order
         is kept within each series. Returns the rows queued. O(total body length).
         """
         routes, route_of, reject = self._routes, self.route, self.reject
-        max_skew, count_gap = self._max_skew, self._count_gap
+        max_skew, max_ahead, count_gap = self._max_skew, self._max_ahead, self._count_gap
         isfinite = math.isfinite
         touched: dict[int, Series] = {}
         queued = 0
@@ -587,7 +622,8 @@ class Engine:
             if route is _UNSEEN:
                 route = route_of(topic)
             if route is None:
-                reject("no_stream", topic=topic, now=now)
+                reject("no_stream" if len(topic) <= self._max_topic else "bad_topic",
+                       topic=topic, now=now)
                 continue
             st, labels = route
             try:
@@ -600,9 +636,13 @@ class Engine:
                 count_gap(source, seq)
             single = type(dec) is Single
             if single:
-                if when is not None and abs(when - now) > max_skew and isfinite(when):
-                    reject("clock_skew", topic=topic, now=now)
-                    continue
+                if when is not None and isfinite(when):
+                    if when - now > max_ahead:
+                        reject("future_time", topic=topic, now=now)
+                        continue
+                    if abs(when - now) > max_skew:
+                        reject("clock_skew", topic=topic, now=now)
+                        continue
                 n = 1
             else:
                 dec = self._drop_skewed(dec, now, topic)
@@ -644,18 +684,29 @@ class Engine:
         if last is not None or len(self._last_seq) < _MAX_PRODUCERS:
             self._last_seq[source] = seq
 
+    def _off_clock(self, times: np.ndarray, now: float) -> tuple[np.ndarray, np.ndarray]:
+        """Masks of the event times ahead of ``now`` by more than max_time_ahead
+        (``future_time``) and of the others further than max_clock_skew from it
+        (``clock_skew``). Non-finite times are in neither: screen_batch counts them
+        as ``bad_time``. O(n)."""
+        with np.errstate(invalid="ignore"):
+            finite = np.isfinite(times)
+            ahead = times - now
+            future = finite & (ahead > self._max_ahead)
+            return future, finite & ~future & (np.abs(ahead) > self._max_skew)
+
     def _drop_skewed(self, dec, now: float, topic: bytes):
         """The decoded batch without rows whose event time is too far from ``now``."""
         times = dec.times
         if times is None:
             return dec
-        # non-finite times are left for screen_batch to count as bad_time
-        with np.errstate(invalid="ignore"):
-            skew = np.isfinite(times) & (np.abs(times - now) > self._max_skew)
-        if not skew.any():
+        future, skew = self._off_clock(times, now)
+        if not (future.any() or skew.any()):
             return dec
-        self.reject("clock_skew", int(skew.sum()), topic=topic, now=now)
-        keep = ~skew
+        for reason, off in (("future_time", future), ("clock_skew", skew)):
+            if off.any():
+                self.reject(reason, int(off.sum()), topic=topic, now=now)
+        keep = ~(future | skew)
         return dec._replace(values=dec.values[keep], times=times[keep],
                             weights=None if dec.weights is None else dec.weights[keep])
 

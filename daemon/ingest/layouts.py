@@ -44,6 +44,7 @@ _UNSIGNED_VIEW = {I1: np.uint8, I2: np.uint16, I4: np.uint32, I8: np.uint64,
                   FIXNEG: np.uint8}
 _MAX_DEPTH = 32          # nesting accepted inside ignored keys
 _TABLE_LIMIT = 65_536    # layouts kept before the table starts afresh
+_TABLE_BYTES = 16 << 20  # ... or bytes of layouts (each keeps its fixed bytes and mask)
 
 
 class _NotLearnt(Exception):
@@ -355,6 +356,7 @@ class LayoutTable:
         self._route_ids: dict = {}
         self._source_ids: dict[str, int] = {}
         self._keys = self._values = np.zeros(0, np.int64)   # _rows, sorted, for numpy
+        self._bytes = 0                     # fixed bytes and masks kept, forgotten included
 
     def __len__(self) -> int:
         return len(self._rows)
@@ -362,9 +364,11 @@ class LayoutTable:
     def add(self, topic: bytes, layout: Layout, route: object) -> None:
         """Keep ``layout`` for ``topic`` (replacing an older one of the same length).
         Amortised O(len(layout) + layouts kept), as the lookup arrays are rebuilt."""
-        if sum(g.n for g in self._groups.values()) >= _TABLE_LIMIT:
-            self.__init__(self.width)    # type: ignore[misc]   # bounded: relearn what recurs
         length = len(layout.fixed)
+        if (sum(g.n for g in self._groups.values()) >= _TABLE_LIMIT
+                or self._bytes + 2 * length > _TABLE_BYTES):
+            self.__init__(self.width)    # type: ignore[misc]   # bounded: relearn what recurs
+        self._bytes += 2 * length
         group = self._groups.get(length)
         if group is None:
             group = self._groups[length] = _Group(length, self.width + 3)

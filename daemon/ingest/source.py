@@ -5,7 +5,7 @@ from __future__ import annotations
 import zmq
 from sigmad.daemon.config.load import SourceConfig
 
-# A socket is drained until empty, this many messages or this many body bytes, so
+# A socket is drained until empty, this many messages or this many frame bytes, so
 # that one busy source cannot starve the others or grow a flush without bound.
 DRAIN_LIMIT = 5_000
 DRAIN_BYTES = 1 << 20
@@ -99,7 +99,7 @@ class Source:
                 if pair is not None:
                     add_topic(pair[0])
                     add_body(pair[1])
-            size += len(body)
+            size += len(topic) + len(body)
             if size >= DRAIN_BYTES:
                 break
         if topics:

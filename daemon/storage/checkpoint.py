@@ -66,6 +66,11 @@ MAX_STATE_BYTES = 1 << 30
 _LOGGED_DROPS = 20         # dropped series logged one by one at a restore; the rest counted
 
 
+# A checkpoint nests 8 levels (version 2); anything deeper is malformed, and is refused
+# before any reader walks it.
+MAX_DEPTH = 32
+
+
 class CheckpointError(Exception):
     """A checkpoint that cannot be used: names the file and what is wrong with it."""
 
@@ -125,7 +130,7 @@ def decode_checkpoint(data: bytes, path: str | os.PathLike = "<bytes>") -> Check
     if hashlib.sha256(payload).digest() != digest:
         raise CheckpointError(path, "checksum mismatch (the payload is corrupt)")
     try:
-        body = unpack_bounded(payload, strict_map_key=False)
+        body = unpack_bounded(payload, strict_map_key=False, max_depth=MAX_DEPTH)
     except MsgpackError as exc:
         raise CheckpointError(path, f"payload is not valid msgpack ({exc})") from None
     entries = "series" if version == 1 else "blocks"
