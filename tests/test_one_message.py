@@ -288,3 +288,51 @@ def test_one_future_dated_message_is_future_time_and_pins_nothing(daemon):
     # W decays from the rows' time to the scrape: a few seconds at a 10 min half-life
     weight = value(parsed, "sigmad_weight", stream="h", k="future")
     assert 0.5 ** ((time.time() - at) / 600) * 1000 <= weight <= 1000.0
+
+
+# ------------------------------------------------------------------------ frames
+# README, "Frames": frames are read two at a time, and ZeroMQ is asked whether more
+# follow only when a pair does not look like [topic, body]. Each case is queued
+# while the daemon is stopped, so that every frame has arrived when it is read. (A
+# one-frame [topic] then a one-frame [body] depends on whether the second has arrived
+# when the first is read, which no test can fix.)
+FRAMES = [
+    # (what, ZeroMQ messages sent, rows accepted, {reason: count})
+    ("a trailing frame", [[b"s.frames", _good(101.0), b"x"]], 1, {"bad_frames": 1}),
+    ("two trailing frames", [[b"s.frames", _good(102.0), b"", b""]], 1, {"no_stream": 1}),
+    ("three trailing frames", [[b"s.frames", _good(102.5), b"a", b"b", b"c"]], 1,
+     {"bad_frames": 1, "no_stream": 1}),
+    ("one empty frame", [[b""]], 0, {"bad_frames": 1}),
+    ("a map16 body and a trailing frame",
+     [[b"s.frames", b"\xde\x00\x01\xa6values\xcb" + struct.pack(">d", 103.0), b"x"]], 1,
+     {"bad_frames": 1}),
+    ("a body that is not a map, then a trailing frame", [[b"s.frames", b"\x01", b"x"]], 0,
+     {"bad_frames": 1, "no_stream": 1}),
+    ("a body that is not a map", [[b"s.frames", b"\x01"]], 0, {"not_a_map": 1}),
+]
+REASONS = ("bad_frames", "no_stream", "not_a_map", "not_msgpack")
+
+
+@pytest.mark.parametrize(("what", "messages", "rows", "counts"), FRAMES,
+                         ids=[f[0] for f in FRAMES])
+def test_frames_are_read_as_the_readme_says(daemon, what, messages, rows, counts):
+    key = "frames"
+    seen = value(daemon.metrics(), "sigmad_observations_total", stream="s", k=key) or 0.0
+    before = {r: _rejected(daemon, r) for r in REASONS}
+    x = [1.0, 2.0, 3.0]
+    daemon.proc.send_signal(signal.SIGSTOP)
+    try:
+        _send(daemon, b"s.frames", _good(x[0]))
+        for frames in messages:
+            _send(daemon, *frames)
+        for v in x[1:]:
+            _send(daemon, b"s.frames", _good(v))
+        time.sleep(0.2)   # into the kernel's socket buffers
+    finally:
+        daemon.proc.send_signal(signal.SIGCONT)
+    daemon.wait_for("sigmad_observations_total", seen + len(x) + rows, stream="s", k=key)
+    time.sleep(0.2)
+    assert {r: _rejected(daemon, r) - before[r] for r in REASONS} == \
+        {r: float(counts.get(r, 0)) for r in REASONS}
+    assert value(daemon.metrics(), "sigmad_observations_total", stream="s", k=key) == \
+        seen + len(x) + rows
