@@ -527,3 +527,25 @@ def test_bad_thresholds_name_stream_field_and_value(text, key, shown, words):
 def test_describe_lists_thresholds():
     text = describe(parse_config(minimal("thresholds = [100.0, 300.0]")))
     assert "thresholds  ms > 100, 300" in text
+
+
+# ------------------------------------------------- bounds on what one stream may ask
+@pytest.mark.parametrize("key", ["quantiles", "outlier_sigmas"])
+def test_at_most_32_quantiles_or_thresholds_per_stream(key):
+    values = [round(0.01 + i * 0.0009, 4) if key == "quantiles" else 1.0 + i
+              for i in range(33)]
+    assert len(parse_config(minimal(f"{key} = {values[:32]}\n")).streams[0]
+               .__getattribute__(key)) == 32
+    exc = error(minimal(f"{key} = {values}\n"))
+    assert exc.key == f"stream[0].{key}" and "at most 32" in str(exc)
+
+
+def test_topic_and_time_ahead_bounds_have_defaults_and_are_checked():
+    d = parse_config(minimal()).daemon
+    assert (d.max_topic_bytes, d.max_time_ahead) == (256, 10.0)
+    d = parse_config(minimal(head='[daemon]\nmax_topic_bytes = 64\nmax_time_ahead = "2s"\n'))
+    assert (d.daemon.max_topic_bytes, d.daemon.max_time_ahead) == (64, 2.0)
+    assert error(minimal(head="[daemon]\nmax_topic_bytes = 0\n")).key == \
+        "daemon.max_topic_bytes"
+    assert error(minimal(head='[daemon]\nmax_time_ahead = "soon"\n')).key == \
+        "daemon.max_time_ahead"

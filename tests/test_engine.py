@@ -85,3 +85,33 @@ def test_many_at_once_equals_one_by_one_for_every_message_shape(latency_and_pair
     assert many.snapshot.series == one.snapshot.series
     assert many.rejected == one.rejected and many.gaps == one.gaps
     assert many.messages == one.messages
+
+
+def test_the_route_cache_keeps_recent_topics_within_its_byte_budget(latency_and_pair):
+    # 200,000 distinct 100-byte topics no stream takes, one topic used now and then:
+    # the cache stays within ROUTE_CACHE_BYTES (as it counts entries) and the topic
+    # in use keeps its cached route (least recently used go first)
+    from sigmad.daemon.engine.engine import _ROUTE_ENTRY_BYTES, ROUTE_CACHE_BYTES
+
+    e = _engine(latency_and_pair)
+    keep = e.route(b"lat.keep")
+    assert keep is not None
+    for i in range(200_000):
+        assert e.route(b"n.%06d." % i + b"x" * 92) is None
+        if i % 1000 == 0:
+            assert e.route(b"lat.keep") is keep
+    cached = [*e._routes, *e._older_routes]
+    assert len(cached) < 200_000 // 4
+    assert sum(2 * len(t) + _ROUTE_ENTRY_BYTES for t in cached) <= ROUTE_CACHE_BYTES
+
+
+def test_a_topic_longer_than_max_topic_bytes_is_bad_topic_and_not_cached(latency_and_pair):
+    e = _engine(latency_and_pair.replace('topic = "lat.{service}"', 'topic = "lat.{a}.{b}.{c}"'))
+    label = "x" * 84                       # label values hold at most 128 characters
+    ok = f"lat.{label}.{label}.{label[:-2]}".encode()
+    assert len(ok) == 256                  # the default max_topic_bytes: taken
+    long = ok + b"x"                       # one byte over: bad_topic
+    assert e.ingest(long, encode({"ms": 1.0}), now=1000.0) == 0
+    assert e.rejected == {"bad_topic": 1}
+    assert long not in e.routes_seen and e.route(long) is None
+    assert e.ingest(ok, encode({"ms": 1.0}), now=1000.0) == 1

@@ -20,7 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from sigmad.daemon.config.load import parse_config
 from sigmad.daemon.engine.engine import Engine
-from sigmad.daemon.ingest.layouts import LayoutTable, learn, learn_batch, runs
+from sigmad.daemon.ingest.layouts import LayoutTable, learn, runs
 from sigmad.daemon.ingest.wire import encode
 from test_hostile import CONFIG as HOSTILE_CONFIG
 
@@ -237,12 +237,12 @@ def test_layouts_read_fuzzed_drains_exactly_as_messages_one_by_one(batch):
 
 def test_the_steady_state_reads_every_message_through_layouts(monkeypatch):
     seen = []
-    each = Engine._ingest_each
+    each = Engine._decode_each
 
     def counting(self, topics, bodies, now, endpoint=""):
         seen.append(len(bodies))
         return each(self, topics, bodies, now, endpoint)
-    monkeypatch.setattr(Engine, "_ingest_each", counting)
+    monkeypatch.setattr(Engine, "_decode_each", counting)
     rng = np.random.default_rng(3)
     x = rng.normal(20.0, 4.0, 3000)
     bodies = [encode({"v": float(v)}, source="gw", seq=1000 + i) for i, v in enumerate(x)]
@@ -277,83 +277,3 @@ def test_series_beyond_max_series_are_refused_in_order_of_first_arrival():
     one, many = _feed_both([drain, drain])
     _assert_same(one, many)
     assert one.rejected["series_limit"] == 32   # a.3 and a.4: 8 messages each, twice
-
-
-# ------------------------------------------------------------ binary batches
-def _bin_body(values, weights=None, **extra) -> bytes:
-    body = {"values": {"v": np.asarray(values, "<f8").tobytes()}, **extra}
-    if weights is not None:
-        body["weight"] = np.asarray(weights, "<f8").tobytes()
-    return _packed(body)
-
-
-@pytest.mark.parametrize("body", [
-    _bin_body([1.5, -2.0, 3.25]),
-    _bin_body([1.5, 2.0], [0.5, 4.0], source="gw-7", seq=70_000),
-    _bin_body([9.0], seq=5, source="s", time=None, note=[1, "x"]),
-    _packed({"values": np.arange(4.0).tobytes(), "weight": None, "seq": 2**40,
-             "source": "s"}),
-])
-def test_a_batch_layout_reads_as_msgpack_reads_it(body):
-    ref = msgpack.unpackb(body)   # the reference reading (msgpack's own unpacker)
-    values = ref["values"]["v"] if isinstance(ref["values"], dict) else ref["values"]
-    x, w, source, seq = learn_batch(body, "v", 64).read(body)
-    np.testing.assert_array_equal(x, np.frombuffer(values, "<f8"))
-    if ref.get("weight") is None:
-        assert w is None
-    else:
-        np.testing.assert_array_equal(w, np.frombuffer(ref["weight"], "<f8"))
-    assert source == ref.get("source") and seq == ref.get("seq")
-
-
-@pytest.mark.parametrize("body", [
-    _bin_body([1.0, 2.0], time=5.0),                    # a time: not the binary path
-    _bin_body([1.0, 2.0], seq=3),                       # seq without source
-    _bin_body([1.0, 2.0], [1.0]),                       # weights of another length
-    _packed({"values": {"v": 1.0}}),                    # one observation
-    _packed({"values": {"v": b"\x00" * 12}}),           # not a multiple of 8 bytes
-    _packed({"values": {"v": np.arange(65.0).tobytes()}}),   # over max_rows (64)
-    _bin_body([1.0], source="a\x00"),
-])
-def test_bodies_off_the_binary_path_teach_no_batch_layout(body):
-    assert learn_batch(body, "v", 64) is None
-
-
-def test_a_batch_layout_fits_only_its_fixed_bytes_and_a_fixint_seq():
-    layout = learn_batch(_bin_body([1.0, 2.0], source="aa", seq=5), "v", 64)
-    assert layout.read(_bin_body([3.0, 4.0], source="aa", seq=127))[3] == 127
-    assert layout.read(_bin_body([3.0, 4.0], source="ab", seq=5)) is None
-    body = bytearray(_bin_body([3.0, 4.0], source="aa", seq=5))
-    body[-1] = 0xCC   # a uint8 header where the fixint was: not this layout
-    assert layout.read(bytes(body)) is None
-
-
-batch_body = st.builds(
-    lambda n, vals, weighted, extra, flip: (n, vals, weighted, extra, flip),
-    st.integers(1, 4), st.lists(st.one_of(st.floats(-1e6, 1e6), st.just(math.nan)),
-                                min_size=4, max_size=4),
-    st.sampled_from([None, "same", "short"]),
-    st.fixed_dictionaries({}, optional={
-        "source": st.sampled_from(["p1", "p2", "", "\x01"]),
-        "seq": st.one_of(st.integers(0, 300), st.just(-1)),
-        "time": st.one_of(st.none(), st.just(NOW)), "note": st.text(max_size=2)}),
-    st.integers(0, 12))
-
-
-@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(st.lists(st.tuples(st.sampled_from([b"a.x", b"a.y", b"p.q"]), batch_body),
-                min_size=1, max_size=30))
-@pytest.mark.slow
-def test_batch_layouts_read_fuzzed_batches_exactly_as_messages_one_by_one(messages):
-    drain = []
-    for topic, (n, vals, weighted, extra, flip) in messages:
-        weights = None if weighted is None else [1.0] * (n if weighted == "same" else n + 1)
-        body = _bin_body(vals[:n], weights, **extra)
-        if flip == 0:   # a body of a known length that no longer fits
-            body = body[:-1] + bytes([body[-1] ^ 0x41])
-        drain.append((topic, body))
-    with pytest.MonkeyPatch.context() as mp:
-        mp.setattr(engine_module, "BATCH_LAYOUT_BYTES", 1)
-        mp.setattr(engine_module, "LAYOUT_MIN_MESSAGES", 10**9)   # message by message
-        one, many = _feed_both([drain, drain, drain])
-    _assert_same(one, many)

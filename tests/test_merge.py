@@ -49,6 +49,7 @@ HEAD = """
 http = "{HTTP}"
 flush_every = "20ms"
 max_clock_skew = "1h"
+max_time_ahead = "1h"
 """
 SOURCE = """
 [[source]]

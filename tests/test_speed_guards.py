@@ -24,13 +24,13 @@ def _better_of_two(measure, higher_is_better: bool = True):
 
 
 def test_single_observations_keep_half_the_target_share_of_the_bare_loop_rate():
-    row = bench.bench_single(50_000)    # target 0.5 (best of 3 interleaved runs each side)
-    assert row.ratio >= 0.25, row.cells()
+    row, _ = bench.bench_single(50_000)    # target 0.8 (best of 3 interleaved runs each side)
+    assert row.ratio >= 0.4, row.cells()
 
 
-def test_binary_batches_keep_an_eighth_of_numpy_two_pass_rate():
-    row = _better_of_two(lambda: bench.bench_batches(3_000))    # target 0.25
-    assert row.ratio >= 0.125, row.cells()
+def test_binary_batches_keep_half_the_target_share_of_numpy_two_pass_rate():
+    row = _better_of_two(lambda: bench.bench_batches(3_000))    # target 0.4
+    assert row.ratio >= 0.2, row.cells()
 
 
 def test_mixture_stream_keeps_half_the_rate_of_one_scikit_learn_em_iteration():
@@ -39,9 +39,9 @@ def test_mixture_stream_keeps_half_the_rate_of_one_scikit_learn_em_iteration():
     assert row.met is not None and row.ratio >= 0.5, row.cells()
 
 
-def test_a_scrape_of_cached_series_takes_at_most_0_6_of_generate_latest():
-    row = bench.bench_scrape(2_000)            # target 0.3
-    assert row.ratio <= 0.6, row.cells()
+def test_a_scrape_of_cached_series_takes_at_most_twice_the_target_share_of_generate_latest():
+    row = bench.bench_scrape(2_000)            # target 0.15
+    assert row.ratio <= 0.3, row.cells()
 
 
 @pytest.mark.skipif(not bench.os.path.exists("/proc/self/status"), reason="needs /proc")

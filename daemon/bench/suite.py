@@ -3,11 +3,16 @@ is measured against in the same run.
 
 Every figure is a ratio to a reference measured in the same process, so the
 table travels between machines: a bare Python receive-and-decode loop over
-the same messages, numpy's two-pass weighted mean and variance over the same
-values, one EM iteration of scikit-learn's GaussianMixture (when installed),
-prometheus-client's own renderer over the same samples, and fixed memory and
-time budgets. A reference that uses BLAS is measured with OpenBLAS's default
-thread count and with the one thread the daemon runs with, and the faster counts.
+the same messages (the fastest of several decoders), numpy's two-pass weighted
+mean and variance over the same values, one EM iteration of scikit-learn's
+GaussianMixture (when installed), prometheus-client's own renderer over the same
+samples, and fixed memory and time budgets. A reference that uses BLAS is
+measured with OpenBLAS's default thread count and with the one thread the daemon
+runs with, and the faster counts.
+
+The bare loop is timed with each of msgpack's decoder, msgspec's untyped one and
+msgspec's typed one (a struct of the message's shape), and the fastest is the
+reference.
 
 The socket figures use a real ZeroMQ PUSH producer in a child process; the
 messages are queued on loopback tcp before timing starts, so the producer's
@@ -26,6 +31,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import msgpack
+import msgspec
 import numpy as np
 import zmq
 from sigmad.daemon.config.load import parse_config
@@ -86,18 +92,37 @@ class _Feed:
         self.proc.join(5)
 
 
-def _bare_rate(frames: list[tuple[bytes, bytes]]) -> float:
-    """Messages/s of the plainest Python loop: recv, recv, msgpack.unpackb."""
+class _Values(msgspec.Struct, gc=False):
+    v: float
+
+
+class _Observation(msgspec.Struct, gc=False):
+    """The bench's single observation, typed: what a decoder that knows the shape reads."""
+
+    values: _Values
+    source: str | None = None
+    seq: int | None = None
+
+
+def _bare_decoders() -> dict[str, Callable[[bytes], object]]:
+    """The plainest decoders of a body: msgpack's, and msgspec's untyped and typed."""
+    return {"msgpack.unpackb": msgpack.unpackb,
+            "msgspec": msgspec.msgpack.Decoder().decode,
+            "msgspec typed": msgspec.msgpack.Decoder(_Observation).decode}
+
+
+def _bare_rate(frames: list[tuple[bytes, bytes]], decode: Callable[[bytes], object]) -> float:
+    """Messages/s of the plainest Python loop: recv, recv, decode."""
     ctx = zmq.Context()
     pull = ctx.socket(zmq.PULL)
     pull.setsockopt(zmq.RCVHWM, 0)
     port = pull.bind_to_random_port("tcp://127.0.0.1")
     feed = _Feed(f"tcp://127.0.0.1:{port}", frames)
-    unpackb, recv = msgpack.unpackb, pull.recv
+    recv = pull.recv
     t0 = time.perf_counter()
     for _ in range(len(frames)):
         recv()
-        unpackb(recv())
+        decode(recv())
     elapsed = time.perf_counter() - t0
     feed.close()
     pull.close(0)
@@ -151,16 +176,27 @@ max_series = 200000
 """
 
 
-def bench_single(n: int, repeat: int = 3) -> Row:
+def bench_single(n: int, repeat: int = 3) -> list[Row]:
+    """Two rows: the daemon against the bare loop with msgpack's decoder (the reference
+    of the target), and against the fastest bare loop of all decoders."""
     rng = np.random.default_rng(1)
     frames = [(b"bench.a", msgpack.packb({"values": {"v": float(v)}, "source": "b", "seq": i}))
               for i, v in enumerate(rng.normal(size=n))]
-    bare = ours = 0.0
-    for _ in range(repeat):   # interleaved, best of each: both sides see the same noise
-        bare = max(bare, _bare_rate(frames))
+    decoders = _bare_decoders()
+    bare = dict.fromkeys(decoders, 0.0)
+    ours = 0.0
+    for _ in range(repeat):   # interleaved, best of each: every side sees the same noise
+        for name, decode in decoders.items():
+            bare[name] = max(bare[name], _bare_rate(frames, decode))
         ours = max(ours, _daemon_rate(_SCALAR, frames, n))
-    return Row("single observations, moments + outliers", f"{ours:,.0f} obs/s",
-               f"bare recv+decode {bare:,.0f} msg/s", ours / bare, ">= 0.5", ours / bare >= 0.5)
+    fastest = max(bare, key=bare.get)
+    plain = bare["msgpack.unpackb"]
+    return [Row("single observations, moments + outliers", f"{ours:,.0f} obs/s",
+                f"bare recv+msgpack.unpackb {plain:,.0f} msg/s", ours / plain, ">= 0.8",
+                ours / plain >= 0.8),
+            Row("single observations, fastest bare loop", f"{ours:,.0f} obs/s",
+                f"bare recv+{fastest} {bare[fastest]:,.0f} msg/s", ours / bare[fastest],
+                ">= 0.8", ours / bare[fastest] >= 0.8)]
 
 
 _LEGS = _SCALAR.replace('''name = "bench"
@@ -247,8 +283,8 @@ def bench_batches(n_batches: int, repeat: int = 2) -> Row:
     ref = x.size / _best(numpy_two_pass)
     ours = max(_daemon_rate(_SCALAR, frames, x.size) for _ in range(repeat))
     return Row("1,000-row binary batches, moments", f"{ours:,.0f} obs/s",
-               f"numpy two-pass weighted mean/var {ref:,.0f} obs/s", ours / ref, ">= 0.25",
-               ours / ref >= 0.25)
+               f"numpy two-pass weighted mean/var {ref:,.0f} obs/s", ours / ref, ">= 0.4",
+               ours / ref >= 0.4)
 
 
 def bench_mixture(n_batches: int) -> Row:
@@ -316,7 +352,7 @@ def bench_scrape(n_series: int) -> Row:
     per = len(generate_latest(reg).splitlines()) / n_series
     return Row(f"scrape of {n_series:,} series (~{per:.0f} samples each)",
                f"{ours * 1e3:,.1f} ms", f"generate_latest {ref * 1e3:,.1f} ms", ours / ref,
-               "<= 0.3", ours / ref <= 0.3)
+               "<= 0.15", ours / ref <= 0.15)
 
 
 def bench_memory(low: int, high: int, whole: int, kinds_range: tuple[int, int],

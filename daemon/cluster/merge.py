@@ -31,7 +31,6 @@ from collections import Counter
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 
-import msgpack
 import zmq
 from prometheus_client.metrics_core import Metric
 from sigmad.daemon.cluster.publish import MAX_STATE_BYTES, STATE_FORMAT, STATE_TOPIC
@@ -39,6 +38,7 @@ from sigmad.daemon.config.load import Config
 from sigmad.daemon.engine.engine import Series, StreamState, restore_series, series_state, view_of
 from sigmad.daemon.engine.snapshot import Health, SeriesView, Snapshot
 from sigmad.daemon.export.model import METRICS
+from sigmad.daemon.ingest.wire import MsgpackError, unpack_bounded
 from sigmad.estimators import IncompatibleError, Volatility
 
 log = logging.getLogger("sigmad.merge")
@@ -66,11 +66,9 @@ def decode_state(body: bytes) -> dict:
     if n > MAX_STATE_BYTES:
         raise StateError("state_too_large", f"{n} bytes exceeds {MAX_STATE_BYTES}")
     try:
-        msg = msgpack.unpackb(body, raw=False, strict_map_key=True,
-                              max_str_len=n, max_bin_len=n, max_array_len=n, max_map_len=n,
-                              max_ext_len=0)
-    except ValueError as exc:   # every msgpack decoding error is a ValueError
-        raise StateError("state_malformed", f"not msgpack ({type(exc).__name__})") from None
+        msg = unpack_bounded(body, max_depth=32)   # a state message nests about 8 levels
+    except MsgpackError as exc:
+        raise StateError("state_malformed", f"not msgpack ({exc.kind})") from None
     if not isinstance(msg, dict):
         raise StateError("state_malformed", "not a map")
     if msg.get("format") != STATE_FORMAT:

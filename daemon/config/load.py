@@ -108,8 +108,10 @@ class DaemonConfig:
     tls_client_ca: str | None = None
     max_message_bytes: int = 1_048_576
     max_batch_rows: int = 100_000
+    max_topic_bytes: int = 256
     flush_every: float = _duration(0.05)
     max_clock_skew: float = _duration(86400.0)
+    max_time_ahead: float = _duration(10.0)
     max_abs_value: float = 1e100
     strict_restore: bool = False
     log_rejected: int = 10
@@ -583,8 +585,10 @@ def _daemon(data: object) -> DaemonConfig:
         tls_client_ca=t.path_string("tls_client_ca"),
         max_message_bytes=t.integer("max_message_bytes", minimum=16, maximum=2**31 - 1),
         max_batch_rows=t.integer("max_batch_rows", minimum=1, maximum=2**31 - 1),
+        max_topic_bytes=t.integer("max_topic_bytes", minimum=1, maximum=65536),
         flush_every=t.duration("flush_every"),
         max_clock_skew=t.duration("max_clock_skew"),
+        max_time_ahead=t.duration("max_time_ahead"),
         strict_restore=t.boolean("strict_restore"),
         log_rejected=t.integer("log_rejected", minimum=0),
         max_abs_value=_max_abs_value(t),
@@ -855,6 +859,17 @@ def _thresholds(value: object, key: str, stream: str,
     return tuple(out)
 
 
+# Most quantiles, or outlier thresholds, one stream may ask for: each costs every
+# series a sample per field on every scrape and work on every flush.
+MAX_PER_STREAM = 32
+
+
+def _at_most(t: _Table, name: str, items: tuple) -> None:
+    if len(items) > MAX_PER_STREAM:
+        raise ConfigError(t.key(name), f"{len(items)} entries",
+                          f"is too many: at most {MAX_PER_STREAM} per stream")
+
+
 def _stream(data: object, path: str) -> StreamConfig:
     t = _Table(data, path, StreamConfig, extra=("separator",))   # separator: of the topic
     name = t.string("name")
@@ -877,10 +892,12 @@ def _stream(data: object, path: str) -> StreamConfig:
     if half_life is not None:
         half_life = parse_half_life(half_life, t.key("half_life"))
     quantiles = t.numbers("quantiles")
+    _at_most(t, "quantiles", quantiles)
     for q in quantiles:
         if not 0.0 < q < 1.0:
             raise ConfigError(t.key("quantiles"), q, "must lie strictly between 0 and 1")
     sigmas = t.numbers("outlier_sigmas")
+    _at_most(t, "outlier_sigmas", sigmas)
     for s in sigmas:
         if not (math.isfinite(s) and s > 0):
             raise ConfigError(t.key("outlier_sigmas"), s, "must be a finite number > 0")

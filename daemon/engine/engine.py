@@ -6,20 +6,18 @@ state, so the hot path takes no locks. Readers get immutable ``Snapshot``s.
 
 from __future__ import annotations
 
-import functools
 import logging
 import math
 from collections import Counter
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from itertools import compress
 
-import msgpack
 import numpy as np
 from sigmad.daemon.config.load import Config, StreamConfig
 from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
-from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
-from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
+from sigmad.daemon.ingest.layouts import LayoutTable, Readout, learn, runs
+from sigmad.daemon.ingest.wire import Reader, Single, WireError
 from sigmad.estimators import (
     IncompatibleError,
     Legs,
@@ -35,23 +33,28 @@ from sigmad.estimators.validation import screen_batch
 
 log = logging.getLogger("sigmad.engine")
 
-_ROUTE_CACHE_LIMIT = 65_536
+# The topic -> route cache keeps the routes of recently seen topics within this many
+# bytes (topics are at most max_topic_bytes long; an entry is counted as twice its
+# topic's length, the topic and its label strings, plus _ROUTE_ENTRY_BYTES of dict
+# slot and tuples).
+ROUTE_CACHE_BYTES = 8 << 20
+_ROUTE_ENTRY_BYTES = 300
+# (topic, length) pairs whose body taught no layout, remembered up to this many
+_NOT_LEARNT_LIMIT = 16_384
 _UNSEEN = object()
-_F8 = np.dtype("<f8")
-_PLAIN = frozenset((float, int))   # value types a single observation may use
 _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
-# Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES go message
-# by message, and so does a drain that misfits cut into more than MAX_RUNS blocks.
-# A drain of n messages learns at most max(LEARN_PER_DRAIN, n // 8) layouts (one
-# costs about what 20 messages do message by message), and a (topic, length) whose
-# body taught none is not tried again for RETRY_AFTER drains.
+# Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES are decoded
+# message by message, and so is a drain that misfits cut into more than MAX_RUNS
+# blocks. A drain of n messages learns at most max(LEARN_PER_DRAIN, n // 8) layouts
+# (one costs about what 20 messages do decoded one by one), and a (topic, length)
+# whose body taught none is not tried again for RETRY_AFTER drains.
 LAYOUT_MIN_MESSAGES = 16
+# Bodies longer than this teach no layout (a plain single observation is far shorter;
+# the table keeps two copies of each body it learns from).
+LAYOUT_MAX_BYTES = 1024
 MAX_RUNS = 16
 LEARN_PER_DRAIN = 64
 RETRY_AFTER = 64
-# One-field binary batches of at least this many bytes are read by a learnt
-# BatchLayout (no unpacking) once their (topic, length) has been seen twice.
-BATCH_LAYOUT_BYTES = 256
 
 
 def _floats(a) -> tuple[float, ...]:
@@ -62,6 +65,15 @@ def _route_name(route: tuple) -> str:
     """How a (stream, labels) route, and so its series, is named in the rejection log."""
     st, labels = route
     return f"{st.name}{dict(zip(st.cfg.topic.labels, labels, strict=True)) or ''}"
+
+
+def _single(st: StreamState, body: bytes) -> bool:
+    """Whether the stream's reader takes ``body`` for one plain observation: the only
+    bodies a byte layout is learnt from."""
+    try:
+        return type(st.read(body)) is Single
+    except WireError:
+        return False
 
 
 def _where(series: Series) -> str:
@@ -152,8 +164,10 @@ class LegState:
     stream of the leg's one field; its rows are queued, tagged with the leg, on the joined
     stream's series of the same labels (created there, up to its max_series)."""
 
-    def __init__(self, joined: StreamState, index: int, field: str, topic, engine) -> None:
+    def __init__(self, joined: StreamState, index: int, field: str, topic, engine,
+                 read: Callable) -> None:
         self.joined, self.index, self.engine = joined, index, engine
+        self.read = read
         self.cfg = joined.cfg
         self.name = joined.name
         self.topic = topic
@@ -178,10 +192,12 @@ class LegState:
 
 
 class StreamState:
-    """A configured stream and its live series."""
+    """A configured stream and its live series; ``read`` turns one of its message
+    bodies into rows (``Reader.read``; None where the stream takes no messages)."""
 
-    def __init__(self, cfg: StreamConfig) -> None:
+    def __init__(self, cfg: StreamConfig, read: Callable | None = None) -> None:
         self.cfg = cfg
+        self.read = read
         self.name = cfg.name
         self.topic = None if cfg.legs else cfg.topic   # None: routed through its legs
         self.next_reset: float | None = None           # the next session boundary
@@ -484,12 +500,23 @@ class Engine:
 
     def __init__(self, config: Config) -> None:
         self.config = config
-        self.streams = [StreamState(s) for s in config.streams]
+        d = config.daemon
+
+        def reader(fields: tuple[str, ...]) -> Callable:
+            return Reader(fields, max_bytes=d.max_message_bytes, max_rows=d.max_batch_rows).read
+
+        self.streams = [StreamState(s, None if s.legs else reader(s.fields))
+                        for s in config.streams]
         # what topics route to: plain streams, and each leg of a joined one
         self._routable = [st for st in self.streams if st.topic is not None] + [
-            LegState(st, i, f, tpl, self) for st in self.streams
+            LegState(st, i, f, tpl, self, reader((f,))) for st in self.streams
             for i, (f, tpl) in enumerate(st.cfg.legs or ())]
+        # two generations of routes: a hit in the older one moves the route to the
+        # newer; when the newer holds half of ROUTE_CACHE_BYTES it becomes the older
+        # and the older is dropped (least recently used first, with no work per hit)
         self._routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
+        self._older_routes: dict[bytes, tuple[StreamState, tuple[str, ...]] | None] = {}
+        self._route_bytes = 0
         self._dirty: dict[int, Series] = {}
         self._sessions = [st for st in self.streams if st.cfg.session_reset is not None]
         self._closed: dict[str, tuple] = {}   # stream -> (boundary, closing views)
@@ -503,19 +530,13 @@ class Engine:
         self._log_budget = config.daemon.log_rejected
         self._log_window = 0.0
         self.snapshot = Snapshot(taken_at=0.0)
-        d = config.daemon
         self._max_bytes, self._max_rows = d.max_message_bytes, d.max_batch_rows
+        self._max_topic = d.max_topic_bytes
         self._max_skew = d.max_clock_skew
+        self._max_ahead = d.max_time_ahead
         self._layouts = LayoutTable(max(st.dim for st in self.streams) if self.streams else 1)
         self._not_learnt: dict[tuple[bytes, int], int] = {}
-        self._batch_layouts: dict[tuple[bytes, int], BatchLayout] = {}
-        self._batch_lengths_seen: dict[tuple[bytes, int], bool] = {}
         self._drains = 0
-        # the hot path unpacks with fixed limits (the general path's are tighter)
-        self._unpack_one = functools.partial(
-            msgpack.unpackb, use_list=False, max_str_len=d.max_message_bytes,
-            max_bin_len=d.max_message_bytes, max_ext_len=0, max_array_len=d.max_batch_rows,
-            max_map_len=d.max_message_bytes // 2)
 
     # ------------------------------------------------------------- ingest
     @property
@@ -524,117 +545,74 @@ class Engine:
         return self._routes
 
     def route(self, topic: bytes) -> tuple[StreamState, tuple[str, ...]] | None:
-        """The stream and label values for a topic (first matching stream wins)."""
+        """The stream and label values for a topic (first matching stream wins); None
+        for a topic no stream takes or one longer than max_topic_bytes (not cached)."""
         try:
             return self._routes[topic]
         except KeyError:
             pass
-        found = None
-        try:
-            text = topic.decode("utf-8")
-        except UnicodeDecodeError:
-            text = None
-        if text is not None:
-            for st in self._routable:
-                labels = st.topic.match(text)
-                if labels is not None:
-                    found = (st, labels)
-                    break
-        if len(self._routes) >= _ROUTE_CACHE_LIMIT:
-            self._routes.clear()
+        if len(topic) > self._max_topic:
+            return None
+        found = self._older_routes.pop(topic, _UNSEEN)
+        if found is _UNSEEN:
+            found = None
+            try:
+                text = topic.decode("utf-8")
+            except UnicodeDecodeError:
+                text = None
+            if text is not None:
+                for st in self._routable:
+                    labels = st.topic.match(text)
+                    if labels is not None:
+                        found = (st, labels)
+                        break
+        size = 2 * len(topic) + _ROUTE_ENTRY_BYTES
+        self._route_bytes += size
+        if self._route_bytes > ROUTE_CACHE_BYTES // 2:
+            self._older_routes, self._routes = self._routes, {}
+            self._route_bytes = size
         self._routes[topic] = found
         return found
 
     def reject(self, reason: str, count: int = 1, topic: bytes | str = b"", detail: str = "",
                now: float = 0.0) -> None:
-        """Count rejected observations by reason; log a bounded sample of them."""
+        """Count rejected observations by reason; log a bounded sample of them, one
+        line each of at most about 500 characters (topic and detail are cut)."""
         self.rejected[reason] += count
         if now - self._log_window >= 60.0:
             self._log_window, self._log_budget = now, self.config.daemon.log_rejected
         if self._log_budget > 0:
             self._log_budget -= 1
-            where = topic if isinstance(topic, str) else topic[:200].decode("utf-8", "replace")
-            log.warning("rejected %d observation(s) from %s: %s%s", count, where, reason,
+            where = topic[:200] if isinstance(topic, str) else \
+                topic[:200].decode("utf-8", "replace")
+            if len(detail) > 240:
+                detail = detail[:240] + "..."
+            log.warning("rejected %d observation(s) from %r: %s%s", count, where, reason,
                         f" ({detail})" if detail else "")
 
-    def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "",
-               unpacked: dict | None = None) -> int:
-        """Decode one message and queue its rows for the next flush.
-
-        Returns the number of rows queued (0 when the message was rejected). Never
-        raises on bad input: every rejection is counted by reason. A single
-        observation of plain numbers takes a short path that builds no arrays;
-        its row waits in a list until the flush. ``unpacked`` is the body already
-        unpacked without error by the caller (unpacking twice is what it saves).
-        O(len(body)).
-        """
-        self.messages[endpoint] += 1
-        route = self._routes.get(topic, _UNSEEN)
-        if route is _UNSEEN:
-            route = self.route(topic)
-        if route is None:
-            self.reject("no_stream", topic=topic, now=now)
-            return 0
-        st, labels = route
-        try:
-            msg = unpacked if type(unpacked) is dict else \
-                unpack(body, max_bytes=self._max_bytes, max_rows=self._max_rows)
-            one = single(msg, st.fields)
-            dec = interpret(msg, st.fields, max_rows=self._max_rows) if one is None else None
-            source, seq = origin(msg)
-        except WireError as exc:
-            self.reject(exc.reason, topic=topic, detail=exc.detail, now=now)
-            return 0
-        if seq is not None and source is not None:
-            self._count_gap(source, seq)
-        if dec is None:
-            row, weight, when = one
-            if when is not None and abs(when - now) > self._max_skew and math.isfinite(when):
-                self.reject("clock_skew", topic=topic, now=now)
-                return 0
-            n = 1
-        else:
-            dec = self._drop_skewed(dec, now, topic)
-            n = dec.values.shape[0]
-            if n == 0:
-                return 0
-        # created only for rows that passed every check here: rejected input adds no series
-        series = st.series.get(labels)
-        if series is None:
-            if len(st.series) >= st.cfg.max_series:
-                self.reject("series_limit", n, topic=topic, now=now)
-                return 0
-            series = st.series[labels] = st.new_series(labels)
-        if dec is None:
-            series.rows = [*series.rows, row[0] if st.dim == 1 else row]
-            if weight is not None or when is not None:
-                series.extras = [*series.extras, (len(series.rows) - 1, weight, when)]
-            series.seal_rows(now)
-        else:
-            series.seal_rows(now)   # keep arrival order: single rows queued so far go first
-            series.queue((dec.values, dec.weights, dec.times, now))
-        self.pending_rows += n
-        self._dirty[id(series)] = series
-        return n
+    def ingest(self, topic: bytes, body: bytes, now: float, endpoint: str = "") -> int:
+        """Decode one message and queue its rows for the next flush. Returns the number
+        of rows queued (0 when it was rejected). See :meth:`_decode_each`."""
+        return self._decode_each((topic,), (body,), now, endpoint)
 
     def ingest_many(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
                     endpoint: str = "") -> int:
         """``ingest`` for many messages that arrived together (message i is
         ``[topics[i], bodies[i]]``): the daemon's hot path.
 
-        Bodies that fit a learnt byte layout (:mod:`daemon.layouts`: the same
+        Bodies that fit a learnt byte layout (:mod:`~sigmad.daemon.ingest.layouts`: the same
         keys, encodings and fixed bytes as an earlier body of their topic and
         length) are read together with numpy, with no msgpack call and no Python
-        per message; the rest go through :meth:`_ingest_each`. Arrival order is
+        per message; the rest go through :meth:`_decode_each`. Arrival order is
         kept: each block of messages that fit no layout is fed in its place, and a
-        drain cut into more than MAX_RUNS blocks is left to ``_ingest_each`` whole.
+        drain cut into more than MAX_RUNS blocks is left to ``_decode_each`` whole.
         The result equals feeding every message to ``ingest`` in order (rows,
         rejections, sequence gaps, series created). Returns the rows queued.
         O(total body length).
         """
         n = len(bodies)
         if n < LAYOUT_MIN_MESSAGES:
-            return self._ingest_each(topics, bodies, now, endpoint)
+            return self._decode_each(topics, bodies, now, endpoint)
         table = self._layouts
         lengths = np.fromiter(map(len, bodies), np.int64, n)
         rows = table.find(topics, lengths)
@@ -643,18 +621,18 @@ class Engine:
             rows = table.find(topics, lengths)
             missing = rows < 0
         if missing.all():
-            return self._ingest_each(topics, bodies, now, endpoint)
+            return self._decode_each(topics, bodies, now, endpoint)
         found = self._read_layouts(topics, bodies, lengths, rows)
         queued = start = 0
         misfit = ~found.ok
         if misfit.any():   # blocks of messages that fit no layout go message by message
             edges = np.flatnonzero(np.diff(np.r_[0, misfit.view(np.int8), 0])).tolist()
             if len(edges) > 2 * MAX_RUNS:   # too cut up: one pass, message by message
-                return self._ingest_each(topics, bodies, now, endpoint)
+                return self._decode_each(topics, bodies, now, endpoint)
             for first, stop in zip(edges[::2], edges[1::2], strict=True):
                 if first > start:
                     queued += self._queue_fitting(found, start, first, now, endpoint)
-                queued += self._ingest_each(topics[first:stop], bodies[first:stop], now,
+                queued += self._decode_each(topics[first:stop], bodies[first:stop], now,
                                             endpoint)
                 start = stop
         if start < n:
@@ -669,7 +647,7 @@ class Engine:
         self._drains += 1
         tried, learnt = self._not_learnt, False
         budget = max(LEARN_PER_DRAIN, len(bodies) // 8)
-        if len(tried) > _ROUTE_CACHE_LIMIT:
+        if len(tried) > _NOT_LEARNT_LIMIT:
             tried.clear()
         m = missing.tolist()
         keys = zip(compress(topics, m), compress(lengths.tolist(), m), strict=True)
@@ -677,9 +655,11 @@ class Engine:
             if self._drains - tried.get(key, -RETRY_AFTER) < RETRY_AFTER:
                 continue
             topic, length = key
+            if length > LAYOUT_MAX_BYTES or len(topic) > self._max_topic:
+                continue   # not a plain single observation, or a bad topic: nothing kept
             route = self.route(topic)   # cached after the first time
             layout = None
-            if route is not None and length <= self._max_bytes:
+            if route is not None and _single(route[0], body):
                 layout = learn(body, route[0].fields, self._max_rows)
             if layout is None:
                 tried[key] = self._drains
@@ -732,16 +712,20 @@ class Engine:
             self._count_gaps(r.source[part][counted], r.seq[part][counted])
         route = r.route[part]
         keep = None
-        if r.has_time[part].any():
-            t = r.time[part]
-            with np.errstate(invalid="ignore"):
-                skewed = r.has_time[part] & np.isfinite(t) & (np.abs(t - now) > self._max_skew)
-            if skewed.any():
-                keep = ~skewed
-                _, ids, _, counts = runs(route[skewed])
-                for rid, count in zip(ids.tolist(), counts.tolist(), strict=True):
-                    self.reject("clock_skew", int(count),
-                                topic=_route_name(self._layouts.routes[rid]), now=now)
+        has_time = r.has_time[part]
+        if has_time.any():
+            future, skewed = self._off_clock(r.time[part], now)
+            future &= has_time
+            skewed &= has_time
+            if future.any() or skewed.any():
+                keep = ~(future | skewed)
+                for reason, off in (("future_time", future), ("clock_skew", skewed)):
+                    if not off.any():
+                        continue
+                    _, ids, _, counts = runs(route[off])
+                    for rid, count in zip(ids.tolist(), counts.tolist(), strict=True):
+                        self.reject(reason, int(count),
+                                    topic=_route_name(self._layouts.routes[rid]), now=now)
         at = np.arange(start, stop) if keep is None else np.flatnonzero(keep) + start
         if not at.size:
             return 0
@@ -778,14 +762,16 @@ class Engine:
         return queued
 
     def _count_gaps(self, source: np.ndarray, seq: np.ndarray) -> None:
-        """``_count_gap`` for many (source id, seq) pairs in arrival order, vectorised."""
+        """``_count_gap`` for many (source id, seq) pairs in arrival order, vectorised
+        (in int64, so exactly and one by one when a seq reaches 2**53)."""
         names = self._layouts.sources
         last_seq = self._last_seq
         order, ids, starts, counts = runs(source)
         who = [names[i] for i in ids.tolist()]
         last = list(map(last_seq.get, who))
         new = last.count(None)
-        if (new and len(last_seq) + new > _MAX_PRODUCERS) or int(seq.max()) >= 2**53:
+        if (new and len(last_seq) + new > _MAX_PRODUCERS) or int(seq.max()) >= 2**53 \
+                or any(v is not None and v >= 2**53 for v in last):
             for i, q in zip(source.tolist(), seq.tolist(), strict=True):  # rare: exact, slow
                 self._count_gap(names[i], q)
             return
@@ -802,156 +788,116 @@ class Engine:
             gaps[who[k]] += int(lost[k])
         last_seq.update(zip(who, q[starts + counts - 1].tolist(), strict=True))
 
-    def _ingest_each(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
+    def _decode_each(self, topics: Sequence[bytes], bodies: Sequence[bytes], now: float,
                      endpoint: str = "") -> int:
-        """``ingest`` for many messages, one message at a time.
+        """Decode messages one by one and queue their rows for the next flush: the
+        path of every message that fits no byte layout.
 
-        A plain single observation (numbers only, scalar or absent weight and time,
-        a valid or absent source/seq, for a series that exists) is queued here with
-        no function call of its own; anything else goes through ``ingest``, which
-        gives the same result for these and judges everything else. Returns the
-        rows queued. O(total body length).
+        Each body becomes rows through its stream's :class:`~sigmad.daemon.ingest.wire.Reader`.
+        Never raises on bad input: every rejection is counted by reason (``no_stream``,
+        the wire format's reasons, ``future_time``, ``clock_skew``, ``series_limit``); rows of a bad
+        value, weight or time are judged at the flush. A series is created only for
+        rows that passed every check here, so rejected input adds no series. A single
+        observation waits as a plain row in its series until the flush; arrival order
+        is kept within each series. Returns the rows queued. O(total body length).
         """
-        routes, unpackb = self._routes, self._unpack_one
-        batch_layouts = self._batch_layouts
-        max_bytes, max_skew = self._max_bytes, self._max_skew
-        last_seq, gaps, slow = self._last_seq, self.gaps, self.ingest
+        routes, route_of, reject = self._routes, self.route, self.reject
+        max_skew, max_ahead, count_gap = self._max_skew, self._max_ahead, self._count_gap
+        isfinite = math.isfinite
         touched: dict[int, Series] = {}
-        fast = queued = batches = batch_rows = 0
-        max_bin = self._max_rows * 8
+        queued = 0
         for topic, body in zip(topics, bodies, strict=True):
-            route = routes.get(topic)
-            if route is None or len(body) > max_bytes:
-                queued += slow(topic, body, now, endpoint)
+            route = routes.get(topic, _UNSEEN)
+            if route is _UNSEEN:
+                route = route_of(topic)
+            if route is None:
+                reject("no_stream" if len(topic) <= self._max_topic else "bad_topic",
+                       topic=topic, now=now)
                 continue
             st, labels = route
-            series = st.series.get(labels)
-            msg = found = None
-            if len(body) >= BATCH_LAYOUT_BYTES and series is not None and batch_layouts:
-                layout = batch_layouts.get((topic, len(body)))
-                found = None if layout is None else layout.read(body)
-            if found is not None:   # a binary batch read by its layout: no unpacking
-                row, weight, source, seq = found
-                when, binned = None, True
-            else:
-                try:
-                    msg = unpackb(body)
-                    values = msg["values"]
-                    if type(values) is dict:
-                        row = values[st.fields[0]] if st.dim == 1 else \
-                            tuple(map(values.__getitem__, st.fields))
-                    else:
-                        row = values if st.dim == 1 else None
-                    weight, when = msg.get("weight"), msg.get("time")
-                    source, seq = msg.get("source"), msg.get("seq")
-                except Exception:   # anything unusual: the general path judges and counts it
-                    row = series = None
-                # a one-field batch of little-endian float64 (bin), weights likewise, no times
-                binned = (type(row) is bytes and st.dim == 1 and when is None
-                          and 0 < len(row) <= max_bin and len(row) % 8 == 0
-                          and (weight is None or type(weight) is bytes
-                               and len(weight) == len(row)))
-            if (series is None or row is None
-                    or not binned and (
-                        not ((type(row) is float or type(row) is int) if st.dim == 1
-                             else _PLAIN.issuperset(map(type, row)))
-                        or (weight is not None and type(weight) is not float
-                            and type(weight) is not int)
-                        or (when is not None and (type(when) is not float
-                                                  and type(when) is not int
-                                                  or abs(when - now) > max_skew)))):
-                queued += slow(topic, body, now, endpoint, msg)
+            try:
+                dec = st.read(body)
+            except WireError as exc:
+                reject(exc.reason, topic=topic, detail=exc.detail, now=now)
                 continue
-            if source is not None or seq is not None:
-                if type(source) is not str or type(seq) is not int:
-                    queued += slow(topic, body, now, endpoint)
-                    continue
-                last = last_seq.get(source)
-                if last is None:    # a producer not seen before: validate it once
-                    if not (0 < len(source) <= MAX_SOURCE and source.isprintable()
-                            and 0 <= seq < 2**64):
-                        queued += slow(topic, body, now, endpoint)
+            row, weight, when, source, seq = dec
+            if seq is not None and source is not None:
+                count_gap(source, seq)
+            single = type(dec) is Single
+            if single:
+                if when is not None and isfinite(when):
+                    if when - now > max_ahead:
+                        reject("future_time", topic=topic, now=now)
                         continue
-                    if len(last_seq) < _MAX_PRODUCERS:
-                        last_seq[source] = seq
-                elif 0 <= seq < 2**64:
-                    if seq > last + 1:
-                        gaps[source] += seq - last - 1
-                    last_seq[source] = seq
-                else:
-                    queued += slow(topic, body, now, endpoint)
+                    if abs(when - now) > max_skew:
+                        reject("clock_skew", topic=topic, now=now)
+                        continue
+                n = 1
+            else:
+                dec = self._drop_skewed(dec, now, topic)
+                n = dec.values.shape[0]
+                if n == 0:
                     continue
-            if binned:
-                series.seal_rows(now)   # keep arrival order
-                if found is None:
-                    row = np.frombuffer(row, _F8)
-                    weight = None if weight is None else np.frombuffer(weight, _F8)
-                    if len(body) >= BATCH_LAYOUT_BYTES:
-                        self._learn_batch_layout(topic, body, st.fields[0])
-                x = row.reshape(-1, 1)
-                series.queue((x, weight, None, now))
-                touched[id(series)] = series
-                fast += 1
-                batches += 1
-                batch_rows += x.shape[0]
-                continue
-            rows = series.rows
-            if not rows:
-                rows = series.rows = []
-            rows.append(row)
-            if weight is not None or when is not None:
-                if not series.extras:
-                    series.extras = []
-                series.extras.append((len(rows) - 1, weight, when))
+            series = st.series.get(labels)
+            if series is None:
+                if len(st.series) >= st.cfg.max_series:
+                    reject("series_limit", n, topic=topic, now=now)
+                    continue
+                series = st.series[labels] = st.new_series(labels)
+            if single:
+                rows = series.rows
+                if not rows:
+                    rows = series.rows = []
+                rows.append(row[0] if st.dim == 1 else row)
+                if weight is not None or when is not None:
+                    if not series.extras:
+                        series.extras = []
+                    series.extras.append((len(rows) - 1, weight, when))
+            else:
+                series.seal_rows(now)   # keep arrival order: single rows queued so far go first
+                series.queue((dec.values, dec.weights, dec.times, now))
             touched[id(series)] = series
-            fast += 1
+            queued += n
         for series in touched.values():
             series.seal_rows(now)
         self._dirty.update(touched)
-        self.messages[endpoint] += fast
-        singles = fast - batches
-        self.pending_rows += singles + batch_rows
-        return queued + singles + batch_rows
+        self.messages[endpoint] += len(bodies)
+        self.pending_rows += queued
+        return queued
 
-    def _learn_batch_layout(self, topic: bytes, body: bytes, field: str) -> None:
-        """Learn the layout of a binary batch the second time its (topic, length) is
-        seen (batches of varying length teach nothing and cost one look-up each)."""
-        key = (topic, len(body))
-        if key in self._batch_layouts:
-            return
-        seen = self._batch_lengths_seen
-        if len(seen) >= _ROUTE_CACHE_LIMIT:
-            seen.clear()
-        if seen.pop(key, None) is None:
-            seen[key] = True
-            return
-        layout = learn_batch(body, field, self._max_rows)
-        if layout is not None:
-            if len(self._batch_layouts) >= _ROUTE_CACHE_LIMIT:
-                self._batch_layouts.clear()
-            self._batch_layouts[key] = layout
+    def _count_gap(self, source: str, seq: int) -> None:
+        """Count the messages of ``source`` missed before ``seq`` (Python ints: exact)."""
+        last = self._last_seq.get(source)
+        if last is not None and seq > last + 1:
+            self.gaps[source] += seq - last - 1
+        if last is not None or len(self._last_seq) < _MAX_PRODUCERS:
+            self._last_seq[source] = seq
+
+    def _off_clock(self, times: np.ndarray, now: float) -> tuple[np.ndarray, np.ndarray]:
+        """Masks of the event times ahead of ``now`` by more than max_time_ahead
+        (``future_time``) and of the others further than max_clock_skew from it
+        (``clock_skew``). Non-finite times are in neither: screen_batch counts them
+        as ``bad_time``. O(n)."""
+        with np.errstate(invalid="ignore"):
+            finite = np.isfinite(times)
+            ahead = times - now
+            future = finite & (ahead > self._max_ahead)
+            return future, finite & ~future & (np.abs(ahead) > self._max_skew)
 
     def _drop_skewed(self, dec, now: float, topic: bytes):
         """The decoded batch without rows whose event time is too far from ``now``."""
         times = dec.times
         if times is None:
             return dec
-        # non-finite times are left for screen_batch to count as bad_time
-        with np.errstate(invalid="ignore"):
-            skew = np.isfinite(times) & (np.abs(times - now) > self._max_skew)
-        if not skew.any():
+        future, skew = self._off_clock(times, now)
+        if not (future.any() or skew.any()):
             return dec
-        self.reject("clock_skew", int(skew.sum()), topic=topic, now=now)
-        keep = ~skew
+        for reason, off in (("future_time", future), ("clock_skew", skew)):
+            if off.any():
+                self.reject(reason, int(off.sum()), topic=topic, now=now)
+        keep = ~(future | skew)
         return dec._replace(values=dec.values[keep], times=times[keep],
                             weights=None if dec.weights is None else dec.weights[keep])
-
-    def _count_gap(self, source: str, seq: int) -> None:
-        last = self._last_seq.get(source)
-        if last is not None and seq > last + 1:
-            self.gaps[source] += seq - last - 1
-        if last is not None or len(self._last_seq) < _MAX_PRODUCERS:
-            self._last_seq[source] = seq
 
     # -------------------------------------------------------------- flush
     def flush(self, now: float) -> Snapshot:

@@ -10,13 +10,13 @@ drain's bodies of one length against their layouts in a few numpy operations
 and pulls every slot out at once, so a single observation costs no msgpack
 call and no Python bytecode of its own.
 
-A layout is learnt only from a body that the general decoder
-(:mod:`daemon.wire`) reads as one observation of plain numbers with valid
-``source`` and ``seq``, and reading a body that fits a layout gives exactly the
-values, weight, time, source and seq that the general decoder gives: anything
-else (batches, booleans, a negative seq, a map key the general decoder
-refuses, an ext type, extra bytes) is simply not learnt and takes the general
-path, which judges it. A fixint (an integer from -32 to 127, held in its type
+A layout is learnt only from a body that the stream's
+:class:`~sigmad.daemon.ingest.wire.Reader` reads as one observation of plain
+numbers (a ``Single``) and that :func:`learn` also reads so, and reading a body
+that fits a layout gives exactly the values, weight, time, source and seq that
+the reader gives: anything else (batches, booleans, a negative seq, a map key
+the general decoder refuses, an ext type, extra bytes) is simply not learnt and
+is read message by message, which judges it. A fixint (an integer from -32 to 127, held in its type
 byte) is a slot too: its layout asks only for the type bits. ``tests/test_layouts.py``
 checks that equivalence on fuzzed bodies.
 """
@@ -44,6 +44,7 @@ _UNSIGNED_VIEW = {I1: np.uint8, I2: np.uint16, I4: np.uint32, I8: np.uint64,
                   FIXNEG: np.uint8}
 _MAX_DEPTH = 32          # nesting accepted inside ignored keys
 _TABLE_LIMIT = 65_536    # layouts kept before the table starts afresh
+_TABLE_BYTES = 16 << 20  # ... or bytes of layouts (each keeps its fixed bytes and mask)
 
 
 class _NotLearnt(Exception):
@@ -238,140 +239,6 @@ def _learn(body: bytes, fields: tuple[str, ...], max_rows: int) -> Layout | None
 
 
 # ------------------------------------------------------------------- reading
-# ------------------------------------------------------------ binary batches
-_F8 = np.dtype("<f8")
-
-
-def _bin(buf: bytes, p: int) -> tuple[int, int]:
-    """Where the payload of the msgpack bin at p starts, and its length."""
-    b = buf[p] if p < len(buf) else 0xC1
-    if not 0xC4 <= b <= 0xC6:
-        raise _NotLearnt
-    n, start = _length(buf, p + 1, 1 << (b - 0xC4))
-    if start + n > len(buf):
-        raise _NotLearnt
-    return start, n
-
-
-@dataclass(frozen=True, slots=True)
-class BatchLayout:
-    """The fixed bytes of a one-field binary batch and where its payloads sit.
-
-    A body fits when every byte outside the value and weight payloads and the
-    seq number equals the learnt body's (``checks``: (start, end, bytes)),
-    and a fixint seq keeps its top bit 0. Reading it gives the values and
-    weights as float64 views of the body (no copy), and its source and seq.
-    """
-
-    checks: tuple[tuple[int, int, bytes], ...]
-    values: int                     # offset of the value payload
-    rows: int
-    weights: int | None             # offset of the weight payload, same length
-    seq: tuple[int, int] | None     # (offset, code)
-    source: str | None
-
-    def read(self, body: bytes) -> tuple | None:
-        """``(values, weights or None, source, seq)`` of a body of the learnt length,
-        or None when it does not fit. O(fixed bytes); the payloads are not copied."""
-        for start, end, fixed in self.checks:
-            if body[start:end] != fixed:
-                return None
-        seq = None
-        if self.seq is not None:
-            at, code = self.seq
-            if code == FIXPOS:
-                seq = body[at]
-                if seq > 0x7F:
-                    return None
-            else:
-                seq = int.from_bytes(body[at:at + _WIDTH[code]], "big")
-        x = np.frombuffer(body, _F8, self.rows, self.values)
-        w = None if self.weights is None else np.frombuffer(body, _F8, self.rows, self.weights)
-        return x, w, self.source, seq
-
-
-def learn_batch(body: bytes, field: str, max_rows: int) -> BatchLayout | None:
-    """The layout of ``body`` as a binary batch for a one-field stream, or None unless
-    the general decoder's one-field binary path would take it: values a bin of
-    little-endian float64 (1 to ``max_rows`` rows, in a map under ``field`` or
-    bare), weight absent or a bin of the same length, no time, and source and seq
-    both valid or both absent. O(len(body)) once; then :meth:`BatchLayout.read`.
-
-    >>> from sigmad.daemon.ingest.wire import encode
-    >>> body = encode({"ms": [1.0, 2.5]}, weight=[1.0, 3.0], source="p", seq=9)
-    >>> x, w, source, seq = learn_batch(body, "ms", 10).read(body)
-    >>> x.tolist(), w.tolist(), source, seq
-    ([1.0, 2.5], [1.0, 3.0], 'p', 9)
-    """
-    try:
-        return _learn_batch(body, field, max_rows)
-    except (_NotLearnt, IndexError):
-        return None
-
-
-def _learn_batch(body: bytes, field: str, max_rows: int) -> BatchLayout | None:
-    found: dict[str, object] = {}
-    holes: list[tuple[int, int]] = []      # (start, end) of the bytes allowed to vary
-    count, p = _map_header(body, 0)
-    for _ in range(count):
-        key, p = _text(body, p)
-        if key in found:
-            raise _NotLearnt
-        if key == "values":
-            at = None
-            if p < len(body) and (0x80 <= body[p] <= 0x8F or body[p] in (0xDE, 0xDF)):
-                names: set[str] = set()
-                n, p = _map_header(body, p)
-                for _ in range(n):
-                    name, p = _text(body, p)
-                    if name in names:
-                        raise _NotLearnt
-                    names.add(name)
-                    if name == field:
-                        at = _bin(body, p)
-                    p = _skip(body, p, max_rows)
-            else:
-                at = _bin(body, p)
-                p = _skip(body, p, max_rows)
-            if at is None or not 0 < at[1] <= 8 * max_rows or at[1] % 8:
-                raise _NotLearnt
-            found[key] = at
-        elif key == "weight":
-            if p < len(body) and body[p] == 0xC0:
-                found[key], p = None, p + 1
-            else:
-                found[key] = _bin(body, p)
-                p = _skip(body, p, max_rows)
-        elif key == "time":
-            if p >= len(body) or body[p] != 0xC0:
-                raise _NotLearnt
-            found[key], p = None, p + 1
-        else:
-            found[key], p = _origin_or_other(body, p, key, max_rows)
-    values, weights = found.get("values"), found.get("weight")
-    seq, source = found.get("seq"), found.get("source")
-    if p != len(body) or values is None or (seq is None) != (source is None):
-        raise _NotLearnt
-    if weights is not None and weights[1] != values[1]:
-        raise _NotLearnt
-    holes.append((values[0], values[0] + values[1]))
-    if weights is not None:
-        holes.append((weights[0], weights[0] + weights[1]))
-    if seq is not None and seq[1] != FIXPOS:
-        holes.append((seq[0], seq[0] + _WIDTH[seq[1]]))
-    elif seq is not None:
-        holes.append((seq[0], seq[0] + 1))   # read and checked (top bit 0) by read()
-    checks, start = [], 0
-    for begin, end in sorted(holes):
-        if begin > start:
-            checks.append((start, begin, body[start:begin]))
-        start = end
-    if start < len(body):
-        checks.append((start, len(body), body[start:]))
-    return BatchLayout(tuple(checks), values[0], values[1] // 8,
-                       None if weights is None else weights[0], seq, source)
-
-
 class Readout:
     """What :meth:`LayoutTable.read` found in bodies of one length.
 
@@ -489,6 +356,7 @@ class LayoutTable:
         self._route_ids: dict = {}
         self._source_ids: dict[str, int] = {}
         self._keys = self._values = np.zeros(0, np.int64)   # _rows, sorted, for numpy
+        self._bytes = 0                     # fixed bytes and masks kept, forgotten included
 
     def __len__(self) -> int:
         return len(self._rows)
@@ -496,9 +364,11 @@ class LayoutTable:
     def add(self, topic: bytes, layout: Layout, route: object) -> None:
         """Keep ``layout`` for ``topic`` (replacing an older one of the same length).
         Amortised O(len(layout) + layouts kept), as the lookup arrays are rebuilt."""
-        if sum(g.n for g in self._groups.values()) >= _TABLE_LIMIT:
-            self.__init__(self.width)    # type: ignore[misc]   # bounded: relearn what recurs
         length = len(layout.fixed)
+        if (sum(g.n for g in self._groups.values()) >= _TABLE_LIMIT
+                or self._bytes + 2 * length > _TABLE_BYTES):
+            self.__init__(self.width)    # type: ignore[misc]   # bounded: relearn what recurs
+        self._bytes += 2 * length
         group = self._groups.get(length)
         if group is None:
             group = self._groups[length] = _Group(length, self.width + 3)

@@ -7,15 +7,15 @@ import errno
 import zmq
 from sigmad.daemon.config.load import ConfigError, SourceConfig
 
-# A socket is drained until empty, this many messages or this many body bytes, so
+# A socket is drained until empty, this many messages or this many frame bytes, so
 # that one busy source cannot starve the others or grow a flush without bound.
 DRAIN_LIMIT = 5_000
 DRAIN_BYTES = 1 << 20
 
 
 def _looks_like_body(frame: bytes) -> bool:
-    """Starts like a msgpack map of at most 15 entries (fixmap, 0x80-0x8f)."""
-    return bool(frame) and frame[0] & 0xF0 == 0x80
+    """Starts like a msgpack map: fixmap (0x80-0x8f), map16 (0xde) or map32 (0xdf)."""
+    return bool(frame) and (frame[0] & 0xF0 == 0x80 or frame[0] in (0xDE, 0xDF))
 
 
 class BindError(RuntimeError):
@@ -110,14 +110,16 @@ class Source:
         whether more frames follow (RCVMORE) costs more than a receive in pyzmq, so
         it is asked only when a pair does not look like [topic, body]: the first
         frame is not a topic that a stream takes, or the second does not start like
-        a msgpack map of at most 15 keys. If RCVMORE then says the pair did not end a
-        message, and the pair still does not look like one, its first frame is
-        counted as ``bad_frames`` and the pair slides on by one frame. A topic is
-        UTF-8 text and never starts like a map, so a good message that follows a
-        malformed one is always read as itself: a one-frame message costs one
-        ``bad_frames``; of a longer one the first two frames are read as a message
-        and each further frame is one ``bad_frames``. Returns the messages read.
-        O(messages).
+        a msgpack map. If RCVMORE then says the pair did not end a message, and the
+        pair still does not look like one, its first frame is counted as
+        ``bad_frames`` and the pair slides on by one frame. A topic is UTF-8 text
+        and never starts like a map, so a good message that follows a malformed one
+        is always read as itself. What this costs (README, "Wire format v1"): a
+        one-frame message followed by another is read as one [topic, body] pair;
+        of a longer message the first two frames are read as a message, and the
+        frames after them as the next pair (one that does not look like a message
+        costs one ``bad_frames`` a frame; one that does is read as a message).
+        Returns the messages read. O(messages).
         """
         recv = self.socket.recv
         routes = engine.routes_seen
@@ -149,7 +151,7 @@ class Source:
                 if pair is not None:
                     add_topic(pair[0])
                     add_body(pair[1])
-            size += len(body)
+            size += len(topic) + len(body)
             if size >= DRAIN_BYTES:
                 break
         if topics:

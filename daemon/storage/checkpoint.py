@@ -50,6 +50,7 @@ import msgpack
 import sigmad.daemon.storage.columns as columns
 from prometheus_client import CollectorRegistry, Counter, Gauge
 from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.ingest.wire import MsgpackError, unpack_bounded
 from sigmad.estimators import IncompatibleError
 
 log = logging.getLogger("sigmad.checkpoint")
@@ -63,6 +64,11 @@ HEADER_SIZE = _HEADER.size
 #: Largest checkpoint file read (bytes); a bigger one is treated as corrupt.
 MAX_STATE_BYTES = 1 << 30
 _LOGGED_DROPS = 20         # dropped series logged one by one at a restore; the rest counted
+
+
+# A checkpoint nests 8 levels (version 2); anything deeper is malformed, and is refused
+# before any reader walks it.
+MAX_DEPTH = 32
 
 
 class CheckpointError(Exception):
@@ -123,12 +129,9 @@ def decode_checkpoint(data: bytes, path: str | os.PathLike = "<bytes>") -> Check
                                     f"bytes, file holds {len(payload)}")
     if hashlib.sha256(payload).digest() != digest:
         raise CheckpointError(path, "checksum mismatch (the payload is corrupt)")
-    size = len(payload)
     try:
-        body = msgpack.unpackb(payload, raw=False, strict_map_key=False,
-                               max_str_len=size, max_bin_len=size, max_ext_len=0,
-                               max_array_len=size, max_map_len=size // 2)
-    except Exception as exc:   # msgpack raises several unrelated types on bad input
+        body = unpack_bounded(payload, strict_map_key=False, max_depth=MAX_DEPTH)
+    except MsgpackError as exc:
         raise CheckpointError(path, f"payload is not valid msgpack ({exc})") from None
     entries = "series" if version == 1 else "blocks"
     if not isinstance(body, dict) or not isinstance(body.get(entries), list):
