@@ -14,6 +14,7 @@ import logging
 import math
 import os
 import random
+import shutil
 import signal
 import struct
 import subprocess
@@ -549,6 +550,8 @@ def test_unwritable_state_directory_is_retried_while_ingest_goes_on(tmp_path):
     missing = tmp_path / "not-yet"
     d = Sigmad(tmp_path, DAEMON_CONFIG % {"state": missing / "s.state", "port": port})
     try:
+        assert missing.is_dir()         # created at start: its parent exists
+        shutil.rmtree(missing)          # then taken away under the running daemon
         with Producer(f"tcp://127.0.0.1:{port}", source="t") as p:
             p.send("k.main", {"v": [1.0, 2.0, 3.0]})
         d.wait_for("sigmad_checkpoint_failures_total", 3)
