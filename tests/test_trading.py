@@ -527,3 +527,12 @@ def test_the_merge_tier_pools_volatility_as_one_daemon_would():
     r, dt = np.diff(np.log(mids)), np.diff(times)
     # no forgetting: the mean of r**2 / dt over every return (numpy)
     assert pooled.volatility.rate[0] == pytest.approx(float(np.mean(r * r / dt)), rel=1e-12)
+
+
+def test_a_non_positive_price_is_logged_with_its_stream_and_field(caplog):
+    e = _engine(RETURNS)
+    e.ingest(b"px.aaa", encode({"mid": [100.0, -2.0], "size": [1.0, 1.0]}, time=[1.0, 2.0]),
+             now=2.0)
+    with caplog.at_level("WARNING", logger="sigmad.engine"):
+        e.flush(2.0)
+    assert "px{'sym': 'aaa'}: not_positive (log_return of mid needs a price > 0)" in caplog.text

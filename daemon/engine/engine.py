@@ -1029,10 +1029,14 @@ class Engine:
         where = _where(series)
         for reason, count in dropped.items():
             self.reject(reason, count, topic=where, now=now)
+        st = series.stream
         out = series.legs.join(x[:, 0], x[:, 1].astype(np.intp), t, w)
-        for reason, count in (("late", out.late), ("stale_leg", out.stale)):
-            if count:
-                self.reject(reason, count, topic=where, now=now)
+        if out.late:
+            self.reject("late", out.late, topic=where, now=now,
+                        detail=f"event time before the latest tick, {series.legs.clock}")
+        if out.stale:
+            self.reject("stale_leg", out.stale, topic=where, now=now,
+                        detail=f"another leg had no value within {st.cfg.max_leg_age} s")
         # joined rows in field order (legs are in the order the legs table gives)
         order = series.stream.leg_order
         return out.values[:, order] if order is not None else out.values, out.weights, \
@@ -1042,9 +1046,15 @@ class Engine:
         """Rows turned into returns (``Returns.apply``), late and non-positive ones counted;
         the volatility takes the return fields. O(n log n)."""
         step = series.returns.apply(x, t, w)
-        for reason, count in (("late", step.late), ("not_positive", step.not_positive)):
-            if count:
-                self.reject(reason, count, topic=_where(series), now=now)
+        st = series.stream
+        if step.late:
+            self.reject("late", step.late, topic=_where(series), now=now,
+                        detail=f"event time before the series' latest, {series.returns.clock}")
+        if step.not_positive:
+            logs = [f for f, k in zip(st.fields, st.cfg.transforms, strict=True)
+                    if k == "log_return"]
+            self.reject("not_positive", step.not_positive, topic=_where(series), now=now,
+                        detail=f"log_return of {', '.join(logs)} needs a price > 0")
         if series.volatility is not None and step.values.shape[0]:
             series.volatility._fold(step.values[:, series.stream.return_cols], step.spans,
                                     step.weights, step.times)
