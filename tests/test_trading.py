@@ -536,3 +536,14 @@ def test_a_non_positive_price_is_logged_with_its_stream_and_field(caplog):
     with caplog.at_level("WARNING", logger="sigmad.engine"):
         e.flush(2.0)
     assert "px{'sym': 'aaa'}: not_positive (log_return of mid needs a price > 0)" in caplog.text
+
+
+def test_a_series_holding_only_its_first_price_is_not_idle():
+    e = _engine(RETURNS + 'idle_expiry = "1m"\n')
+    e.ingest(b"px.aaa", encode({"mid": 100.0, "size": 1.0}, time=1000.0), now=1000.0)
+    e.flush(1000.0)
+    assert e.expire_idle(1030.0) == 0            # 30 s: kept with its first price
+    e.ingest(b"px.aaa", encode({"mid": 101.0, "size": 1.0}, time=1031.0), now=1031.0)
+    e.flush(1031.0)
+    assert _view(e, "aaa").observations == 1
+    assert e.expire_idle(1100.0) == 1            # idle for over a minute: gone

@@ -964,6 +964,7 @@ class Engine:
         st = series.stream
         if series.legs is not None:
             x, w, t = self._join(series, chunks, now)
+            series.last_update = now   # a tick kept as a leg's latest value is news too
         else:
             x, w, t = _concat(chunks, st.time_based)
         batch, dropped = screen_batch(x, st.dim, w, t, self.config.daemon.max_abs_value)
@@ -972,6 +973,7 @@ class Engine:
         x, w, t = batch
         if series.returns is not None and x.shape[0]:
             x, w, t = self._transform(series, x, w, t, now)
+            series.last_update = now   # a price kept for the next return is news too
         if st.log_mixture and x.shape[0] and not (x > 0.0).all():
             positive = (x > 0.0).all(axis=1)
             self.reject("not_positive", int((~positive).sum()), topic=_where(series), now=now)
