@@ -547,3 +547,26 @@ def test_a_series_holding_only_its_first_price_is_not_idle():
     e.flush(1031.0)
     assert _view(e, "aaa").observations == 1
     assert e.expire_idle(1100.0) == 1            # idle for over a minute: gone
+
+
+def test_a_leg_topic_another_stream_takes_is_an_error():
+    text = LEGS + '\n[[stream]]\nname = "other"\ntopic = "px.{v}.beta"\nfields = ["q"]\n'
+    with pytest.raises(ConfigError, match=r"stream\[1\]\.topic = 'px.\{v\}.beta' could take "
+                                          r"the same topics as stream\[0\]"):
+        parse_config(text)
+
+
+def test_a_checkpoint_from_an_earlier_session_closes_at_once():
+    e = _engine(SESSIONS)
+    boundary = _utc(2026, 3, 8, 21, 0)
+    e.flush(boundary - 100)
+    e.ingest(b"trade.abc", encode({"price": [10.0, 12.0]}), now=boundary - 50)
+    e.flush(boundary - 50)
+    blob = cpmod.encode_checkpoint(cpmod.collect_columns(e), cpmod.stream_definitions(e),
+                                   boundary - 50, {})
+    fresh = _engine(SESSIONS)
+    cpmod.restore_checkpoint(fresh, cpmod.decode_checkpoint(blob), now=boundary + 3600)
+    fresh.flush(boundary + 3600)                  # restarted an hour after the close
+    (_, at, views), = fresh.snapshot.closed
+    assert at == boundary and views[0].mean[0] == 11.0
+    assert fresh.snapshot.series == {}
