@@ -85,6 +85,27 @@ def _concat(chunks: list, time_based: bool):
     return x, w, t
 
 
+class Aux:
+    """What a series keeps beside its estimators, when its stream asks for it."""
+
+    __slots__ = ("returns", "volatility", "legs", "spread")
+
+    def __init__(self) -> None:
+        self.returns: Returns | None = None       # the stream's transform: previous row
+        self.volatility: Volatility | None = None  # of the return fields
+        self.legs: Legs | None = None             # a joined stream's latest value per leg
+        self.spread: tuple = ()                   # the last row's (x0, y, residual, z)
+
+
+def _put(s: Series, name: str, value: object) -> None:
+    """Set one of a series' ``Aux`` states, making its Aux only for a real value."""
+    if s.aux is None:
+        if value is None or value == ():
+            return
+        s.aux = Aux()
+    setattr(s.aux, name, value)
+
+
 @dataclass(slots=True)
 class Series:
     """One live series: its estimators, counters and the rows waiting for a flush."""
@@ -104,10 +125,15 @@ class Series:
     #                                               or tuples of d, all from one arrival
     extras: list | tuple = ()                     # (row index, weight|None, time|None)
     # () until needed: an idle series should cost as little memory as it can
-    returns: Returns | None = None                # the stream's transform: previous row
-    volatility: Volatility | None = None          # of the return fields
-    spread: tuple = ()                            # the last row's (x0, y, residual, z)
-    legs: Legs | None = None                      # a joined stream's latest value per leg
+    aux: Aux | None = None                        # transform, volatility, legs, spread
+
+    # one slot for what only some streams keep: a plain series pays 8 bytes, not 32
+    returns = property(lambda s: s.aux and s.aux.returns, lambda s, v: _put(s, "returns", v))
+    volatility = property(lambda s: s.aux and s.aux.volatility,
+                          lambda s, v: _put(s, "volatility", v))
+    legs = property(lambda s: s.aux and s.aux.legs, lambda s, v: _put(s, "legs", v))
+    spread = property(lambda s: s.aux.spread if s.aux else (),
+                      lambda s, v: _put(s, "spread", v))
 
     def queue(self, chunk: tuple) -> None:
         if self.pending:
