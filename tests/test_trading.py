@@ -527,3 +527,47 @@ def test_the_merge_tier_pools_volatility_as_one_daemon_would():
     r, dt = np.diff(np.log(mids)), np.diff(times)
     # no forgetting: the mean of r**2 / dt over every return (numpy)
     assert pooled.volatility.rate[0] == pytest.approx(float(np.mean(r * r / dt)), rel=1e-12)
+
+
+def test_a_non_positive_price_is_logged_with_its_stream_and_field(caplog):
+    e = _engine(RETURNS)
+    e.ingest(b"px.aaa", encode({"mid": [100.0, -2.0], "size": [1.0, 1.0]}, time=[1.0, 2.0]),
+             now=2.0)
+    with caplog.at_level("WARNING", logger="sigmad.engine"):
+        e.flush(2.0)
+    assert "px{'sym': 'aaa'}" in caplog.text   # the series, then the reason and its bound
+    assert "not_positive (log_return of mid needs a price > 0)" in caplog.text
+
+
+def test_a_series_holding_only_its_first_price_is_not_idle():
+    e = _engine(RETURNS + 'idle_expiry = "1m"\n')
+    e.ingest(b"px.aaa", encode({"mid": 100.0, "size": 1.0}, time=1000.0), now=1000.0)
+    e.flush(1000.0)
+    assert e.expire_idle(1030.0) == 0            # 30 s: kept with its first price
+    e.ingest(b"px.aaa", encode({"mid": 101.0, "size": 1.0}, time=1031.0), now=1031.0)
+    e.flush(1031.0)
+    assert _view(e, "aaa").observations == 1
+    assert e.expire_idle(1100.0) == 1            # idle for over a minute: gone
+
+
+def test_a_leg_topic_another_stream_takes_is_an_error():
+    text = LEGS + '\n[[stream]]\nname = "other"\ntopic = "px.{v}.beta"\nfields = ["q"]\n'
+    with pytest.raises(ConfigError, match=r"stream\[1\]\.topic = 'px.\{v\}.beta' could take "
+                                          r"the same topics as stream\[0\]"):
+        parse_config(text)
+
+
+def test_a_checkpoint_from_an_earlier_session_closes_at_once():
+    e = _engine(SESSIONS)
+    boundary = _utc(2026, 3, 8, 21, 0)
+    e.flush(boundary - 100)
+    e.ingest(b"trade.abc", encode({"price": [10.0, 12.0]}), now=boundary - 50)
+    e.flush(boundary - 50)
+    blob = cpmod.encode_checkpoint(cpmod.collect_columns(e), cpmod.stream_definitions(e),
+                                   boundary - 50, {})
+    fresh = _engine(SESSIONS)
+    cpmod.restore_checkpoint(fresh, cpmod.decode_checkpoint(blob), now=boundary + 3600)
+    fresh.flush(boundary + 3600)                  # restarted an hour after the close
+    (_, at, views), = fresh.snapshot.closed
+    assert at == boundary and views[0].mean[0] == 11.0
+    assert fresh.snapshot.series == {}

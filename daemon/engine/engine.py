@@ -99,6 +99,27 @@ def _concat(chunks: list, time_based: bool):
     return x, w, t
 
 
+class Aux:
+    """What a series keeps beside its estimators, when its stream asks for it."""
+
+    __slots__ = ("returns", "volatility", "legs", "spread")
+
+    def __init__(self) -> None:
+        self.returns: Returns | None = None       # the stream's transform: previous row
+        self.volatility: Volatility | None = None  # of the return fields
+        self.legs: Legs | None = None             # a joined stream's latest value per leg
+        self.spread: tuple = ()                   # the last row's (x0, y, residual, z)
+
+
+def _put(s: Series, name: str, value: object) -> None:
+    """Set one of a series' ``Aux`` states, making its Aux only for a real value."""
+    if s.aux is None:
+        if value is None or value == ():
+            return
+        s.aux = Aux()
+    setattr(s.aux, name, value)
+
+
 @dataclass(slots=True)
 class Series:
     """One live series: its estimators, counters and the rows waiting for a flush."""
@@ -119,10 +140,15 @@ class Series:
     extras: list | tuple = ()                     # (row index, weight|None, time|None)
     thresholds: list | tuple = ()                 # Thresholds per field of st.threshold_at
     # () until needed: an idle series should cost as little memory as it can
-    returns: Returns | None = None                # the stream's transform: previous row
-    volatility: Volatility | None = None          # of the return fields
-    spread: tuple = ()                            # the last row's (x0, y, residual, z)
-    legs: Legs | None = None                      # a joined stream's latest value per leg
+    aux: Aux | None = None                        # transform, volatility, legs, spread
+
+    # one slot for what only some streams keep: a plain series pays 8 bytes, not 32
+    returns = property(lambda s: s.aux and s.aux.returns, lambda s, v: _put(s, "returns", v))
+    volatility = property(lambda s: s.aux and s.aux.volatility,
+                          lambda s, v: _put(s, "volatility", v))
+    legs = property(lambda s: s.aux and s.aux.legs, lambda s, v: _put(s, "legs", v))
+    spread = property(lambda s: s.aux.spread if s.aux else (),
+                      lambda s, v: _put(s, "spread", v))
 
     def queue(self, chunk: tuple) -> None:
         if self.pending:
@@ -966,6 +992,7 @@ class Engine:
         st = series.stream
         if series.legs is not None:
             x, w, t = self._join(series, chunks, now)
+            series.last_update = now   # a tick kept as a leg's latest value is news too
         else:
             x, w, t = _concat(chunks, st.time_based)
         batch, dropped = screen_batch(x, st.dim, w, t, self.config.daemon.max_abs_value)
@@ -974,6 +1001,7 @@ class Engine:
         x, w, t = batch
         if series.returns is not None and x.shape[0]:
             x, w, t = self._transform(series, x, w, t, now)
+            series.last_update = now   # a price kept for the next return is news too
         if st.log_mixture and x.shape[0] and not (x > 0.0).all():
             positive = (x > 0.0).all(axis=1)
             self.reject("not_positive", int((~positive).sum()), topic=_where(series), now=now)
@@ -1040,10 +1068,14 @@ class Engine:
         where = _where(series)
         for reason, count in dropped.items():
             self.reject(reason, count, topic=where, now=now)
+        st = series.stream
         out = series.legs.join(x[:, 0], x[:, 1].astype(np.intp), t, w)
-        for reason, count in (("late", out.late), ("stale_leg", out.stale)):
-            if count:
-                self.reject(reason, count, topic=where, now=now)
+        if out.late:
+            self.reject("late", out.late, topic=where, now=now,
+                        detail=f"event time before the latest tick, {series.legs.clock}")
+        if out.stale:
+            self.reject("stale_leg", out.stale, topic=where, now=now,
+                        detail=f"another leg had no value within {st.cfg.max_leg_age} s")
         # joined rows in field order (legs are in the order the legs table gives)
         order = series.stream.leg_order
         return out.values[:, order] if order is not None else out.values, out.weights, \
@@ -1053,9 +1085,15 @@ class Engine:
         """Rows turned into returns (``Returns.apply``), late and non-positive ones counted;
         the volatility takes the return fields. O(n log n)."""
         step = series.returns.apply(x, t, w)
-        for reason, count in (("late", step.late), ("not_positive", step.not_positive)):
-            if count:
-                self.reject(reason, count, topic=_where(series), now=now)
+        st = series.stream
+        if step.late:
+            self.reject("late", step.late, topic=_where(series), now=now,
+                        detail=f"event time before the series' latest, {series.returns.clock}")
+        if step.not_positive:
+            logs = [f for f, k in zip(st.fields, st.cfg.transforms, strict=True)
+                    if k == "log_return"]
+            self.reject("not_positive", step.not_positive, topic=_where(series), now=now,
+                        detail=f"log_return of {', '.join(logs)} needs a price > 0")
         if series.volatility is not None and step.values.shape[0]:
             series.volatility._fold(step.values[:, series.stream.return_cols], step.spans,
                                     step.weights, step.times)
