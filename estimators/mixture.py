@@ -286,8 +286,10 @@ class Mixture:
         self._prep = None
         self._reseed_collapsed()
 
-    def _scale(self, f: float) -> None:
-        """Age every weight by f; the parameters are ratios of weights and do not change."""
+    def _age(self, g: float) -> None:
+        """Age every weight by 2**g; the parameters are ratios of weights and do not
+        change."""
+        f = 2.0 ** g
         self.W *= f
         self.W2 *= f * f
         self.L *= f

@@ -178,3 +178,149 @@ def test_largest_accepted_values_keep_every_read_out_finite():
         assert math.isfinite(mix.average_loglik) and math.isfinite(zero.average_loglik)
         assert np.isfinite(mix.quantile((0.01, 0.5, 0.99))).all()
         assert np.isfinite(m.variance()).all()
+
+
+# ------------------------------------------------------------ 4. weights of any scale
+def test_three_rows_decayed_600_half_lives_keep_variance_and_sample_size():
+    # Reference: numpy.var(ddof=1) of [1, 2, 4] = 7/3; three equal weights have Kish
+    # n_eff = 3 (Kish 1965). Decay multiplies every weight by one factor: no change.
+    m = Moments(1, HalfLife(1.0))
+    m.update([1.0, 2.0, 4.0], times=0.0)
+    m.decay_to(600.0)
+    assert m.variance()[0] == pytest.approx(np.var([1.0, 2.0, 4.0], ddof=1), rel=1e-12)
+    assert m.effective_samples == pytest.approx(3.0, rel=1e-12)
+    assert m.standard_error()[0] == pytest.approx(math.sqrt(7.0 / 9.0), rel=1e-12)
+
+
+def test_regression_decayed_600_half_lives_keeps_its_standard_errors():
+    # Reference: statsmodels OLS on the same rows (all weights decay alike).
+    import statsmodels.api as sm
+    rng = np.random.default_rng(7)
+    x = rng.normal(0.0, 1.0, 50)
+    y = 1.5 + 2.0 * x + rng.normal(0.0, 0.3, 50)
+    ols = sm.OLS(y, sm.add_constant(x)).fit()
+    r = Regression(1, half_life=HalfLife(1.0))
+    r.update(x, y, times=0.0)
+    r.decay_to(600.0)
+    assert r.stderr()[0] == pytest.approx(ols.bse[1], rel=1e-10)
+    assert r.intercept_stderr() == pytest.approx(ols.bse[0], rel=1e-10)
+    assert r.effective_samples == pytest.approx(50.0, rel=1e-12)
+
+
+def moments_readouts(m: Moments) -> np.ndarray:
+    return np.hstack([m.mean, m.variance("reliability"), m.variance("none"),
+                      m.covariance().ravel(), m.correlation().ravel(), m.standard_error(),
+                      [m.effective_samples], m.quantiles((0.01, 0.99)).ravel(),
+                      m.mahalanobis([[0.3, -1.0]])])
+
+
+def regression_readouts(r: Regression) -> np.ndarray:
+    """The read-outs that do not depend on the weights' unit (the "none" and
+    "frequency" standard errors do, by definition: they scale as W**-1/2)."""
+    return np.hstack([r.coefficients, [r.intercept, r.residual_stddev(), r.r_squared,
+                                       r.effective_samples, r.residual_dof(),
+                                       r.residual_stddev("none")],
+                      r.stderr(), [r.intercept_stderr()],
+                      r.standardized_residual([[0.5, 1.0]], [2.0])])
+
+
+def test_estimates_unchanged_to_12_digits_after_10000_half_lives():
+    # Reference: the same state before the decay (decay scales every weight alike).
+    rng = np.random.default_rng(8)
+    x = rng.normal([3.0, -2.0], [1.0, 4.0], (400, 2))
+    t = np.sort(rng.uniform(0.0, 50.0, 400))
+    m = Moments(2, HalfLife(10.0))
+    m.update(x[:200], times=t[:200])
+    for i in range(200, 400):                 # half batched, half one at a time
+        m.update(x[i], times=t[i])
+    r = Regression(2, half_life=HalfLife(10.0))
+    r.update(x, x @ [0.5, -1.5] + rng.normal(0.0, 0.2, 400), times=t)
+    before_m, before_r = moments_readouts(m), regression_readouts(r)
+    for est in (m, r):
+        est.decay_to(50.0 + 10.0 * 10_000)
+    np.testing.assert_allclose(moments_readouts(m), before_m, rtol=1e-12)
+    np.testing.assert_allclose(regression_readouts(r), before_r, rtol=1e-12)
+    assert m.weight_sum == 0.0          # 2**-10000 of it: below float64, and said so
+    # and through the saved form and the column form
+    back = Moments.from_dict(m.to_dict())
+    np.testing.assert_array_equal(moments_readouts(back), moments_readouts(m))
+    back_r = Regression.from_dict(r.to_dict())
+    np.testing.assert_array_equal(regression_readouts(back_r), regression_readouts(r))
+
+
+@pytest.mark.parametrize("scale", [1e-300, 1e-160, 1e160, 1e300])
+def test_weights_scaled_by_1e_300_to_1e300_change_no_estimate(scale):
+    # Reference: the same rows with unscaled weights (weights are relative: Kish 1965);
+    # numpy.average and numpy.cov(aweights=...) on the unscaled ones.
+    rng = np.random.default_rng(9)
+    x = rng.normal([1.0, 5.0], [2.0, 0.5], (300, 2))
+    w = rng.uniform(0.5, 2.0, 300)
+    ref = Moments(2)
+    ref.update(x, weights=w)
+    np.testing.assert_allclose(ref.mean, np.average(x, axis=0, weights=w), rtol=1e-13)
+    np.testing.assert_allclose(ref.covariance("none"),
+                               np.cov(x.T, aweights=w, bias=True), rtol=1e-12)
+    batched, single = Moments(2), Moments(2)
+    batched.update(x[:150], weights=w[:150] * scale)
+    batched.update(x[150:], weights=w[150:] * scale)
+    for i in range(300):
+        single.update(x[i], weights=w[i] * scale)
+    for m in (batched, single):
+        np.testing.assert_allclose(moments_readouts(m), moments_readouts(ref), rtol=1e-12)
+        assert m.weight_sum == pytest.approx(w.sum() * scale, rel=1e-12)
+    y = x @ [1.0, -2.0] + rng.normal(0.0, 0.1, 300)
+    r_ref, r = Regression(2), Regression(2)
+    r_ref.update(x, y, weights=w)
+    r.update(x, y, weights=w * scale)
+    np.testing.assert_allclose(regression_readouts(r), regression_readouts(r_ref), rtol=1e-12)
+
+
+def test_weights_1e300_and_1e_300_side_by_side_keep_the_heavy_rows():
+    # Reference: numpy.average over the heavy rows alone (the light ones weigh 1e-600
+    # relative to them, below float64 resolution).
+    x = np.array([1.0, 2.0, 3.0, 10.0, 20.0])
+    w = np.array([1e300, 2e300, 1e300, 1e-300, 1e-300])
+    m = Moments()
+    m.update(x, weights=w)
+    assert m.mean[0] == pytest.approx(np.average(x[:3], weights=w[:3]), rel=1e-15)
+    assert m.effective_samples == pytest.approx(16.0 / 6.0, rel=1e-12)
+    light = Moments()
+    light.update(x[3:], weights=w[3:])
+    light.merge(m)
+    assert light.mean[0] == pytest.approx(m.mean[0], rel=1e-15)
+
+
+def test_new_rows_after_a_silence_of_10000_half_lives_replace_the_old_state():
+    # Reference: numpy.mean / numpy.var(ddof=1) of the new rows alone (the old ones now
+    # weigh 2**-10000 relative to them).
+    m = Moments(1, HalfLife(1.0))
+    m.update([100.0, 200.0, 300.0], times=0.0)
+    m.decay_to(10_000.0)
+    new = np.array([1.0, 2.0, 4.0, 8.0])
+    m.update(new, times=10_000.0)
+    assert m.mean[0] == pytest.approx(new.mean(), rel=1e-15)
+    assert m.variance()[0] == pytest.approx(np.var(new, ddof=1), rel=1e-13)
+    assert m.effective_samples == pytest.approx(4.0, rel=1e-13)
+
+
+def test_column_form_carries_the_weight_scale():
+    # Reference: the Moments read-outs the columns stand for, bit for bit.
+    from sigmad.estimators.moments_columns import MomentsColumns
+    rng = np.random.default_rng(10)
+    states = []
+    for scale in (1.0, 1e-300, 1e300):
+        m = Moments(2, HalfLife(1.0))
+        m.update(rng.normal(size=(20, 2)), weights=np.full(20, scale), times=0.0)
+        m.decay_to(3000.0 if scale == 1.0 else 1.0)
+        states.append(m)
+    cols = MomentsColumns.of(states, 2, HalfLife(1.0))
+    back = MomentsColumns.from_dict(cols.to_dict())
+    for c in (cols, back):
+        for i, m in enumerate(states):
+            np.testing.assert_array_equal(c.variances()[i], m.variance())
+            np.testing.assert_array_equal(c.variances("frequency")[i], m.variance("frequency"))
+            np.testing.assert_array_equal(c.scatters()[i], m.scatter)
+            np.testing.assert_array_equal(c.effective_samples()[i], m.effective_samples)
+            np.testing.assert_array_equal(c.correlations()[i], m.correlation())
+        for m, again in zip(states, c.states(), strict=True):
+            np.testing.assert_array_equal(moments_readouts(again), moments_readouts(m))
