@@ -134,8 +134,8 @@ class Mixture:
 
     __slots__ = ("components", "dim", "covariance", "log", "half_life", "warmup", "seed",
                  "n_init", "init_iter", "min_weight", "reg", "recent", "clock", "count", "W",
-                 "W2", "L", "LW", "reseeds", "warm", "_pi", "_mu", "_cov", "_floor", "_buf",
-                 "_buf_w", "_recent", "_prep")
+                 "W2", "L", "LW", "reseeds", "warm", "_pi", "_mu", "_mu_lo", "_cov", "_floor",
+                 "_buf", "_buf_w", "_recent", "_prep")
     kind = "mixture"
     version = 1
 
@@ -175,6 +175,7 @@ class Mixture:
         self.warm = False
         self._pi = np.full(components, 1.0 / components)
         self._mu = np.zeros((components, dim))
+        self._mu_lo = np.zeros((components, dim))      # low-order parts: _mu + _mu_lo exact
         self._cov = np.zeros((components, dim, dim))   # raw ML covariance, before the floor
         self._floor = np.zeros(dim)
         self._buf = np.zeros((0, dim))                 # warm-up rows, fitted space
@@ -240,8 +241,9 @@ class Mixture:
         ll, gamma = _e_step(y, self._prepared())
         self.L += float(v @ ll)
         self.LW += vsum
-        a, mb, cb = _batch_stats(y, v[:, None] * gamma, self.covariance == "diag", self._mu)
-        self._fold_stats(a, mb, cb, self._pi * self.W + a)
+        a, shift, cb = _batch_stats(y, v[:, None] * gamma, self.covariance == "diag",
+                                    self._mu, self._mu_lo)
+        self._fold_stats(a, shift, cb, self._pi * self.W + a)
 
     def _step_one(self, y: np.ndarray, v: np.ndarray, vsum: float) -> None:
         """``_step`` for d = 1 on (n, K) arrays: the same arithmetic, a third of the calls."""
@@ -254,28 +256,40 @@ class Mixture:
         a = r.sum(axis=0)
         tot = self._pi * self.W + a
         if not (a > 0.0).all():    # rare: some component got nothing; take the general path
-            self._fold_stats(a, *_batch_stats(y[:, None], r, False, self._mu)[1:], tot)
+            self._fold_stats(a, *_batch_stats(y[:, None], r, False, self._mu,
+                                              self._mu_lo)[1:], tot)
             return
-        delta = (r * diff).sum(axis=0) / a     # shifted by mu: exact 0 for rows at mu
+        diff = diff - self._mu_lo[:, 0]         # shifted by mu: exact 0 for rows at mu
+        delta = (r * diff).sum(axis=0) / a
         dev = diff - delta
         cb = (r * dev * dev).sum(axis=0)
         frac = a / tot
         keep = 1.0 - frac
         var = self._cov[:, 0, 0]
-        self._mu = (mu + delta * frac)[:, None]
+        self._move_means((delta * frac)[:, None])
         self._cov = (keep * var + cb / tot + delta * delta * keep * frac)[:, None, None]
         self._pi = tot / tot.sum()
         self._prep = None
         self._reseed_collapsed()
 
-    def _fold_stats(self, a: np.ndarray, mb: np.ndarray, cb: np.ndarray,
+    def _move_means(self, step: np.ndarray) -> None:
+        """Add step (K, d) to the means, kept as unevaluated sums _mu + _mu_lo (Dekker's
+        Fast2Sum, exact while |mu| >= |step|: the case of an offset), so that a
+        component at an offset of 1e10 keeps the digits of its spread."""
+        part = self._mu_lo + step
+        new = self._mu + part
+        self._mu_lo = part - (new - self._mu)
+        self._mu = new
+
+    def _fold_stats(self, a: np.ndarray, shift: np.ndarray, cb: np.ndarray,
                     tot: np.ndarray) -> None:
-        """Combine batch statistics (a, mean, scatter) with the decayed state; M-step."""
+        """Combine batch statistics (a, mean - component mean, scatter) with the decayed
+        state; M-step."""
         live = tot > 0.0
         frac = np.divide(a, tot, out=np.zeros_like(a), where=live)
         keep = 1.0 - frac
-        delta = np.where((a > 0.0)[:, None], mb - self._mu, 0.0)
-        self._mu = self._mu + delta * frac[:, None]
+        delta = np.where((a > 0.0)[:, None], shift, 0.0)
+        self._move_means(delta * frac[:, None])
         self._cov = keep[:, None, None] * self._cov \
             + np.divide(cb, tot[:, None, None], out=np.zeros_like(cb),
                         where=live[:, None, None]) \
@@ -325,14 +339,14 @@ class Mixture:
             gamma[np.arange(y.shape[0]), np.argmin(d2, axis=1)] = 1.0
             params = _batch_m_step(y, v, gamma, centres, cov, diag)
             for _ in range(self.init_iter):
-                _, gamma = _e_step(y, _prepare(*params, self._floor, self.covariance))
+                _, gamma = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
                 params = _batch_m_step(y, v, gamma, params[1], cov, diag)
-            ll, _ = _e_step(y, _prepare(*params, self._floor, self.covariance))
+            ll, _ = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
             score = float(v @ ll)
             if best is None or score > best[0]:
                 best = (score, params, ll)
         assert best is not None
-        score, (self._pi, self._mu, self._cov), _ = best
+        score, (self._pi, self._mu, self._cov, self._mu_lo), _ = best
         self.L, self.LW = score, float(v.sum())
         self.warm = True
         self._buf = np.zeros((0, self.dim))
@@ -370,6 +384,7 @@ class Mixture:
                 np.full(self.components, (1.0 - share) / (self.components - 1 or 1))
             self._pi[k] = share if self.components > 1 else 1.0
             self._mu[k] = self._recent[worst]
+            self._mu_lo[k] = 0.0
             self._cov[k] = cov + np.diag(self._floor)
             sick[k] = False
             self.reseeds += 1
@@ -664,7 +679,7 @@ class Mixture:
             "cov": self._cov.tolist(), "floor": self._floor.tolist(),
             "buffer": self._buf.tolist(), "buffer_weights": self._buf_w.tolist(),
             "recent_rows": self._recent.tolist(),
-        }
+        } | ({"mu_lo": self._mu_lo.tolist()} if self._mu_lo.any() else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Mixture:
@@ -681,6 +696,8 @@ class Mixture:
             m.W, m.W2, m.L, m.LW = (float(d[key]) for key in ("W", "W2", "L", "LW"))
             m._pi = np.asarray(d["pi"], dtype=np.float64).reshape(k)
             m._mu = np.asarray(d["mu"], dtype=np.float64).reshape(k, dim)
+            if "mu_lo" in d:
+                m._mu_lo = np.asarray(d["mu_lo"], dtype=np.float64).reshape(k, dim)
             m._cov = np.asarray(d["cov"], dtype=np.float64).reshape(k, dim, dim)
             m._floor = np.asarray(d["floor"], dtype=np.float64).reshape(dim)
             m._buf = np.asarray(d["buffer"], dtype=np.float64).reshape(-1, dim)
@@ -810,35 +827,37 @@ def _e_step(y: np.ndarray, prep: tuple) -> tuple[np.ndarray, np.ndarray]:
     return _logsumexp(_log_prob(y, prep))
 
 
-def _batch_stats(y: np.ndarray, r: np.ndarray, diag: bool,
-                 centre: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-component weight a (K,), mean (K, d) and centred scatter (K, d, d) of a
-    batch under weights r (n, K); components with a = 0 get their centre, scatter 0.
+def _batch_stats(y: np.ndarray, r: np.ndarray, diag: bool, centre: np.ndarray,
+                 lo: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-component weight a (K,), mean less ``centre`` (K, d) and centred scatter
+    (K, d, d) of a batch under weights r (n, K); components with a = 0 get 0, 0.
 
-    The rows are shifted by each component's ``centre`` (K, d) before any sum
-    (Chan, Golub & LeVeque's shifted data): the mean is centre + the weighted
-    mean of y - centre, so rows equal to the centre add exactly nothing and
-    large offsets cost no digits."""
+    The rows are shifted by each component's ``centre`` (plus its low-order part
+    ``lo``) before any sum (Chan, Golub & LeVeque's shifted data): rows equal to
+    the centre add exactly nothing and large offsets cost no digits."""
     a = r.sum(axis=0)
     n, d = y.shape
     live = (a > 0.0)[:, None]
     if d == 1:
         diff = y - centre[:, 0]                          # (n, K)
+        if lo is not None:
+            diff -= lo[:, 0]
         # divide, never multiply by 1/a: a subnormal a would overflow its reciprocal
         shift = np.divide((r * diff).sum(axis=0)[:, None], a[:, None],
                           out=np.zeros((a.shape[0], 1)), where=live)
         dev = diff - shift[:, 0]
-        return a, centre + shift, (r * dev * dev).sum(axis=0).reshape(-1, 1, 1)
+        return a, shift, (r * dev * dev).sum(axis=0).reshape(-1, 1, 1)
     diff = y[:, None, :] - centre[None]                  # (n, K, d)
+    if lo is not None:
+        diff -= lo[None]
     shift = np.divide(np.einsum("nk,nkd->kd", r, diff), a[:, None],
                       out=np.zeros((a.shape[0], d)), where=live)
     diff = diff - shift[None]
-    mb = centre + shift
     if diag:
-        return a, mb, _outer_diag((r[:, :, None] * diff * diff).sum(axis=0))
+        return a, shift, _outer_diag((r[:, :, None] * diff * diff).sum(axis=0))
     weighted = diff * r[:, :, None]
     scatter = np.matmul(weighted.transpose(1, 2, 0), diff.transpose(1, 0, 2))
-    return a, mb, 0.5 * (scatter + scatter.transpose(0, 2, 1))
+    return a, shift, 0.5 * (scatter + scatter.transpose(0, 2, 1))
 
 
 def _outer_diag(var: np.ndarray) -> np.ndarray:
@@ -850,17 +869,20 @@ def _outer_diag(var: np.ndarray) -> np.ndarray:
 
 def _batch_m_step(y: np.ndarray, v: np.ndarray, gamma: np.ndarray, fallback_mu: np.ndarray,
                   data_cov: np.ndarray,
-                  diag: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Closed-form M-step on a whole buffer: (pi, mu, raw covariance). A component that
-    got no weight keeps ``fallback_mu`` and the data covariance, with weight 0."""
-    a, mb, cb = _batch_stats(y, v[:, None] * gamma, diag, fallback_mu)
+                  diag: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Closed-form M-step on a whole buffer: (pi, mu, raw covariance, mu's low-order
+    part). A component that got no weight keeps ``fallback_mu`` and the data
+    covariance, with weight 0."""
+    a, shift, cb = _batch_stats(y, v[:, None] * gamma, diag, fallback_mu)
+    mb = fallback_mu + shift
     live = a > 0.0
     scaled = np.divide(cb, a[:, None, None], out=np.zeros_like(cb),
                        where=live[:, None, None])
     cov = np.where(live[:, None, None], scaled,
                    np.diag(np.diagonal(data_cov)) if diag else data_cov)
     mu = np.where(live[:, None], mb, fallback_mu)
-    return a / a.sum(), mu, cov
+    lo = np.where(live[:, None], shift - (mb - fallback_mu), 0.0)   # Fast2Sum's remainder
+    return a / a.sum(), mu, cov, lo
 
 
 def _kmeans_pp(y: np.ndarray, v: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:

@@ -69,13 +69,14 @@ class Moments:
     (Chan, Golub & LeVeque's shifted data), and the mean is kept as an
     unevaluated sum mean + lo of two floats, so that each step keeps every
     digit and the spread of data at an offset of 1e10 keeps the digits of a
-    two-pass computation (lo is not saved: ``to_dict`` keeps the mean as the
-    read-out shows it). W, W2 and C are stored in units of a power of two
-    2**E that moves when W would leave [2**-100, 2**100]: weights of any size
-    in [1e-300, 1e300] and silences of any length (10,000 half-lives: a factor
-    2**-10000) change no estimate, where a plain float would underflow to an
-    empty state. ``weight_sum`` and ``scatter`` report the true sums (0 or inf
-    where those leave float64); ``E`` is saved only when it is not 0.
+    two-pass computation (``mean`` reads the first float of the pair). W, W2
+    and C are stored in units of a power of two 2**E that moves when W would
+    leave [2**-100, 2**100]: weights of any size in [1e-300, 1e300] and
+    silences of any length (10,000 half-lives: a factor 2**-10000) change no
+    estimate, where a plain float would underflow to an empty state.
+    ``weight_sum`` and ``scatter`` report the true sums (0 or inf where those
+    leave float64). E and lo are saved only when not 0, so an older saved form
+    reads as before.
 
     Covariance corrections divide C by:
 
@@ -386,7 +387,8 @@ class Moments:
             "half_life": None if self.half_life is None else self.half_life.to_dict(),
             "clock": self.clock, "count": self.count, "W": self.W, "W2": self.W2,
             "mean": self._mean.tolist(), "scatter": self._scatter.tolist(),
-        } | ({"scale_exponent": self.E} if self.E else {})
+        } | ({"scale_exponent": self.E} if self.E else {}) \
+            | ({"mean_lo": self._lo.tolist()} if self._lo.any() else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Moments:
@@ -400,6 +402,8 @@ class Moments:
             m.E = int(d.get("scale_exponent", 0))
             m._mean = np.asarray(d["mean"], dtype=np.float64).reshape(m.dim)
             m._scatter = np.asarray(d["scatter"], dtype=np.float64).reshape(m.dim, m.dim)
+            if "mean_lo" in d:
+                m._lo = np.asarray(d["mean_lo"], dtype=np.float64).reshape(m.dim)
         except (KeyError, TypeError, ValueError) as exc:
             raise IncompatibleError("moments", type(exc).__name__, f"malformed state: {exc}") \
                 from None

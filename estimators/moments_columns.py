@@ -86,6 +86,9 @@ class MomentsColumns(NamedTuple):
         Scale exponents: W and scatter are stored in units of 2**E and W2 in
         units of 2**(2 E), as in ``Moments`` (0 unless a state's weights left
         2**+-100). Saved only when some row has one.
+    lo : ndarray, shape (n, dim)
+        The low-order parts of the means (``Moments`` keeps mean + lo exactly).
+        Saved only when some row has one.
 
     Notes
     -----
@@ -121,6 +124,7 @@ class MomentsColumns(NamedTuple):
     mean: np.ndarray
     scatter: np.ndarray
     E: np.ndarray
+    lo: np.ndarray
 
     kind = "moments_columns"
     version = 1
@@ -156,7 +160,8 @@ class MomentsColumns(NamedTuple):
         mean = _stack(_get("_mean", states), (n, dim))
         scatter = _stack(_get("_scatter", states), (n, dim, dim))
         E = np.fromiter(map(attrgetter("E"), states), np.int64, n)
-        return cls(dim, half_life, has_clock, clock, count, W, W2, mean, scatter, E)
+        lo = _stack(_get("_lo", states), (n, dim))
+        return cls(dim, half_life, has_clock, clock, count, W, W2, mean, scatter, E, lo)
 
     def states(self) -> list[Moments]:
         """One ``Moments`` per row, equal bit for bit to the stacked ones. O(n d**2).
@@ -173,7 +178,7 @@ class MomentsColumns(NamedTuple):
         scatter = np.array(self.scatter, dtype=np.float64)
         clocks = [c if h else None for c, h in zip(self.clock.tolist(), self.has_clock.tolist(),
                                                    strict=True)]
-        lo = np.zeros((self.n, dim))     # the low-order parts of the means are not saved
+        lo = np.array(self.lo, dtype=np.float64)
         for i, (clock, count, w, w2, e) in enumerate(zip(clocks, self.count.tolist(),
                                                          self.W.tolist(), self.W2.tolist(),
                                                          self.E.tolist(), strict=True)):
@@ -252,7 +257,8 @@ class MomentsColumns(NamedTuple):
             "clock": blob(self.clock, _LE_F8), "count": blob(self.count, _LE_I8),
             "W": blob(self.W, _LE_F8), "W2": blob(self.W2, _LE_F8),
             "mean": blob(self.mean, _LE_F8), "scatter": blob(self.scatter, _LE_F8),
-        } | ({"scale_exponent": blob(self.E, _LE_I8)} if self.E.any() else {})
+        } | ({"scale_exponent": blob(self.E, _LE_I8)} if self.E.any() else {}) \
+            | ({"mean_lo": blob(self.lo, _LE_F8)} if self.lo.any() else {})
 
     @classmethod
     def from_dict(cls, d: object) -> MomentsColumns:
@@ -277,4 +283,6 @@ class MomentsColumns(NamedTuple):
                    from_blob(d, "W2", _LE_F8, (n,)), from_blob(d, "mean", _LE_F8, (n, dim)),
                    from_blob(d, "scatter", _LE_F8, (n, dim, dim)),
                    from_blob(d, "scale_exponent", _LE_I8, (n,)) if "scale_exponent" in d
-                   else np.zeros(n, np.int64))
+                   else np.zeros(n, np.int64),
+                   from_blob(d, "mean_lo", _LE_F8, (n, dim)) if "mean_lo" in d
+                   else np.zeros((n, dim)))

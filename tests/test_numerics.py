@@ -324,3 +324,94 @@ def test_column_form_carries_the_weight_scale():
             np.testing.assert_array_equal(c.correlations()[i], m.correlation())
         for m, again in zip(states, c.states(), strict=True):
             np.testing.assert_array_equal(moments_readouts(again), moments_readouts(m))
+
+
+# ------------------------------------------------------ 5. large offsets, streamed
+def exact_cov(x: np.ndarray) -> np.ndarray:
+    """Sample covariance (ddof 1) of the float rows x (n, d), in exact rational
+    arithmetic (Python's fractions), rounded once to float64 at the end."""
+    from fractions import Fraction
+    cols = [[Fraction(float(v)) for v in col] for col in x.T]
+    n = x.shape[0]
+    means = [sum(c) / n for c in cols]
+    dev = [[v - m for v in c] for c, m in zip(cols, means, strict=True)]
+    return np.array([[float(sum(a * b for a, b in zip(da, db, strict=True)) / (n - 1))
+                      for db in dev] for da in dev])
+
+
+def lre(est: np.ndarray, ref: np.ndarray) -> float:
+    """Log relative error (digits agreeing with the reference), capped at 15.9 as in
+    McCullough's assessments of statistical software (common practice)."""
+    err = np.max(np.abs(np.asarray(est) - ref) / np.abs(ref))
+    return 15.9 if err == 0.0 else min(15.9, -math.log10(err))
+
+
+def streamed(x: np.ndarray, how: str) -> Moments:
+    if how == "single":
+        m = Moments(x.shape[1])
+        for row in x:
+            m.update(row)
+        return m
+    if how == "batched":
+        m = Moments(x.shape[1])
+        for i in range(0, x.shape[0], 250):
+            m.update(x[i:i + 250])
+        return m
+    shards = []                                  # "merged": ten shards, pooled
+    for part in np.array_split(x, 10):
+        s = Moments(x.shape[1])
+        for i in range(0, part.shape[0], 7):
+            s.update(part[i:i + 7])
+        shards.append(s)
+    for s in shards[1:]:
+        shards[0].merge(s)
+    return shards[0]
+
+
+@pytest.mark.parametrize("offset", [1e4, 1e6, 1e8, 1e10])
+@pytest.mark.parametrize("how", ["single", "batched", "merged"])
+def test_streamed_sd_and_covariance_keep_the_digits_of_numpy_two_pass(offset, how):
+    # Reference: exact rational arithmetic (fractions) on the same floats; numpy's
+    # two-pass np.std / np.cov as the bar to meet within one digit (issue 16).
+    rng = np.random.default_rng(11)
+    z = rng.normal(0.0, 1.0, (2000, 2))
+    x = offset + np.column_stack((z[:, 0], 0.6 * z[:, 0] + 0.8 * z[:, 1]))
+    exact = exact_cov(x)
+    numpy_sd = lre(np.std(x, axis=0, ddof=1), np.sqrt(np.diag(exact)))
+    numpy_cov = lre(np.cov(x.T), exact)
+    m = streamed(x, how)
+    assert lre(m.stddev(), np.sqrt(np.diag(exact))) >= min(numpy_sd, 15.0) - 1.0
+    assert lre(m.covariance(), exact) >= min(numpy_cov, 15.0) - 1.0
+    assert lre(m.mean, x.mean(axis=0)) >= 14.0
+    # the column form reads the same bits, and carries the state through its saved form
+    from sigmad.estimators.moments_columns import MomentsColumns
+    cols = MomentsColumns.from_dict(MomentsColumns.of([m], 2, None).to_dict())
+    np.testing.assert_array_equal(cols.covariances("reliability")[0], m.covariance())
+
+
+@pytest.mark.parametrize("offset", [1e4, 1e10])
+@pytest.mark.parametrize("batch", [1, 100])
+def test_mixture_component_spread_keeps_its_digits_at_an_offset(offset, batch):
+    # Reference: exact rational arithmetic (fractions); a one-component mixture's
+    # maximum-likelihood variance is the data's ddof-0 variance (common practice).
+    x = np.random.default_rng(12).normal(offset, 1.0, 2000)
+    exact = exact_cov(x[:, None])[0, 0] * (x.size - 1) / x.size
+    numpy_var = lre(np.var(x), exact)
+    mix = Mixture(1, warmup=50, reg=1e-300)     # a floor far below the variance's digits
+    for i in range(0, x.size, batch):
+        mix.update(x[i:i + batch])
+    assert lre(mix.covariances[0, 0, 0], exact) >= min(numpy_var, 15.0) - 1.0
+
+
+def test_a_saved_state_continues_exactly_as_the_uninterrupted_one():
+    # Reference: the same state never saved (the low-order part of the mean is saved).
+    x = np.random.default_rng(13).normal(1e10, 1.0, 400)
+    m, mix = Moments(), Mixture(1, warmup=50)
+    for i in range(200):
+        m.update(x[i])
+        mix.update(x[i:i + 1])
+    m2, mix2 = Moments.from_dict(m.to_dict()), Mixture.from_dict(mix.to_dict())
+    for est in (m, m2, mix, mix2):
+        for i in range(200, 400):
+            est.update(x[i:i + 1])
+    assert m2.to_dict() == m.to_dict() and mix2.to_dict() == mix.to_dict()
