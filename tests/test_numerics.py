@@ -415,3 +415,62 @@ def test_a_saved_state_continues_exactly_as_the_uninterrupted_one():
         for i in range(200, 400):
             est.update(x[i:i + 1])
     assert m2.to_dict() == m.to_dict() and mix2.to_dict() == mix.to_dict()
+
+
+# ------------------------------------------------------ 6a. per-field physical limits
+LIMITS_CONFIG = """
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:1"
+
+[[stream]]
+name = "lat"
+topic = "lat.{svc}"
+fields = ["ms", "bytes"]
+mixture = { components = 2, warmup = 20 }
+limits = { ms = [0.0, 60000.0] }
+"""
+
+
+def test_limits_reject_rows_outside_a_fields_range_as_out_of_range():
+    # Reference: the configured range itself; numpy.mean of the rows inside it.
+    from sigmad.daemon.config.load import parse_config
+    from sigmad.daemon.engine.engine import Engine
+    from sigmad.daemon.ingest.wire import encode
+    cfg = parse_config(LIMITS_CONFIG)
+    assert cfg.streams[0].limits == ((0.0, 60000.0), (-math.inf, math.inf))
+    e = Engine(cfg)
+    rng = np.random.default_rng(14)
+    ms = rng.lognormal(3.0, 0.5, 100)
+    glitch = ms.copy()
+    glitch[[3, 50]] = [-5.0, 1e9]             # a negative latency and a 11-day one
+    size = rng.normal(1e3, 10.0, 100)
+    e.ingest(b"lat.api", encode({"ms": glitch, "bytes": size}), 1.7e9)
+    e.flush(1.7e9)
+    assert e.rejected["out_of_range"] == 2
+    (state,) = e.export_state()
+    keep = np.ones(100, bool)
+    keep[[3, 50]] = False
+    assert state["moments"]["count"] == 98
+    np.testing.assert_allclose(state["moments"]["mean"], [ms[keep].mean(), size[keep].mean()],
+                               rtol=1e-12)
+    assert state["mixture"]["count"] == 98
+    # the edges themselves are inside
+    e.ingest(b"lat.api", encode({"ms": [0.0, 60000.0], "bytes": [1.0, 2.0]}), 1.7e9)
+    e.flush(1.7e9)
+    assert e.rejected["out_of_range"] == 2
+
+
+@pytest.mark.parametrize(("limits", "words"), [
+    ("{ celsius = [0.0, 1.0] }", "is not one of the stream's fields"),
+    ("{ ms = [1.0] }", "must be [low, high]"),
+    ("{ ms = [5.0, 1.0] }", "must have low < high"),
+    ("{ ms = [nan, 1.0] }", "must be [low, high]"),
+    ('{ ms = ["a", 1.0] }', "must be [low, high]"),
+    ("[0.0, 1.0]", "must be a table"),
+])
+def test_bad_limits_are_a_config_error_naming_the_key(limits, words):
+    from sigmad.daemon.config.load import ConfigError, parse_config
+    with pytest.raises(ConfigError) as info:
+        parse_config(LIMITS_CONFIG.replace("{ ms = [0.0, 60000.0] }", limits), "site.toml")
+    assert words in str(info.value) and "stream[0].limits" in str(info.value)

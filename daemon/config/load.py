@@ -166,6 +166,8 @@ class StreamConfig:
     regression: RegressionConfig | None = None
     max_series: int = 1000
     idle_expiry: float | None = None
+    # per field (low, high): rows with a value outside are rejected as out_of_range
+    limits: tuple[tuple[float, float], ...] | None = None
 
     @property
     def dim(self) -> int:
@@ -424,7 +426,7 @@ _SOURCE_KEYS = ("socket", "bind", "connect", "topics", "curve_secret", "curve_al
                 "high_water_mark")
 _STREAM_KEYS = ("name", "topic", "fields", "half_life", "correction", "quantiles",
                 "outlier_sigmas", "outlier_warmup", "mixture", "regression", "max_series",
-                "idle_expiry")
+                "idle_expiry", "limits")
 _MIXTURE_KEYS = ("components", "log", "covariance", "warmup", "seed")
 _REGRESSION_KEYS = ("y", "x", "intercept")
 _TOP_KEYS = ("daemon", "source", "stream", "publish", "merge")
@@ -537,6 +539,27 @@ def _regression(data: object, path: str, fields: tuple[str, ...]) -> RegressionC
     return RegressionConfig(y=y, x=x, intercept=intercept)
 
 
+def _limits(data: object, path: str, fields: tuple[str, ...]) -> tuple[tuple[float, float], ...]:
+    """``limits = { field = [low, high], ... }``: each field's plausible range (a sensor's
+    rated range, a latency's plausible maximum); fields not named are unbounded."""
+    if not isinstance(data, dict):
+        raise ConfigError(path, data, "must be a table of field = [low, high]")
+    bounds = {f: (-math.inf, math.inf) for f in fields}
+    for name, pair in data.items():
+        key = f"{path}.{name}"
+        if name not in bounds:
+            raise ConfigError(key, name, f"is not one of the stream's fields {list(fields)}")
+        if not (isinstance(pair, list) and len(pair) == 2 and all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) and not math.isnan(v)
+                for v in pair)):
+            raise ConfigError(key, pair, "must be [low, high]: two numbers")
+        low, high = float(pair[0]), float(pair[1])
+        if not low < high:
+            raise ConfigError(key, pair, "must have low < high")
+        bounds[name] = (low, high)
+    return tuple(bounds[f] for f in fields)
+
+
 def _stream(data: object, path: str) -> StreamConfig:
     t = _Table(data, path, _STREAM_KEYS)
     name = t.string("name")
@@ -566,6 +589,7 @@ def _stream(data: object, path: str) -> StreamConfig:
     mixture = t.raw("mixture", None)
     regression = t.raw("regression", None)
     idle = t.raw("idle_expiry", None)
+    limits = t.raw("limits", None)
     return StreamConfig(
         name=name, topic=topic, fields=fields, half_life=half_life,
         correction=t.string("correction", "reliability", CORRECTIONS),
@@ -576,6 +600,7 @@ def _stream(data: object, path: str) -> StreamConfig:
         _regression(regression, t.key("regression"), fields),
         max_series=t.integer("max_series", 1000, 1),
         idle_expiry=None if idle is None else parse_duration(idle, t.key("idle_expiry")),
+        limits=None if limits is None else _limits(limits, t.key("limits"), fields),
     )
 
 
@@ -782,6 +807,11 @@ def describe(config: Config) -> str:
         if st.outlier_sigmas:
             lines.append(f"    outliers    beyond {', '.join(f'{s:g}' for s in st.outlier_sigmas)}"
                          f" sigma, after {st.outlier_warmup} observations")
+        if st.limits:
+            lines.append("    limits      " + ", ".join(
+                f"{f} in [{lo:g}, {hi:g}]" for f, (lo, hi) in zip(st.fields, st.limits,
+                                                                 strict=True)
+                if (lo, hi) != (-math.inf, math.inf)))
         expiry = _show_duration(st.idle_expiry) if st.idle_expiry else "never"
         lines.append(f"    series      at most {st.max_series}; idle expiry {expiry}")
     if config.publish:

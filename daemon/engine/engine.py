@@ -21,7 +21,7 @@ from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, S
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
-from sigmad.estimators.validation import screen_batch
+from sigmad.estimators.validation import limit_batch, screen_batch
 
 log = logging.getLogger("sigmad.engine")
 
@@ -140,6 +140,8 @@ class StreamState:
         self.reg_y = None if reg is None else self.fields.index(reg.y)
         self.reg_xy = None if reg is None else self.reg_x + [self.reg_y]   # [X | y] columns
         self.log_mixture = cfg.mixture is not None and cfg.mixture.log
+        self.limits = None if cfg.limits is None else \
+            (np.array([lo for lo, _ in cfg.limits]), np.array([hi for _, hi in cfg.limits]))
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
         cfg = self.cfg
@@ -799,6 +801,10 @@ class Engine:
         batch, dropped = screen_batch(x, st.dim, w, t, self.config.daemon.max_abs_value)
         for reason, count in dropped.items():
             self.reject(reason, count, topic=_where(series), now=now)
+        if st.limits is not None:
+            batch, outside = limit_batch(batch, *st.limits)
+            if outside:
+                self.reject("out_of_range", outside, topic=_where(series), now=now)
         x, w, t = batch
         if st.log_mixture and x.shape[0] and not (x > 0.0).all():
             positive = (x > 0.0).all(axis=1)
