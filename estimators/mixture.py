@@ -10,6 +10,7 @@ import numpy as np
 from .errors import DomainError, IncompatibleError, ShapeError
 from .forgetting import HalfLife, age_to, take_batch
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
+from .mixture_moves import proposals
 from .mixture_reduce import runnalls_reduce
 from .validation import check_batch, check_saved
 
@@ -17,6 +18,9 @@ CovarianceType = Literal["full", "diag"]
 _LOG_2PI = math.log(2.0 * math.pi)
 _RESEED_WEIGHT = 0.5    # a re-seeded component starts with this share of 1/K
 _RESOLUTION = 2.0 ** -60  # a constant field's floor sd, relative to its value (_floor_for)
+_MOVE_EVERY = 64         # a split-and-merge check after this many windows of new rows
+_MOVE_ITER = 5           # EM iterations on the window for each side of the comparison
+_MOVE_GAIN = 0.002       # nats per window row a proposal must gain to be kept
 _TINY_VARIANCE = 1e-100  # 1/floor times a squared difference (<= 4e200) stays finite
 
 
@@ -55,7 +59,8 @@ class Mixture:
         constant in the warm-up data gets the float resolution of its value
         instead, so constant data has quantiles equal to the constant.
     recent : int
-        Number of most recent rows kept as re-seeding candidates.
+        Number of most recent rows kept as re-seeding candidates and as the
+        window on which split-and-merge moves are judged.
 
     Notes
     -----
@@ -88,7 +93,17 @@ class Mixture:
     log-likelihood), with the weight-averaged covariance of the healthy
     components and half of 1/K of the weight; ``reseeds`` counts these.
     Components are never relabelled: index k is the same component between
-    reads (``merge`` and ``reduce`` document how they order theirs).
+    reads (``merge`` and ``reduce`` document how they order theirs). A
+    collapse is not called when the recent rows are all one value.
+
+    Drift recovery: every ``64 * recent`` rows, split-and-merge proposals
+    (``mixture_moves``: free the lightest component or merge the cheapest
+    Runnalls pair, split a wide heavy one along its principal axis) and the
+    current fit each get 5 batch EM iterations on the recent rows; the best
+    proposal replaces the fit when it explains those rows better by 0.002 nats
+    a row, and counts in ``reseeds``. This frees a fit that followed a drifting
+    stream into a local optimum (a stranded component, two sharing a mode, one
+    covering two), which EM alone never leaves (Ueda et al. 2000).
 
     With ``log``, ``means``, ``covariances``, ``stddevs`` and
     ``average_loglik`` are in the fitted (log) space; ``original_means`` and
@@ -113,6 +128,8 @@ class Mixture:
     the sample variance. The American Statistician 37(3), 242-247.
     Runnalls, A. R. (2007). Kullback-Leibler approach to Gaussian mixture
     reduction. IEEE Transactions on Aerospace and Electronic Systems 43(3).
+    Ueda, N., Nakano, R., Ghahramani, Z., Hinton, G. E. (2000). SMEM algorithm
+    for mixture models. Neural Computation 12(9), 2109-2128.
 
     Examples
     --------
@@ -135,14 +152,14 @@ class Mixture:
     __slots__ = ("components", "dim", "covariance", "log", "half_life", "warmup", "seed",
                  "n_init", "init_iter", "min_weight", "reg", "recent", "clock", "count", "W",
                  "W2", "L", "LW", "reseeds", "warm", "_pi", "_mu", "_mu_lo", "_cov", "_floor",
-                 "_buf", "_buf_w", "_recent", "_prep")
+                 "_buf", "_buf_w", "_recent", "_prep", "_since_check")
     kind = "mixture"
     version = 1
 
     def __init__(self, components: int, dim: int = 1, covariance: CovarianceType = "full",
                  log: bool = False, half_life: HalfLife | None = None, warmup: int = 200,
                  seed: int = 0, *, n_init: int = 4, init_iter: int = 25,
-                 min_weight: float = 1e-3, reg: float = 1e-6, recent: int = 64) -> None:
+                 min_weight: float = 1e-3, reg: float = 1e-6, recent: int = 512) -> None:
         _check_int("components", components, 1)
         _check_int("dim", dim, 1)
         if covariance not in ("full", "diag"):
@@ -182,6 +199,7 @@ class Mixture:
         self._buf_w = np.zeros(0)                      # their decayed weights
         self._recent = np.zeros((0, dim))              # re-seeding candidates, fitted space
         self._prep: tuple | None = None                # cached log-density constants
+        self._since_check = 0                          # rows since the last move check
 
     # ------------------------------------------------------------------ updates
     def update(self, x: object, weights: object = None, times: object = None) -> None:
@@ -214,6 +232,10 @@ class Mixture:
             self.W += vsum
             self.W2 += float(v @ v)
             self._recent = np.concatenate((self._recent, y[-self.recent:]))[-self.recent:]
+            self._since_check += n
+            if self._since_check >= _MOVE_EVERY * self.recent:
+                self._since_check = 0
+                self._try_moves()
             return
         # the warm-up fits at most ``warmup`` rows; the rest of a large first batch is
         # folded stepwise once the fit exists (initialising on all of it costs O(n) x starts)
@@ -259,9 +281,9 @@ class Mixture:
             self._fold_stats(a, *_batch_stats(y[:, None], r, False, self._mu,
                                               self._mu_lo)[1:], tot)
             return
-        diff = diff - self._mu_lo[:, 0]         # shifted by mu: exact 0 for rows at mu
-        delta = (r * diff).sum(axis=0) / a
-        dev = diff - delta
+        whole = (r * diff).sum(axis=0) / a      # shifted by mu: exact 0 for rows at mu
+        delta = whole - self._mu_lo[:, 0]
+        dev = diff - whole
         cb = (r * dev * dev).sum(axis=0)
         frac = a / tot
         keep = 1.0 - frac
@@ -389,6 +411,44 @@ class Mixture:
             sick[k] = False
             self.reseeds += 1
             self._prep = None
+
+    # ------------------------------------------------------------ drift recovery
+    def _try_moves(self) -> None:
+        """Split-and-merge check (``mixture_moves``): keep the best proposal when, after
+        ``_MOVE_ITER`` EM iterations on the recent rows, its log-likelihood there beats
+        the current fit's, refined the same way, by ``_MOVE_GAIN`` nats per row."""
+        y = self._recent
+        n = y.shape[0]
+        if self.components < 2 or n < self.recent:
+            return
+        v = np.ones(n)
+        diag = self.covariance == "diag"
+        data_cov = _weighted_gaussian(y, v)[1]
+        best_ll, _ = self._refine(y, v, (self._pi, self._mu, self._cov), data_cov, diag)
+        threshold = best_ll + _MOVE_GAIN * n
+        chosen = None
+        for start in proposals(self._pi, self._mu, self._cov, self._floor, diag):
+            ll, params = self._refine(y, v, start, data_cov, diag)
+            if ll > threshold:
+                threshold, chosen = ll, params
+        if chosen is None:
+            return
+        self._pi, self._mu, self._cov, self._mu_lo = chosen
+        self.reseeds += 1
+        self._prep = None
+
+    def _refine(self, y: np.ndarray, v: np.ndarray, start: tuple, data_cov: np.ndarray,
+                diag: bool) -> tuple[float, tuple]:
+        """``_MOVE_ITER`` batch EM iterations on rows y from (pi, mu, cov): (total
+        log-likelihood of the result, (pi, mu, cov, mu_lo))."""
+        params = (start[0], start[1], start[2], np.zeros_like(start[1]))
+        for _ in range(_MOVE_ITER):
+            _, gamma = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
+            if not np.isfinite(gamma).all():
+                return -math.inf, params
+            params = _batch_m_step(y, v, gamma, params[1], data_cov, diag)
+        ll, _ = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
+        return float(v @ ll), params
 
     # ------------------------------------------------------------------ pooling
     def merge(self, other: Mixture) -> Mixture:
@@ -679,7 +739,8 @@ class Mixture:
             "cov": self._cov.tolist(), "floor": self._floor.tolist(),
             "buffer": self._buf.tolist(), "buffer_weights": self._buf_w.tolist(),
             "recent_rows": self._recent.tolist(),
-        } | ({"mu_lo": self._mu_lo.tolist()} if self._mu_lo.any() else {})
+        } | ({"mu_lo": self._mu_lo.tolist()} if self._mu_lo.any() else {}) \
+            | ({"since_check": self._since_check} if self._since_check else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Mixture:
@@ -696,6 +757,7 @@ class Mixture:
             m.W, m.W2, m.L, m.LW = (float(d[key]) for key in ("W", "W2", "L", "LW"))
             m._pi = np.asarray(d["pi"], dtype=np.float64).reshape(k)
             m._mu = np.asarray(d["mu"], dtype=np.float64).reshape(k, dim)
+            m._since_check = int(d.get("since_check", 0))
             if "mu_lo" in d:
                 m._mu_lo = np.asarray(d["mu_lo"], dtype=np.float64).reshape(k, dim)
             m._cov = np.asarray(d["cov"], dtype=np.float64).reshape(k, dim, dim)
@@ -829,30 +891,28 @@ def _e_step(y: np.ndarray, prep: tuple) -> tuple[np.ndarray, np.ndarray]:
 
 def _batch_stats(y: np.ndarray, r: np.ndarray, diag: bool, centre: np.ndarray,
                  lo: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-component weight a (K,), mean less ``centre`` (K, d) and centred scatter
-    (K, d, d) of a batch under weights r (n, K); components with a = 0 get 0, 0.
+    """Per-component weight a (K,), mean less ``centre`` (+ ``lo``) (K, d) and centred
+    scatter (K, d, d) of a batch under weights r (n, K); components with a = 0 get 0.
 
-    The rows are shifted by each component's ``centre`` (plus its low-order part
-    ``lo``) before any sum (Chan, Golub & LeVeque's shifted data): rows equal to
-    the centre add exactly nothing and large offsets cost no digits."""
+    The rows are shifted by the first one before any sum (Chan, Golub & LeVeque's
+    shifted data) and the means are returned relative to each component's
+    centre: rows equal to the centre add exactly nothing and large offsets cost
+    no digits."""
     a = r.sum(axis=0)
     n, d = y.shape
     live = (a > 0.0)[:, None]
-    if d == 1:
-        diff = y - centre[:, 0]                          # (n, K)
-        if lo is not None:
-            diff -= lo[:, 0]
-        # divide, never multiply by 1/a: a subnormal a would overflow its reciprocal
-        shift = np.divide((r * diff).sum(axis=0)[:, None], a[:, None],
-                          out=np.zeros((a.shape[0], 1)), where=live)
-        dev = diff - shift[:, 0]
-        return a, shift, (r * dev * dev).sum(axis=0).reshape(-1, 1, 1)
-    diff = y[:, None, :] - centre[None]                  # (n, K, d)
+    ref = y[0]
+    yc = y - ref
+    # divide, never multiply by 1/a: a subnormal a would overflow its reciprocal
+    s = np.divide(r.T @ yc, a[:, None], out=np.zeros((a.shape[0], d)), where=live)
+    shift = s + (ref - centre)
     if lo is not None:
-        diff -= lo[None]
-    shift = np.divide(np.einsum("nk,nkd->kd", r, diff), a[:, None],
-                      out=np.zeros((a.shape[0], d)), where=live)
-    diff = diff - shift[None]
+        shift -= lo
+    shift[~live[:, 0]] = 0.0
+    if d == 1:
+        diff = yc - s[:, 0]                              # (n, K)
+        return a, shift, (r * diff * diff).sum(axis=0).reshape(-1, 1, 1)
+    diff = yc[:, None, :] - s[None]                      # (n, K, d)
     if diag:
         return a, shift, _outer_diag((r[:, :, None] * diff * diff).sum(axis=0))
     weighted = diff * r[:, :, None]

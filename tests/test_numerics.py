@@ -474,3 +474,98 @@ def test_bad_limits_are_a_config_error_naming_the_key(limits, words):
     with pytest.raises(ConfigError) as info:
         parse_config(LIMITS_CONFIG.replace("{ ms = [0.0, 60000.0] }", limits), "site.toml")
     assert words in str(info.value) and "stream[0].limits" in str(info.value)
+
+
+# ------------------------------------------------------------- 6b. drift recovery
+# Our scenario: request latencies in ms from three log-normal paths (fast, slow, very
+# slow); the true distribution is set here and checked through scipy.stats.norm.
+DRIFT_W = np.array([0.7, 0.25, 0.05])
+DRIFT_MU = np.log([2.0, 30.0, 200.0])
+DRIFT_SD = np.array([0.25, 0.4, 0.5])
+
+
+def drift_draw(rng, n):
+    k = rng.choice(3, n, p=DRIFT_W)
+    return np.exp(rng.normal(DRIFT_MU[k], DRIFT_SD[k]))
+
+
+def test_sorted_then_stationary_stream_is_fitted_as_well_as_batch_em():
+    # Reference: scikit-learn's GaussianMixture (batch EM, 4 starts) on the log of the
+    # last 5,000 rows for the log-likelihood; the true CDF (scipy.stats.norm of the
+    # log, weighted) for the rank error of p99. Checked after 40 half-lives.
+    from sklearn.mixture import GaussianMixture
+    rng = np.random.default_rng(0)
+    mix = Mixture(3, log=True, half_life=HalfLife(5000, "observations"))
+    drifting = np.sort(drift_draw(rng, 20000))      # a stream that drifts from fast to slow
+    for i in range(0, drifting.size, 1000):
+        mix.update(drifting[i:i + 1000])
+    steady = drift_draw(rng, 40 * 5000)
+    for i in range(0, steady.size, 1000):
+        mix.update(steady[i:i + 1000])
+    recent = np.log(steady[-5000:])
+    batch = GaussianMixture(3, n_init=4, random_state=0).fit(recent[:, None])
+    ours = float(np.mean(mix.loglik(steady[-5000:]) + recent))   # density of log x
+    assert ours >= batch.score(recent[:, None]) - 0.01 * abs(batch.score(recent[:, None]))
+    p99 = mix.quantile(0.99)
+    true_cdf = float(DRIFT_W @ stats.norm.cdf(math.log(p99), DRIFT_MU, DRIFT_SD))
+    assert abs(true_cdf - 0.99) < 2e-3
+
+
+def test_a_fit_stuck_in_a_local_optimum_is_freed_by_split_and_merge():
+    # Our scenario: N(0, 1), N(6, 1), N(10, 1) with weights 0.5, 0.3, 0.2 (set here).
+    # The fit starts where online EM alone stays (checked by hand: without the moves
+    # two components share the mode at 0 and one, sd 2.3, covers 6 and 10): one
+    # component right, one wide over the two upper modes, one stranded in the far tail.
+    rng = np.random.default_rng(21)
+
+    def draw(n):
+        k = rng.choice(3, n, p=[0.5, 0.3, 0.2])
+        return rng.normal(np.array([0.0, 6.0, 10.0])[k], 1.0)
+
+    mix = Mixture(3, half_life=HalfLife(5000, "observations"), warmup=300)
+    mix.update(draw(300))
+    mix._pi = np.array([0.5, 0.498, 0.002])
+    mix._mu = np.array([[0.0], [7.6], [16.0]])
+    mix._cov = np.array([[[1.0]], [[5.0]], [[1.0]]])
+    mix._mu_lo[:] = 0.0
+    mix._prep = None
+    for _ in range(200):
+        mix.update(draw(1000))
+    order = np.argsort(mix.means[:, 0])
+    np.testing.assert_allclose(mix.means[order, 0], [0.0, 6.0, 10.0], atol=0.15)
+    np.testing.assert_allclose(mix.weights[order], [0.5, 0.3, 0.2], atol=0.02)
+    np.testing.assert_allclose(mix.stddevs[order, 0], [1.0, 1.0, 1.0], atol=0.1)
+
+
+def test_a_well_fitted_stationary_stream_makes_no_moves():
+    # Our scenario (as above, the right structure from the start): after convergence no
+    # proposal may replace the fit; the re-seed count stays put.
+    rng = np.random.default_rng(22)
+
+    def draw(n):
+        k = rng.choice(3, n, p=[0.5, 0.3, 0.2])
+        return rng.normal(np.array([0.0, 6.0, 12.0])[k], 1.0)
+
+    mix = Mixture(3, half_life=HalfLife(5000, "observations"))
+    for _ in range(60):
+        mix.update(draw(1000))
+    settled = mix.reseeds
+    for _ in range(300):
+        mix.update(draw(1000))
+    assert mix.reseeds == settled
+
+
+def test_a_split_keeps_the_mean_and_covariance_of_the_component():
+    # Reference: the mean and covariance of a two-component mixture (common practice),
+    # computed with numpy from the halves.
+    from sigmad.estimators.mixture_moves import split_component
+    cov = np.array([[4.0, 1.2], [1.2, 1.0]])
+    mean = np.array([3.0, -1.0])
+    for diag in (False, True):
+        c = np.diag(np.diag(cov)) if diag else cov
+        w, m1, m2, half = split_component(0.6, mean, c, diag)
+        assert w == pytest.approx(0.3)
+        np.testing.assert_allclose(0.5 * (m1 + m2), mean, rtol=1e-15)
+        pooled = half + 0.5 * (np.outer(m1 - mean, m1 - mean) + np.outer(m2 - mean, m2 - mean))
+        np.testing.assert_allclose(pooled, c, rtol=1e-14, atol=1e-15)
+        assert (np.linalg.eigvalsh(half) > 0).all()
