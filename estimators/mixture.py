@@ -18,9 +18,11 @@ CovarianceType = Literal["full", "diag"]
 _LOG_2PI = math.log(2.0 * math.pi)
 _RESEED_WEIGHT = 0.5    # a re-seeded component starts with this share of 1/K
 _RESOLUTION = 2.0 ** -60  # a constant field's floor sd, relative to its value (_floor_for)
-_MOVE_EVERY = 64         # a split-and-merge check after this many windows of new rows
+_MOVE_EVERY = 64         # a split-and-merge check after this many windows of new rows,
+_MOVE_BACKOFF = 4        # doubled after each quiet check, up to 2**_MOVE_BACKOFF times
 _MOVE_ITER = 5           # EM iterations on the window for each side of the comparison
 _MOVE_GAIN = 0.002       # nats per window row a proposal must gain to be kept
+_MOVE_OVERLAP = 0.3      # responsibility overlap of two components that calls for a check
 _TINY_VARIANCE = 1e-100  # 1/floor times a squared difference (<= 4e200) stays finite
 
 
@@ -96,7 +98,11 @@ class Mixture:
     reads (``merge`` and ``reduce`` document how they order theirs). A
     collapse is not called when the recent rows are all one value.
 
-    Drift recovery: every ``64 * recent`` rows, split-and-merge proposals
+    Drift recovery: every ``64 * recent`` rows (twice as long after each check
+    that kept the fit, up to 16 times; back to 64 after a move), when a
+    component is stranded (its share of the recent rows under half its
+    weight) or two overlap (cosine of their responsibilities above 0.3),
+    split-and-merge proposals
     (``mixture_moves``: free the lightest component or merge the cheapest
     Runnalls pair, split a wide heavy one along its principal axis) and the
     current fit each get 5 batch EM iterations on the recent rows; the best
@@ -152,7 +158,7 @@ class Mixture:
     __slots__ = ("components", "dim", "covariance", "log", "half_life", "warmup", "seed",
                  "n_init", "init_iter", "min_weight", "reg", "recent", "clock", "count", "W",
                  "W2", "L", "LW", "reseeds", "warm", "_pi", "_mu", "_mu_lo", "_cov", "_floor",
-                 "_buf", "_buf_w", "_recent", "_prep", "_since_check")
+                 "_buf", "_buf_w", "_recent", "_prep", "_since_check", "_quiet")
     kind = "mixture"
     version = 1
 
@@ -200,6 +206,7 @@ class Mixture:
         self._recent = np.zeros((0, dim))              # re-seeding candidates, fitted space
         self._prep: tuple | None = None                # cached log-density constants
         self._since_check = 0                          # rows since the last move check
+        self._quiet = 0                                # move checks in a row that kept the fit
 
     # ------------------------------------------------------------------ updates
     def update(self, x: object, weights: object = None, times: object = None) -> None:
@@ -233,9 +240,10 @@ class Mixture:
             self.W2 += float(v @ v)
             self._recent = np.concatenate((self._recent, y[-self.recent:]))[-self.recent:]
             self._since_check += n
-            if self._since_check >= _MOVE_EVERY * self.recent:
+            if self._since_check >= (_MOVE_EVERY << self._quiet) * self.recent:
                 self._since_check = 0
-                self._try_moves()
+                moved = self._try_moves()
+                self._quiet = 0 if moved else min(self._quiet + 1, _MOVE_BACKOFF)
             return
         # the warm-up fits at most ``warmup`` rows; the rest of a large first batch is
         # folded stepwise once the fit exists (initialising on all of it costs O(n) x starts)
@@ -413,14 +421,27 @@ class Mixture:
             self._prep = None
 
     # ------------------------------------------------------------ drift recovery
-    def _try_moves(self) -> None:
+    def _try_moves(self) -> bool:
         """Split-and-merge check (``mixture_moves``): keep the best proposal when, after
         ``_MOVE_ITER`` EM iterations on the recent rows, its log-likelihood there beats
-        the current fit's, refined the same way, by ``_MOVE_GAIN`` nats per row."""
+        the current fit's, refined the same way, by ``_MOVE_GAIN`` nats per row. True when
+        the fit was replaced."""
         y = self._recent
         n = y.shape[0]
         if self.components < 2 or n < self.recent:
-            return
+            return False
+        # a cheap look first (one E-step): proposals are tried only when a component is
+        # stranded (its share of the window under half its weight, or its weight near
+        # min_weight) or two overlap (Ueda et al.'s merge criterion, cosine of their
+        # responsibility columns)
+        gamma = _e_step(y, self._prepared())[1]
+        norms = np.sqrt((gamma * gamma).sum(axis=0))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            overlap = (gamma.T @ gamma) / np.outer(norms, norms)
+        np.fill_diagonal(overlap, 0.0)
+        stranded = (gamma.mean(axis=0) < 0.5 * self._pi) | (self._pi < 10.0 * self.min_weight)
+        if not stranded.any() and not np.nanmax(overlap) > _MOVE_OVERLAP:
+            return False
         v = np.ones(n)
         diag = self.covariance == "diag"
         data_cov = _weighted_gaussian(y, v)[1]
@@ -432,10 +453,11 @@ class Mixture:
             if ll > threshold:
                 threshold, chosen = ll, params
         if chosen is None:
-            return
+            return False
         self._pi, self._mu, self._cov, self._mu_lo = chosen
         self.reseeds += 1
         self._prep = None
+        return True
 
     def _refine(self, y: np.ndarray, v: np.ndarray, start: tuple, data_cov: np.ndarray,
                 diag: bool) -> tuple[float, tuple]:
@@ -740,7 +762,8 @@ class Mixture:
             "buffer": self._buf.tolist(), "buffer_weights": self._buf_w.tolist(),
             "recent_rows": self._recent.tolist(),
         } | ({"mu_lo": self._mu_lo.tolist()} if self._mu_lo.any() else {}) \
-            | ({"since_check": self._since_check} if self._since_check else {})
+            | ({"since_check": self._since_check} if self._since_check else {}) \
+            | ({"quiet_checks": self._quiet} if self._quiet else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Mixture:
@@ -758,6 +781,7 @@ class Mixture:
             m._pi = np.asarray(d["pi"], dtype=np.float64).reshape(k)
             m._mu = np.asarray(d["mu"], dtype=np.float64).reshape(k, dim)
             m._since_check = int(d.get("since_check", 0))
+            m._quiet = min(max(int(d.get("quiet_checks", 0)), 0), _MOVE_BACKOFF)
             if "mu_lo" in d:
                 m._mu_lo = np.asarray(d["mu_lo"], dtype=np.float64).reshape(k, dim)
             m._cov = np.asarray(d["cov"], dtype=np.float64).reshape(k, dim, dim)
