@@ -202,13 +202,16 @@ class Moments:
         else:
             mean, lo = self._mean, self._lo
             delta = base - mean - lo if shift is None else (base - mean) + (shift - lo)
-            # step from the heavier side: wb/total rounds to 1 when wb dwarfs wa by 2**53,
-            # and delta * 1 would then cancel the lighter side's share entirely
-            step = delta * (wb / total) if wb <= wa else delta - delta * (wa / total)
             # the mean as an unevaluated sum mean + lo (Dekker's Fast2Sum, exact while
             # |mean| >= |lo + step|, the case of an offset): the pair keeps every digit
-            # of each step, so an offset of 1e10 costs none of the spread's
-            part = lo + step
+            # of each step, so an offset of 1e10 costs none of the spread's. Step from
+            # the heavier side: wb/total rounds to 1 when wb dwarfs wa by 2**53, and
+            # the lighter side's share must then be added to the heavier's mean
+            if wb <= wa:
+                part = lo + delta * (wb / total)
+            else:
+                mean, back = base, delta * (wa / total)
+                part = -back if shift is None else shift - back
             new = mean + part
             self._lo = part - (new - mean)
             self._mean = new

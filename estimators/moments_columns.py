@@ -205,7 +205,8 @@ class MomentsColumns(NamedTuple):
         if correction == "none":
             div = W.copy()
         elif correction == "frequency":
-            div = W - np.ldexp(1.0, -self._exponents()) if self.E.any() else W - 1.0
+            with np.errstate(over="ignore"):      # 1 in units of 2**E: inf for tiny W
+                div = W - np.ldexp(1.0, -self._exponents()) if self.E.any() else W - 1.0
         elif correction == "reliability":
             with np.errstate(divide="ignore", invalid="ignore"):
                 div = np.where(W > 0.0, W - W2 / W, 0.0)
