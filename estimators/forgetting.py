@@ -95,44 +95,54 @@ def advance(half_life: HalfLife | None, clock: float | None, n: int,
             times: np.ndarray | None) -> tuple[float | None, float, np.ndarray | None]:
     """Work out how a batch of n rows meets a state whose clock reads ``clock``.
 
-    Returns ``(new_clock, state_factor, row_factors)``: the state's weights are
-    multiplied by ``state_factor`` and row i's weight by ``row_factors[i]``
-    (None means all ones). Rows older than the state's clock are weighted by
-    their own age; newer ones move the clock forward. Rows without times are
+    Returns ``(new_clock, state_log2, row_factors)``: the state's weights are
+    multiplied by ``2**state_log2`` (a logarithm, so that a silence of any
+    length is a finite number) and row i's weight by ``row_factors[i]`` (None
+    means all ones). Rows older than the state's clock are weighted by their
+    own age; newer ones move the clock forward. Rows without times are
     stamped with the state's clock (event-time forgetting) and with their
     position (count forgetting). O(n).
     """
     if half_life is None:
         if times is None:
-            return clock, 1.0, None
+            return clock, 0.0, None
         latest = float(times.max())
-        return (latest if clock is None else max(clock, latest)), 1.0, None
+        return (latest if clock is None else max(clock, latest)), 0.0, None
     h = half_life.length
     if half_life.by_count:
         start = 0.0 if clock is None else clock
         ages = np.arange(n - 1, -1, -1, dtype=np.float64)
-        return start + n, 2.0 ** (-n / h), np.exp2(-ages / h)
+        return start + n, -n / h, np.exp2(-ages / h)
     if times is None:
-        return clock, 1.0, None
+        return clock, 0.0, None
     latest = float(times.max())
     new_clock = latest if clock is None else max(clock, latest)
-    state_factor = 1.0 if clock is None else 2.0 ** (-(new_clock - clock) / h)
-    return new_clock, state_factor, np.exp2(-(new_clock - times) / h)
+    state_log2 = 0.0 if clock is None else -(new_clock - clock) / h
+    return new_clock, state_log2, np.exp2(-(new_clock - times) / h)
+
+
+def catch_up_log2(half_life: HalfLife | None, clock: float | None,
+                  t: float) -> tuple[float | None, float]:
+    """(new clock, log2 of the factor) that ages a state from ``clock`` to event time
+    ``t`` (never backwards). Count-based forgetting does not move with wall time: 0."""
+    if not math.isfinite(t):
+        raise TimeError("t", t, "must be finite")
+    if half_life is None or half_life.by_count:
+        return clock, 0.0
+    if clock is None or t <= clock:
+        return (t if clock is None else clock), 0.0
+    return t, -(t - clock) / half_life.length
 
 
 def catch_up(half_life: HalfLife | None, clock: float | None,
              t: float) -> tuple[float | None, float]:
-    """The factor that ages a state from ``clock`` to event time ``t`` (never backwards).
+    """The factor that ages a state from ``clock`` to event time ``t`` (never backwards);
+    it underflows to 0 after about 1,075 half-lives (``catch_up_log2`` does not).
 
     Count-based forgetting does not move with wall time: factor 1.
     """
-    if not math.isfinite(t):
-        raise TimeError("t", t, "must be finite")
-    if half_life is None or half_life.by_count:
-        return clock, 1.0
-    if clock is None or t <= clock:
-        return (t if clock is None else clock), 1.0
-    return t, 2.0 ** (-(t - clock) / half_life.length)
+    clock, g = catch_up_log2(half_life, clock, t)
+    return clock, (1.0 if g == 0.0 else 2.0 ** g)
 
 
 
@@ -156,13 +166,13 @@ def take_batch(state, n: int, times: np.ndarray | None,
     """Age ``state`` to a batch of n rows and count them; return the rows' effective
     weights (their own weight times their decay; None means all ones).
 
-    ``state`` has ``half_life``, ``clock``, ``count`` and a ``_scale(f)`` method that
-    multiplies its weights by f (and squared weights by f**2): the shape every
+    ``state`` has ``half_life``, ``clock``, ``count`` and an ``_age(g)`` method that
+    multiplies its weights by 2**g (and squared weights by 2**(2 g)): the shape every
     estimator shares. O(n).
     """
-    clock, f, rf = advance(state.half_life, state.clock, n, times)
-    if f != 1.0:
-        state._scale(f)
+    clock, g, rf = advance(state.half_life, state.clock, n, times)
+    if g != 0.0:
+        state._age(g)
     state.clock = clock
     state.count += n
     if rf is None:
@@ -173,6 +183,64 @@ def take_batch(state, n: int, times: np.ndarray | None,
 def age_to(state, t: float) -> None:
     """Age ``state`` (the shape ``take_batch`` describes) to event time t, never
     backwards. Count-based forgetting and none do not move with time. O(state)."""
-    state.clock, f = catch_up(state.half_life, state.clock, float(t))
-    if f != 1.0:
-        state._scale(f)
+    state.clock, g = catch_up_log2(state.half_life, state.clock, float(t))
+    if g != 0.0:
+        state._age(g)
+
+
+#: Stored weight sums are kept within [2**-LOG2_RANGE, 2**LOG2_RANGE] of their
+#: state's scale 2**E (``WeightScale``); beyond, the scale moves instead.
+LOG2_RANGE = 100
+
+
+def scale_step(w: float, g: float, even: bool = False) -> tuple[int, float]:
+    """How a stored weight sum ``w`` ages by 2**g: ``(k, f)`` with 2**g = 2**k * f, the
+    scale exponent moving by k and the stored sums multiplied by f.
+
+    k is 0 (and f = 2**g exactly as before) while ``w * f`` stays above
+    2**-LOG2_RANGE; otherwise k = ceil(g) (even when ``even``, for square-root
+    factors) and f in (1/4, 1]: a silence of any length ages the state exactly,
+    its stored sums never underflow. O(1)."""
+    if math.frexp(w)[1] + g > -LOG2_RANGE:
+        return 0, 2.0 ** g
+    k = math.ceil(g / 2.0) * 2 if even else math.ceil(g)
+    return k, 2.0 ** (g - k)
+
+
+def rescale_exponent(w: float, even: bool = False) -> int:
+    """The exponent k by which a positive stored sum ``w`` outside the kept range must
+    be divided (``w * 2**-k`` near 1; even when ``even``), else 0. O(1)."""
+    e = math.frexp(w)[1]
+    if -LOG2_RANGE <= e <= LOG2_RANGE or not w > 0.0 or math.isinf(w):
+        return 0
+    return e + (e & 1) if even else e
+
+
+def batch_exponent(v: np.ndarray, even: bool = False) -> int:
+    """The exponent k that brings the largest of the row weights ``v`` near 1 when it
+    lies outside the kept range (so that v**2 neither underflows nor overflows), else
+    0. O(n)."""
+    return rescale_exponent(float(v.max()), even) if v.size else 0
+
+
+def unit(e: int) -> float:
+    """2**-e, the number 1 in a state's stored units (0 or inf beyond float64)."""
+    if e > 1074:
+        return 0.0
+    if e < -1023:
+        return math.inf
+    return math.ldexp(1.0, -e)
+
+
+def ldexp(a: np.ndarray, k: int) -> np.ndarray:
+    """a * 2**k elementwise for any integer k (numpy's ldexp takes 32-bit exponents;
+    beyond +-2,200 every float64 has under- or overflowed anyway)."""
+    return np.ldexp(a, max(-2200, min(2200, k)))
+
+
+def true_sum(w: float, e: int) -> float:
+    """w * 2**e, inf when it overflows float64 (and 0 when it underflows)."""
+    try:
+        return math.ldexp(w, e)
+    except OverflowError:
+        return math.inf

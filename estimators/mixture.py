@@ -10,6 +10,7 @@ import numpy as np
 from .errors import DomainError, IncompatibleError, ShapeError
 from .forgetting import HalfLife, age_to, take_batch
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
+from .mixture_moves import proposals
 from .mixture_reduce import runnalls_reduce
 from .validation import check_batch, check_saved
 
@@ -17,6 +18,11 @@ CovarianceType = Literal["full", "diag"]
 _LOG_2PI = math.log(2.0 * math.pi)
 _RESEED_WEIGHT = 0.5    # a re-seeded component starts with this share of 1/K
 _RESOLUTION = 2.0 ** -60  # a constant field's floor sd, relative to its value (_floor_for)
+_MOVE_EVERY = 64         # a split-and-merge check after this many windows of new rows,
+_MOVE_BACKOFF = 4        # doubled after each quiet check, up to 2**_MOVE_BACKOFF times
+_MOVE_ITER = 5           # EM iterations on the window for each side of the comparison
+_MOVE_GAIN = 0.002       # nats per window row a proposal must gain to be kept
+_MOVE_OVERLAP = 0.3      # responsibility overlap of two components that calls for a check
 _TINY_VARIANCE = 1e-100  # 1/floor times a squared difference (<= 4e200) stays finite
 
 
@@ -55,7 +61,8 @@ class Mixture:
         constant in the warm-up data gets the float resolution of its value
         instead, so constant data has quantiles equal to the constant.
     recent : int
-        Number of most recent rows kept as re-seeding candidates.
+        Number of most recent rows kept as re-seeding candidates and as the
+        window on which split-and-merge moves are judged.
 
     Notes
     -----
@@ -88,7 +95,21 @@ class Mixture:
     log-likelihood), with the weight-averaged covariance of the healthy
     components and half of 1/K of the weight; ``reseeds`` counts these.
     Components are never relabelled: index k is the same component between
-    reads (``merge`` and ``reduce`` document how they order theirs).
+    reads (``merge`` and ``reduce`` document how they order theirs). A
+    collapse is not called when the recent rows are all one value.
+
+    Drift recovery: every ``64 * recent`` rows (twice as long after each check
+    that kept the fit, up to 16 times; back to 64 after a move), when a
+    component is stranded (its share of the recent rows under half its
+    weight) or two overlap (cosine of their responsibilities above 0.3),
+    split-and-merge proposals
+    (``mixture_moves``: free the lightest component or merge the cheapest
+    Runnalls pair, split a wide heavy one along its principal axis) and the
+    current fit each get 5 batch EM iterations on the recent rows; the best
+    proposal replaces the fit when it explains those rows better by 0.002 nats
+    a row, and counts in ``reseeds``. This frees a fit that followed a drifting
+    stream into a local optimum (a stranded component, two sharing a mode, one
+    covering two), which EM alone never leaves (Ueda et al. 2000).
 
     With ``log``, ``means``, ``covariances``, ``stddevs`` and
     ``average_loglik`` are in the fitted (log) space; ``original_means`` and
@@ -113,6 +134,8 @@ class Mixture:
     the sample variance. The American Statistician 37(3), 242-247.
     Runnalls, A. R. (2007). Kullback-Leibler approach to Gaussian mixture
     reduction. IEEE Transactions on Aerospace and Electronic Systems 43(3).
+    Ueda, N., Nakano, R., Ghahramani, Z., Hinton, G. E. (2000). SMEM algorithm
+    for mixture models. Neural Computation 12(9), 2109-2128.
 
     Examples
     --------
@@ -134,15 +157,15 @@ class Mixture:
 
     __slots__ = ("components", "dim", "covariance", "log", "half_life", "warmup", "seed",
                  "n_init", "init_iter", "min_weight", "reg", "recent", "clock", "count", "W",
-                 "W2", "L", "LW", "reseeds", "warm", "_pi", "_mu", "_cov", "_floor", "_buf",
-                 "_buf_w", "_recent", "_prep")
+                 "W2", "L", "LW", "reseeds", "warm", "_pi", "_mu", "_mu_lo", "_cov", "_floor",
+                 "_buf", "_buf_w", "_recent", "_prep", "_since_check", "_quiet")
     kind = "mixture"
     version = 1
 
     def __init__(self, components: int, dim: int = 1, covariance: CovarianceType = "full",
                  log: bool = False, half_life: HalfLife | None = None, warmup: int = 200,
                  seed: int = 0, *, n_init: int = 4, init_iter: int = 25,
-                 min_weight: float = 1e-3, reg: float = 1e-6, recent: int = 64) -> None:
+                 min_weight: float = 1e-3, reg: float = 1e-6, recent: int = 512) -> None:
         _check_int("components", components, 1)
         _check_int("dim", dim, 1)
         if covariance not in ("full", "diag"):
@@ -175,12 +198,15 @@ class Mixture:
         self.warm = False
         self._pi = np.full(components, 1.0 / components)
         self._mu = np.zeros((components, dim))
+        self._mu_lo = np.zeros((components, dim))      # low-order parts: _mu + _mu_lo exact
         self._cov = np.zeros((components, dim, dim))   # raw ML covariance, before the floor
         self._floor = np.zeros(dim)
         self._buf = np.zeros((0, dim))                 # warm-up rows, fitted space
         self._buf_w = np.zeros(0)                      # their decayed weights
         self._recent = np.zeros((0, dim))              # re-seeding candidates, fitted space
         self._prep: tuple | None = None                # cached log-density constants
+        self._since_check = 0                          # rows since the last move check
+        self._quiet = 0                                # move checks in a row that kept the fit
 
     # ------------------------------------------------------------------ updates
     def update(self, x: object, weights: object = None, times: object = None) -> None:
@@ -213,6 +239,11 @@ class Mixture:
             self.W += vsum
             self.W2 += float(v @ v)
             self._recent = np.concatenate((self._recent, y[-self.recent:]))[-self.recent:]
+            self._since_check += n
+            if self._since_check >= (_MOVE_EVERY << self._quiet) * self.recent:
+                self._since_check = 0
+                moved = self._try_moves()
+                self._quiet = 0 if moved else min(self._quiet + 1, _MOVE_BACKOFF)
             return
         # the warm-up fits at most ``warmup`` rows; the rest of a large first batch is
         # folded stepwise once the fit exists (initialising on all of it costs O(n) x starts)
@@ -240,8 +271,9 @@ class Mixture:
         ll, gamma = _e_step(y, self._prepared())
         self.L += float(v @ ll)
         self.LW += vsum
-        a, mb, cb = _batch_stats(y, v[:, None] * gamma, self.covariance == "diag", self._mu)
-        self._fold_stats(a, mb, cb, self._pi * self.W + a)
+        a, shift, cb = _batch_stats(y, v[:, None] * gamma, self.covariance == "diag",
+                                    self._mu, self._mu_lo)
+        self._fold_stats(a, shift, cb, self._pi * self.W + a)
 
     def _step_one(self, y: np.ndarray, v: np.ndarray, vsum: float) -> None:
         """``_step`` for d = 1 on (n, K) arrays: the same arithmetic, a third of the calls."""
@@ -254,28 +286,40 @@ class Mixture:
         a = r.sum(axis=0)
         tot = self._pi * self.W + a
         if not (a > 0.0).all():    # rare: some component got nothing; take the general path
-            self._fold_stats(a, *_batch_stats(y[:, None], r, False, self._mu)[1:], tot)
+            self._fold_stats(a, *_batch_stats(y[:, None], r, False, self._mu,
+                                              self._mu_lo)[1:], tot)
             return
-        delta = (r * diff).sum(axis=0) / a     # shifted by mu: exact 0 for rows at mu
-        dev = diff - delta
+        whole = (r * diff).sum(axis=0) / a      # shifted by mu: exact 0 for rows at mu
+        delta = whole - self._mu_lo[:, 0]
+        dev = diff - whole
         cb = (r * dev * dev).sum(axis=0)
         frac = a / tot
         keep = 1.0 - frac
         var = self._cov[:, 0, 0]
-        self._mu = (mu + delta * frac)[:, None]
+        self._move_means((delta * frac)[:, None])
         self._cov = (keep * var + cb / tot + delta * delta * keep * frac)[:, None, None]
         self._pi = tot / tot.sum()
         self._prep = None
         self._reseed_collapsed()
 
-    def _fold_stats(self, a: np.ndarray, mb: np.ndarray, cb: np.ndarray,
+    def _move_means(self, step: np.ndarray) -> None:
+        """Add step (K, d) to the means, kept as unevaluated sums _mu + _mu_lo (Dekker's
+        Fast2Sum, exact while |mu| >= |step|: the case of an offset), so that a
+        component at an offset of 1e10 keeps the digits of its spread."""
+        part = self._mu_lo + step
+        new = self._mu + part
+        self._mu_lo = part - (new - self._mu)
+        self._mu = new
+
+    def _fold_stats(self, a: np.ndarray, shift: np.ndarray, cb: np.ndarray,
                     tot: np.ndarray) -> None:
-        """Combine batch statistics (a, mean, scatter) with the decayed state; M-step."""
+        """Combine batch statistics (a, mean - component mean, scatter) with the decayed
+        state; M-step."""
         live = tot > 0.0
         frac = np.divide(a, tot, out=np.zeros_like(a), where=live)
         keep = 1.0 - frac
-        delta = np.where((a > 0.0)[:, None], mb - self._mu, 0.0)
-        self._mu = self._mu + delta * frac[:, None]
+        delta = np.where((a > 0.0)[:, None], shift, 0.0)
+        self._move_means(delta * frac[:, None])
         self._cov = keep[:, None, None] * self._cov \
             + np.divide(cb, tot[:, None, None], out=np.zeros_like(cb),
                         where=live[:, None, None]) \
@@ -286,8 +330,10 @@ class Mixture:
         self._prep = None
         self._reseed_collapsed()
 
-    def _scale(self, f: float) -> None:
-        """Age every weight by f; the parameters are ratios of weights and do not change."""
+    def _age(self, g: float) -> None:
+        """Age every weight by 2**g; the parameters are ratios of weights and do not
+        change."""
+        f = 2.0 ** g
         self.W *= f
         self.W2 *= f * f
         self.L *= f
@@ -323,14 +369,14 @@ class Mixture:
             gamma[np.arange(y.shape[0]), np.argmin(d2, axis=1)] = 1.0
             params = _batch_m_step(y, v, gamma, centres, cov, diag)
             for _ in range(self.init_iter):
-                _, gamma = _e_step(y, _prepare(*params, self._floor, self.covariance))
+                _, gamma = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
                 params = _batch_m_step(y, v, gamma, params[1], cov, diag)
-            ll, _ = _e_step(y, _prepare(*params, self._floor, self.covariance))
+            ll, _ = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
             score = float(v @ ll)
             if best is None or score > best[0]:
                 best = (score, params, ll)
         assert best is not None
-        score, (self._pi, self._mu, self._cov), _ = best
+        score, (self._pi, self._mu, self._cov, self._mu_lo), _ = best
         self.L, self.LW = score, float(v.sum())
         self.warm = True
         self._buf = np.zeros((0, self.dim))
@@ -368,10 +414,63 @@ class Mixture:
                 np.full(self.components, (1.0 - share) / (self.components - 1 or 1))
             self._pi[k] = share if self.components > 1 else 1.0
             self._mu[k] = self._recent[worst]
+            self._mu_lo[k] = 0.0
             self._cov[k] = cov + np.diag(self._floor)
             sick[k] = False
             self.reseeds += 1
             self._prep = None
+
+    # ------------------------------------------------------------ drift recovery
+    def _try_moves(self) -> bool:
+        """Split-and-merge check (``mixture_moves``): keep the best proposal when, after
+        ``_MOVE_ITER`` EM iterations on the recent rows, its log-likelihood there beats
+        the current fit's, refined the same way, by ``_MOVE_GAIN`` nats per row. True when
+        the fit was replaced."""
+        y = self._recent
+        n = y.shape[0]
+        if self.components < 2 or n < self.recent:
+            return False
+        # a cheap look first (one E-step): proposals are tried only when a component is
+        # stranded (its share of the window under half its weight, or its weight near
+        # min_weight) or two overlap (Ueda et al.'s merge criterion, cosine of their
+        # responsibility columns)
+        gamma = _e_step(y, self._prepared())[1]
+        norms = np.sqrt((gamma * gamma).sum(axis=0))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            overlap = (gamma.T @ gamma) / np.outer(norms, norms)
+        np.fill_diagonal(overlap, 0.0)
+        stranded = (gamma.mean(axis=0) < 0.5 * self._pi) | (self._pi < 10.0 * self.min_weight)
+        if not stranded.any() and not np.nanmax(overlap) > _MOVE_OVERLAP:
+            return False
+        v = np.ones(n)
+        diag = self.covariance == "diag"
+        data_cov = _weighted_gaussian(y, v)[1]
+        best_ll, _ = self._refine(y, v, (self._pi, self._mu, self._cov), data_cov, diag)
+        threshold = best_ll + _MOVE_GAIN * n
+        chosen = None
+        for start in proposals(self._pi, self._mu, self._cov, self._floor, diag):
+            ll, params = self._refine(y, v, start, data_cov, diag)
+            if ll > threshold:
+                threshold, chosen = ll, params
+        if chosen is None:
+            return False
+        self._pi, self._mu, self._cov, self._mu_lo = chosen
+        self.reseeds += 1
+        self._prep = None
+        return True
+
+    def _refine(self, y: np.ndarray, v: np.ndarray, start: tuple, data_cov: np.ndarray,
+                diag: bool) -> tuple[float, tuple]:
+        """``_MOVE_ITER`` batch EM iterations on rows y from (pi, mu, cov): (total
+        log-likelihood of the result, (pi, mu, cov, mu_lo))."""
+        params = (start[0], start[1], start[2], np.zeros_like(start[1]))
+        for _ in range(_MOVE_ITER):
+            _, gamma = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
+            if not np.isfinite(gamma).all():
+                return -math.inf, params
+            params = _batch_m_step(y, v, gamma, params[1], data_cov, diag)
+        ll, _ = _e_step(y, _prepare(*params[:3], self._floor, self.covariance))
+        return float(v @ ll), params
 
     # ------------------------------------------------------------------ pooling
     def merge(self, other: Mixture) -> Mixture:
@@ -667,7 +766,9 @@ class Mixture:
             "cov": self._cov.tolist(), "floor": self._floor.tolist(),
             "buffer": self._buf.tolist(), "buffer_weights": self._buf_w.tolist(),
             "recent_rows": self._recent.tolist(),
-        }
+        } | ({"mu_lo": self._mu_lo.tolist()} if self._mu_lo.any() else {}) \
+            | ({"since_check": self._since_check} if self._since_check else {}) \
+            | ({"quiet_checks": self._quiet} if self._quiet else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Mixture:
@@ -684,6 +785,10 @@ class Mixture:
             m.W, m.W2, m.L, m.LW = (float(d[key]) for key in ("W", "W2", "L", "LW"))
             m._pi = np.asarray(d["pi"], dtype=np.float64).reshape(k)
             m._mu = np.asarray(d["mu"], dtype=np.float64).reshape(k, dim)
+            m._since_check = int(d.get("since_check", 0))
+            m._quiet = min(max(int(d.get("quiet_checks", 0)), 0), _MOVE_BACKOFF)
+            if "mu_lo" in d:
+                m._mu_lo = np.asarray(d["mu_lo"], dtype=np.float64).reshape(k, dim)
             m._cov = np.asarray(d["cov"], dtype=np.float64).reshape(k, dim, dim)
             m._floor = np.asarray(d["floor"], dtype=np.float64).reshape(dim)
             m._buf = np.asarray(d["buffer"], dtype=np.float64).reshape(-1, dim)
@@ -813,35 +918,35 @@ def _e_step(y: np.ndarray, prep: tuple) -> tuple[np.ndarray, np.ndarray]:
     return _logsumexp(_log_prob(y, prep))
 
 
-def _batch_stats(y: np.ndarray, r: np.ndarray, diag: bool,
-                 centre: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-component weight a (K,), mean (K, d) and centred scatter (K, d, d) of a
-    batch under weights r (n, K); components with a = 0 get their centre, scatter 0.
+def _batch_stats(y: np.ndarray, r: np.ndarray, diag: bool, centre: np.ndarray,
+                 lo: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-component weight a (K,), mean less ``centre`` (+ ``lo``) (K, d) and centred
+    scatter (K, d, d) of a batch under weights r (n, K); components with a = 0 get 0.
 
-    The rows are shifted by each component's ``centre`` (K, d) before any sum
-    (Chan, Golub & LeVeque's shifted data): the mean is centre + the weighted
-    mean of y - centre, so rows equal to the centre add exactly nothing and
-    large offsets cost no digits."""
+    The rows are shifted by the first one before any sum (Chan, Golub & LeVeque's
+    shifted data) and the means are returned relative to each component's
+    centre: rows equal to the centre add exactly nothing and large offsets cost
+    no digits."""
     a = r.sum(axis=0)
     n, d = y.shape
     live = (a > 0.0)[:, None]
+    ref = y[0]
+    yc = y - ref
+    # divide, never multiply by 1/a: a subnormal a would overflow its reciprocal
+    s = np.divide(r.T @ yc, a[:, None], out=np.zeros((a.shape[0], d)), where=live)
+    shift = s + (ref - centre)
+    if lo is not None:
+        shift -= lo
+    shift[~live[:, 0]] = 0.0
     if d == 1:
-        diff = y - centre[:, 0]                          # (n, K)
-        # divide, never multiply by 1/a: a subnormal a would overflow its reciprocal
-        shift = np.divide((r * diff).sum(axis=0)[:, None], a[:, None],
-                          out=np.zeros((a.shape[0], 1)), where=live)
-        dev = diff - shift[:, 0]
-        return a, centre + shift, (r * dev * dev).sum(axis=0).reshape(-1, 1, 1)
-    diff = y[:, None, :] - centre[None]                  # (n, K, d)
-    shift = np.divide(np.einsum("nk,nkd->kd", r, diff), a[:, None],
-                      out=np.zeros((a.shape[0], d)), where=live)
-    diff = diff - shift[None]
-    mb = centre + shift
+        diff = yc - s[:, 0]                              # (n, K)
+        return a, shift, (r * diff * diff).sum(axis=0).reshape(-1, 1, 1)
+    diff = yc[:, None, :] - s[None]                      # (n, K, d)
     if diag:
-        return a, mb, _outer_diag((r[:, :, None] * diff * diff).sum(axis=0))
+        return a, shift, _outer_diag((r[:, :, None] * diff * diff).sum(axis=0))
     weighted = diff * r[:, :, None]
     scatter = np.matmul(weighted.transpose(1, 2, 0), diff.transpose(1, 0, 2))
-    return a, mb, 0.5 * (scatter + scatter.transpose(0, 2, 1))
+    return a, shift, 0.5 * (scatter + scatter.transpose(0, 2, 1))
 
 
 def _outer_diag(var: np.ndarray) -> np.ndarray:
@@ -853,17 +958,20 @@ def _outer_diag(var: np.ndarray) -> np.ndarray:
 
 def _batch_m_step(y: np.ndarray, v: np.ndarray, gamma: np.ndarray, fallback_mu: np.ndarray,
                   data_cov: np.ndarray,
-                  diag: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Closed-form M-step on a whole buffer: (pi, mu, raw covariance). A component that
-    got no weight keeps ``fallback_mu`` and the data covariance, with weight 0."""
-    a, mb, cb = _batch_stats(y, v[:, None] * gamma, diag, fallback_mu)
+                  diag: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Closed-form M-step on a whole buffer: (pi, mu, raw covariance, mu's low-order
+    part). A component that got no weight keeps ``fallback_mu`` and the data
+    covariance, with weight 0."""
+    a, shift, cb = _batch_stats(y, v[:, None] * gamma, diag, fallback_mu)
+    mb = fallback_mu + shift
     live = a > 0.0
     scaled = np.divide(cb, a[:, None, None], out=np.zeros_like(cb),
                        where=live[:, None, None])
     cov = np.where(live[:, None, None], scaled,
                    np.diag(np.diagonal(data_cov)) if diag else data_cov)
     mu = np.where(live[:, None], mb, fallback_mu)
-    return a / a.sum(), mu, cov
+    lo = np.where(live[:, None], shift - (mb - fallback_mu), 0.0)   # Fast2Sum's remainder
+    return a / a.sum(), mu, cov, lo
 
 
 def _kmeans_pp(y: np.ndarray, v: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:

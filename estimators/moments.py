@@ -10,7 +10,17 @@ from typing import Literal
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, age_to, take_batch
+from .forgetting import (
+    HalfLife,
+    age_to,
+    batch_exponent,
+    ldexp,
+    rescale_exponent,
+    scale_step,
+    take_batch,
+    true_sum,
+    unit,
+)
 from .validation import as_rows, check_batch, check_saved
 
 Correction = Literal["none", "frequency", "reliability"]
@@ -55,6 +65,19 @@ class Moments:
     Forgetting multiplies W and C by f = 2**(-dt/h) and W2 by f**2, so the
     Kish effective sample size W**2/W2 and the corrections stay right.
 
+    Precision over months: a batch is centred on its first row before any sum
+    (Chan, Golub & LeVeque's shifted data), and the mean is kept as an
+    unevaluated sum mean + lo of two floats, so that each step keeps every
+    digit and the spread of data at an offset of 1e10 keeps the digits of a
+    two-pass computation (``mean`` reads the first float of the pair). W, W2
+    and C are stored in units of a power of two 2**E that moves when W would
+    leave [2**-100, 2**100]: weights of any size in [1e-300, 1e300] and
+    silences of any length (10,000 half-lives: a factor 2**-10000) change no
+    estimate, where a plain float would underflow to an empty state.
+    ``weight_sum`` and ``scatter`` report the true sums (0 or inf where those
+    leave float64). E and lo are saved only when not 0, so an older saved form
+    reads as before.
+
     Covariance corrections divide C by:
 
     - "none": W (maximum likelihood),
@@ -74,6 +97,8 @@ class Moments:
     the sample variance: analysis and recommendations. The American
     Statistician 37(3), 242-247.
     Kish, L. (1965). Survey Sampling. Wiley.
+    Dekker, T. J. (1971). A floating-point technique for extending the
+    available precision. Numerische Mathematik 18, 224-242 (Fast2Sum).
 
     Examples
     --------
@@ -85,7 +110,8 @@ class Moments:
     8.0
     """
 
-    __slots__ = ("dim", "half_life", "clock", "count", "W", "W2", "_mean", "_scatter")
+    __slots__ = ("dim", "half_life", "clock", "count", "W", "W2", "E", "_mean", "_lo",
+                 "_scatter")
     kind = "moments"
     version = 1
 
@@ -96,10 +122,12 @@ class Moments:
         self.half_life = half_life
         self.clock: float | None = None   # event time (or observation count) of the state
         self.count = 0                     # observations accepted, undecayed
-        self.W = 0.0
-        self.W2 = 0.0
+        self.W = 0.0                       # stored in units of 2**E (see Notes)
+        self.W2 = 0.0                      # in units of 2**(2 E)
+        self.E = 0
         self._mean = np.zeros(dim)
-        self._scatter = np.zeros((dim, dim))
+        self._lo = np.zeros(dim)           # the mean's low-order part: mean + _lo is exact
+        self._scatter = np.zeros((dim, dim))   # in units of 2**E
 
     # ------------------------------------------------------------------ updates
     def update(self, x: object, weights: object = None, times: object = None) -> None:
@@ -118,15 +146,26 @@ class Moments:
         if n == 0:
             return
         v = take_batch(self, n, t, w)
+        if n == 1:                # one row is its own mean, with no scatter
+            wv = 1.0 if v is None else float(v[0])
+            if wv > 0.0:
+                eb = 0 if 2.0 ** -100 <= wv <= 2.0 ** 100 else rescale_exponent(wv)
+                wv = math.ldexp(wv, -eb) if eb else wv
+                self._combine(wv, wv * wv, x[0], None, None, eb)
+            return
         # shifted by the first row (Chan, Golub & LeVeque): constant data is exactly
         # constant, and an offset costs no digits of the batch mean
         xc = x - x[0]
+        eb = 0
         if v is None:
             wb, w2b = float(n), float(n)
             shift = xc.mean(axis=0)
             xc -= shift
             cb = xc.T @ xc
         else:
+            eb = batch_exponent(v)
+            if eb:                # weights beyond 2**+-100: summed in units of 2**eb
+                v = np.ldexp(v, -eb)
             wb = float(v.sum())
             if not wb > 0.0:      # every row has decayed to nothing
                 return
@@ -134,34 +173,69 @@ class Moments:
             shift = (v @ xc) / wb
             xc -= shift
             cb = (xc.T * v) @ xc
-        mb = x[0] + shift
-        self._combine(wb, w2b, mb, cb)
+        self._combine(wb, w2b, x[0], shift, cb, eb)
 
-    def _combine(self, wb: float, w2b: float, mb: np.ndarray, cb: np.ndarray) -> None:
+    def _combine(self, wb: float, w2b: float, base: np.ndarray, shift: np.ndarray | None,
+                 cb: np.ndarray | None, eb: int) -> None:
+        """Fold in a part of weight wb (units 2**eb), mean base + shift and scatter cb
+        (a single row: shift and cb None)."""
         wa = self.W
+        if eb != self.E:
+            if wa > 0.0:          # the lighter side is expressed in the heavier's units
+                top = max(self.E, eb)
+                self._rescale(self.E - top)
+                wa = self.W
+                wb, w2b = math.ldexp(wb, eb - top), math.ldexp(w2b, 2 * (eb - top))
+                cb = None if cb is None else ldexp(cb, eb - top)
+            else:
+                self.E = eb
         total = wa + wb
         if wa == 0.0:
-            self._mean = np.array(mb, dtype=np.float64)
-            self._scatter = np.array(cb, dtype=np.float64)
-        else:
-            delta = mb - self._mean
-            # step from the heavier side: wb/total rounds to 1 when wb dwarfs wa by 2**53,
-            # and mean + delta * 1 would then cancel the lighter side's share entirely
-            if wb <= wa:
-                self._mean = self._mean + delta * (wb / total)
+            if shift is None:
+                self._mean, self._lo = np.array(base, dtype=np.float64), np.zeros(self.dim)
             else:
-                self._mean = mb - delta * (wa / total)
-            self._scatter = self._scatter + cb + np.outer(delta, delta) * (wa * wb / total)
+                mean = base + shift
+                self._lo = shift - (mean - base)     # exact while |shift| <= |base|
+                self._mean = mean
+            self._scatter = np.zeros((self.dim, self.dim)) if cb is None else \
+                np.array(cb, dtype=np.float64)
+        else:
+            mean, lo = self._mean, self._lo
+            delta = base - mean - lo if shift is None else (base - mean) + (shift - lo)
+            # the mean as an unevaluated sum mean + lo (Dekker's Fast2Sum, exact while
+            # |mean| >= |lo + step|, the case of an offset): the pair keeps every digit
+            # of each step, so an offset of 1e10 costs none of the spread's. Step from
+            # the heavier side: wb/total rounds to 1 when wb dwarfs wa by 2**53, and
+            # the lighter side's share must then be added to the heavier's mean
+            if wb <= wa:
+                part = lo + delta * (wb / total)
+            else:
+                mean, back = base, delta * (wa / total)
+                part = -back if shift is None else shift - back
+            new = mean + part
+            self._lo = part - (new - mean)
+            self._mean = new
+            scatter = self._scatter + np.outer(delta, delta) * (wa * wb / total)
+            self._scatter = scatter if cb is None else scatter + cb
         self.W = total
         self.W2 = self.W2 + w2b
+        if not 2.0 ** -100 <= total <= 2.0 ** 100:
+            self._rescale(-rescale_exponent(total))
 
-    def _scale(self, f: float) -> None:
+    def _rescale(self, k: int) -> None:
+        """Multiply the stored sums by 2**k and move the scale the other way (exact)."""
+        if k:
+            self.W = math.ldexp(self.W, k)
+            self.W2 = math.ldexp(self.W2, 2 * k)
+            self._scatter = ldexp(self._scatter, k)
+            self.E -= k
+
+    def _age(self, g: float) -> None:
+        k, f = scale_step(self.W, g)
+        self.E += k
         self.W *= f
         self.W2 *= f * f
         self._scatter = self._scatter * f
-        if not self.W > 0.0:      # decayed past what float64 holds: the state is empty
-            self.W = self.W2 = 0.0
-            self._scatter = np.zeros((self.dim, self.dim))
 
     def decay_to(self, t: float) -> Moments:
         """Age the state to event time t (never backwards); returns self.
@@ -190,7 +264,7 @@ class Moments:
             o.decay_to(self.clock)
         self.count += o.count
         if o.W > 0.0:
-            self._combine(o.W, o.W2, o._mean, o._scatter)
+            self._combine(o.W, o.W2, o._mean, o._lo, o._scatter, o.E)
         return self
 
     def copy(self) -> Moments:
@@ -198,19 +272,21 @@ class Moments:
         for name in self.__slots__:
             setattr(new, name, getattr(self, name))
         new._mean = self._mean.copy()
+        new._lo = self._lo.copy()
         new._scatter = self._scatter.copy()
         return new
 
     # ---------------------------------------------------------------- read-outs
     @property
     def weight_sum(self) -> float:
-        """Decayed sum of weights W (the pooling weight)."""
-        return self.W
+        """Decayed sum of weights W (the pooling weight); 0 or inf where it leaves
+        float64's range (the estimates do not: see Notes)."""
+        return self.W if self.E == 0 else true_sum(self.W, self.E)
 
     @property
     def weight_sq_sum(self) -> float:
         """Decayed sum of squared weights W2."""
-        return self.W2
+        return self.W2 if self.E == 0 else true_sum(self.W2, 2 * self.E)
 
     @property
     def effective_samples(self) -> float:
@@ -220,7 +296,8 @@ class Moments:
     @property
     def scatter(self) -> np.ndarray:
         """Per-field centred scatter sum(w (x - mu)**2) (d,), the diagonal of C."""
-        return self._scatter.diagonal().copy()
+        diag = self._scatter.diagonal()
+        return diag.copy() if self.E == 0 else ldexp(diag, self.E)
 
     @property
     def mean(self) -> np.ndarray:
@@ -229,10 +306,15 @@ class Moments:
 
     def scatter_divisor(self, correction: Correction = "reliability") -> float:
         """What the centred scatter is divided by under a correction (NaN when undefined)."""
+        div = self._divisor(correction)
+        return div if self.E == 0 else true_sum(div, self.E)
+
+    def _divisor(self, correction: Correction) -> float:
+        """``scatter_divisor`` in the stored units 2**E (those of W and the scatter)."""
         if correction == "none":
             div = self.W
         elif correction == "frequency":
-            div = self.W - 1.0
+            div = self.W - (1.0 if self.E == 0 else unit(self.E))
         elif correction == "reliability":
             div = self.W - self.W2 / self.W if self.W > 0.0 else 0.0
         else:
@@ -242,11 +324,11 @@ class Moments:
 
     def covariance(self, correction: Correction = "reliability") -> np.ndarray:
         """Covariance matrix (d, d) under a correction; NaN while it is undefined."""
-        return self._scatter / self.scatter_divisor(correction)
+        return self._scatter / self._divisor(correction)
 
     def variance(self, correction: Correction = "reliability") -> np.ndarray:
         """Per-field variances (d,): the diagonal of ``covariance``."""
-        return self._scatter.diagonal() / self.scatter_divisor(correction)
+        return self._scatter.diagonal() / self._divisor(correction)
 
     def stddev(self, correction: Correction = "reliability") -> np.ndarray:
         """Per-field standard deviations (d,)."""
@@ -266,7 +348,7 @@ class Moments:
         sqrt(variance / W) under "frequency" (the weights count observations), and
         sqrt(variance / n_eff) with Kish's effective sample size otherwise.
         """
-        n = self.W if correction == "frequency" else self.effective_samples
+        n = self.weight_sum if correction == "frequency" else self.effective_samples
         return np.sqrt(self.variance(correction) / n) if n > 0 else np.full(self.dim, np.nan)
 
     def quantile(self, q: float, correction: Correction = "reliability") -> np.ndarray:
@@ -308,7 +390,8 @@ class Moments:
             "half_life": None if self.half_life is None else self.half_life.to_dict(),
             "clock": self.clock, "count": self.count, "W": self.W, "W2": self.W2,
             "mean": self._mean.tolist(), "scatter": self._scatter.tolist(),
-        }
+        } | ({"scale_exponent": self.E} if self.E else {}) \
+            | ({"mean_lo": self._lo.tolist()} if self._lo.any() else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Moments:
@@ -319,8 +402,11 @@ class Moments:
             m.clock = None if d["clock"] is None else float(d["clock"])
             m.count = int(d["count"])
             m.W, m.W2 = float(d["W"]), float(d["W2"])
+            m.E = int(d.get("scale_exponent", 0))
             m._mean = np.asarray(d["mean"], dtype=np.float64).reshape(m.dim)
             m._scatter = np.asarray(d["scatter"], dtype=np.float64).reshape(m.dim, m.dim)
+            if "mean_lo" in d:
+                m._lo = np.asarray(d["mean_lo"], dtype=np.float64).reshape(m.dim)
         except (KeyError, TypeError, ValueError) as exc:
             raise IncompatibleError("moments", type(exc).__name__, f"malformed state: {exc}") \
                 from None

@@ -82,6 +82,13 @@ class MomentsColumns(NamedTuple):
         The stored means (whatever they hold while W is 0).
     scatter : ndarray, shape (n, dim, dim)
         Centred scatter matrices sum(w (x - mu)(x - mu)^T).
+    E : ndarray of int64, shape (n,)
+        Scale exponents: W and scatter are stored in units of 2**E and W2 in
+        units of 2**(2 E), as in ``Moments`` (0 unless a state's weights left
+        2**+-100). Saved only when some row has one.
+    lo : ndarray, shape (n, dim)
+        The low-order parts of the means (``Moments`` keeps mean + lo exactly).
+        Saved only when some row has one.
 
     Notes
     -----
@@ -116,6 +123,8 @@ class MomentsColumns(NamedTuple):
     W2: np.ndarray
     mean: np.ndarray
     scatter: np.ndarray
+    E: np.ndarray
+    lo: np.ndarray
 
     kind = "moments_columns"
     version = 1
@@ -150,7 +159,9 @@ class MomentsColumns(NamedTuple):
         W2 = np.fromiter(map(attrgetter("W2"), states), np.float64, n)
         mean = _stack(_get("_mean", states), (n, dim))
         scatter = _stack(_get("_scatter", states), (n, dim, dim))
-        return cls(dim, half_life, has_clock, clock, count, W, W2, mean, scatter)
+        E = np.fromiter(map(attrgetter("E"), states), np.int64, n)
+        lo = _stack(_get("_lo", states), (n, dim))
+        return cls(dim, half_life, has_clock, clock, count, W, W2, mean, scatter, E, lo)
 
     def states(self) -> list[Moments]:
         """One ``Moments`` per row, equal bit for bit to the stacked ones. O(n d**2).
@@ -167,27 +178,35 @@ class MomentsColumns(NamedTuple):
         scatter = np.array(self.scatter, dtype=np.float64)
         clocks = [c if h else None for c, h in zip(self.clock.tolist(), self.has_clock.tolist(),
                                                    strict=True)]
-        for i, (clock, count, w, w2) in enumerate(zip(clocks, self.count.tolist(),
-                                                      self.W.tolist(), self.W2.tolist(),
-                                                      strict=True)):
+        lo = np.array(self.lo, dtype=np.float64)
+        for i, (clock, count, w, w2, e) in enumerate(zip(clocks, self.count.tolist(),
+                                                         self.W.tolist(), self.W2.tolist(),
+                                                         self.E.tolist(), strict=True)):
             m = new(Moments)
             m.dim, m.half_life, m.clock, m.count, m.W, m.W2 = dim, half_life, clock, count, w, w2
-            m._mean, m._scatter = mean[i], scatter[i]
+            m.E, m._mean, m._lo, m._scatter = e, mean[i], lo[i], scatter[i]
             append(m)
         return out
 
     # ------------------------------------------------------------ read-outs
+    def _exponents(self) -> np.ndarray:
+        """E clipped to what ldexp takes (beyond +-2,200 every float64 has under- or
+        overflowed anyway)."""
+        return np.clip(self.E, -2200, 2200)
+
     def means(self) -> np.ndarray:
         """Weighted means (n, d); NaN rows where W is 0, as ``Moments.mean``."""
         return np.where((self.W > 0.0)[:, None], self.mean, np.nan)
 
     def divisors(self, correction: str = "reliability") -> np.ndarray:
-        """``Moments.scatter_divisor`` of every row (n,); NaN where it is not > 0."""
+        """``Moments.scatter_divisor`` of every row (n,) in its stored units 2**E (those
+        of ``W`` and ``scatter``); NaN where it is not > 0."""
         W, W2 = self.W, self.W2
         if correction == "none":
             div = W.copy()
         elif correction == "frequency":
-            div = W - 1.0
+            with np.errstate(over="ignore"):      # 1 in units of 2**E: inf for tiny W
+                div = W - np.ldexp(1.0, -self._exponents()) if self.E.any() else W - 1.0
         elif correction == "reliability":
             with np.errstate(divide="ignore", invalid="ignore"):
                 div = np.where(W > 0.0, W - W2 / W, 0.0)
@@ -199,11 +218,12 @@ class MomentsColumns(NamedTuple):
 
     def scatters(self) -> np.ndarray:
         """The diagonals of the scatter matrices (n, d), as ``Moments.scatter``."""
-        return np.diagonal(self.scatter, axis1=1, axis2=2).copy()
+        diag = np.diagonal(self.scatter, axis1=1, axis2=2)
+        return np.ldexp(diag, self._exponents()[:, None]) if self.E.any() else diag.copy()
 
     def variances(self, correction: str = "reliability") -> np.ndarray:
         """Per-field variances (n, d) under a correction, as ``Moments.variance``."""
-        return self.scatters() / self.divisors(correction)[:, None]
+        return np.diagonal(self.scatter, axis1=1, axis2=2) / self.divisors(correction)[:, None]
 
     def covariances(self, correction: str = "reliability") -> np.ndarray:
         """Covariance matrices (n, d, d), as ``Moments.covariance``."""
@@ -211,7 +231,7 @@ class MomentsColumns(NamedTuple):
 
     def correlations(self) -> np.ndarray:
         """Pearson correlation matrices (n, d, d), as ``Moments.correlation``."""
-        s = np.sqrt(self.scatters())
+        s = np.sqrt(np.diagonal(self.scatter, axis1=1, axis2=2))
         with np.errstate(divide="ignore", invalid="ignore"):
             r = self.scatter / (s[:, :, None] * s[:, None, :])
         return np.clip(r, -1.0, 1.0)
@@ -238,7 +258,8 @@ class MomentsColumns(NamedTuple):
             "clock": blob(self.clock, _LE_F8), "count": blob(self.count, _LE_I8),
             "W": blob(self.W, _LE_F8), "W2": blob(self.W2, _LE_F8),
             "mean": blob(self.mean, _LE_F8), "scatter": blob(self.scatter, _LE_F8),
-        }
+        } | ({"scale_exponent": blob(self.E, _LE_I8)} if self.E.any() else {}) \
+            | ({"mean_lo": blob(self.lo, _LE_F8)} if self.lo.any() else {})
 
     @classmethod
     def from_dict(cls, d: object) -> MomentsColumns:
@@ -261,4 +282,8 @@ class MomentsColumns(NamedTuple):
         return cls(dim, half_life, has_clock.astype(bool), from_blob(d, "clock", _LE_F8, (n,)),
                    from_blob(d, "count", _LE_I8, (n,)), from_blob(d, "W", _LE_F8, (n,)),
                    from_blob(d, "W2", _LE_F8, (n,)), from_blob(d, "mean", _LE_F8, (n, dim)),
-                   from_blob(d, "scatter", _LE_F8, (n, dim, dim)))
+                   from_blob(d, "scatter", _LE_F8, (n, dim, dim)),
+                   from_blob(d, "scale_exponent", _LE_I8, (n,)) if "scale_exponent" in d
+                   else np.zeros(n, np.int64),
+                   from_blob(d, "mean_lo", _LE_F8, (n, dim)) if "mean_lo" in d
+                   else np.zeros((n, dim)))

@@ -8,7 +8,17 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError, ShapeError
-from .forgetting import HalfLife, age_to, take_batch
+from .forgetting import (
+    HalfLife,
+    age_to,
+    batch_exponent,
+    ldexp,
+    rescale_exponent,
+    scale_step,
+    take_batch,
+    true_sum,
+    unit,
+)
 from .moments import Correction
 from .validation import as_rows, check_saved, check_xy
 
@@ -82,6 +92,12 @@ class Regression:
     every read-out and ``ok`` is False; one with no residual degrees of freedom
     left gives coefficients but NaN for every uncertainty. No read-out raises.
 
+    W, W2 and R are stored in units of 2**E, 2**(2 E) and 2**(E/2) (E even),
+    moved when W would leave [2**-100, 2**100], as in ``Moments``: weights in
+    [1e-300, 1e300] and silences of any length leave every estimate that does
+    not depend on the weights' unit unchanged (the "none" and "frequency"
+    standard errors scale as W**-1/2 by definition).
+
     Update costs O(n k**2) for a batch of n; merge and read-outs O(k**3).
 
     References
@@ -107,7 +123,8 @@ class Regression:
     (2.0, 0.094868, 0.999083)
     """
 
-    __slots__ = ("p", "has_intercept", "half_life", "clock", "count", "W", "W2", "_R", "_fit")
+    __slots__ = ("p", "has_intercept", "half_life", "clock", "count", "W", "W2", "E", "_R",
+                 "_fit")
     kind = "regression"
     version = 1
 
@@ -122,9 +139,10 @@ class Regression:
         self.half_life = half_life
         self.clock: float | None = None   # event time (or observation count) of the state
         self.count = 0                     # observations accepted, undecayed
-        self.W = 0.0
-        self.W2 = 0.0
-        self._R = np.zeros((self.terms + 1, self.terms + 1))
+        self.W = 0.0                       # stored in units of 2**E (E even), as Moments
+        self.W2 = 0.0                      # in units of 2**(2 E)
+        self.E = 0
+        self._R = np.zeros((self.terms + 1, self.terms + 1))   # in units of 2**(E/2)
         self._fit: tuple | None = None     # solved read-outs, dropped on every change
 
     @property
@@ -156,17 +174,43 @@ class Regression:
             rows[:, 1:] = xy
         else:
             rows = np.array(xy, dtype=np.float64)
+        eb = 0
         if v is None:
             wb = w2b = float(n)
         else:
+            eb = batch_exponent(v, even=True)
+            if eb:                # weights beyond 2**+-100: summed in units of 2**eb
+                v = np.ldexp(v, -eb)
             wb = float(v.sum())
             if not wb > 0.0:      # every row has decayed to nothing
                 return
             w2b = float(v @ v)
             rows *= np.sqrt(v)[:, None]
+        self._add(rows, wb, w2b, eb)
+
+    def _add(self, rows: np.ndarray, wb: float, w2b: float, eb: int) -> None:
+        """Stack scaled rows (or another R) of weight wb, in units of 2**eb, onto R."""
+        if eb != self.E:
+            if self.W > 0.0:      # the lighter side is expressed in the heavier's units
+                top = max(self.E, eb)
+                self._rescale(self.E - top)
+                wb, w2b = math.ldexp(wb, eb - top), math.ldexp(w2b, 2 * (eb - top))
+                rows = ldexp(rows, (eb - top) // 2)
+            else:
+                self.E = eb
         self._absorb(rows)
         self.W += wb
         self.W2 += w2b
+        if not 2.0 ** -100 <= self.W <= 2.0 ** 100:
+            self._rescale(-rescale_exponent(self.W, even=True))
+
+    def _rescale(self, k: int) -> None:
+        """Multiply the stored sums by 2**k (k even) and move the scale the other way."""
+        if k:
+            self.W = math.ldexp(self.W, k)
+            self.W2 = math.ldexp(self.W2, 2 * k)
+            self._R = ldexp(self._R, k // 2)
+            self.E -= k
 
     def _absorb(self, rows: np.ndarray) -> None:
         """Re-triangularise R stacked on scaled rows (Householder QR, R only)."""
@@ -176,14 +220,13 @@ class Regression:
         h, _ = np.linalg.qr(np.vstack((self._R, rows)), mode="raw")
         self._R = h.T[:k1] * _upper_mask(k1)
 
-    def _scale(self, f: float) -> None:
+    def _age(self, g: float) -> None:
+        k, f = scale_step(self.W, g, even=True)
+        self.E += k
         self.W *= f
         self.W2 *= f * f
         self._R = self._R * math.sqrt(f)
         self._fit = None
-        if not self.W > 0.0:      # decayed past what float64 holds: the state is empty
-            self.W = self.W2 = 0.0
-            self._R = np.zeros_like(self._R)
 
     def decay_to(self, t: float) -> Regression:
         """Age the state to event time t (never backwards); returns self.
@@ -214,9 +257,7 @@ class Regression:
         self.count += o.count
         self._fit = None
         if o.W > 0.0:
-            self._absorb(o._R)
-            self.W += o.W
-            self.W2 += o.W2
+            self._add(o._R, o.W, o.W2, o.E)
         return self
 
     def copy(self) -> Regression:
@@ -251,10 +292,13 @@ class Regression:
     def _divisor(self, correction: Correction) -> tuple[float, float]:
         """(D, g) of the Notes: RSS / D is the residual variance, g scales (X'VX)^-1."""
         k = self.terms
+        # in the stored units: RSS and D are both 2**E times their true values, and
+        # (X'VX)^-1 is 2**-E times, so g carries 2**-E (it is 1 while E is 0)
+        one = 1.0 if self.E == 0 else unit(self.E)
         if correction == "none":
-            return self.W, 1.0
+            return self.W, one
         if correction == "frequency":
-            return self.W - k, 1.0
+            return self.W - k * one, one
         if correction == "reliability":
             if not self.W > 0.0:
                 return math.nan, math.nan
@@ -284,8 +328,9 @@ class Regression:
 
     @property
     def weight_sum(self) -> float:
-        """Decayed sum of weights W."""
-        return self.W
+        """Decayed sum of weights W; 0 or inf where it leaves float64's range (the
+        estimates do not)."""
+        return self.W if self.E == 0 else true_sum(self.W, self.E)
 
     @property
     def effective_samples(self) -> float:
@@ -326,7 +371,8 @@ class Regression:
         n_eff - k ("reliability"; n - k for unit weights). May be <= 0."""
         if correction == "reliability":
             return self.effective_samples - self.terms
-        return self._divisor(correction)[0]
+        div = self._divisor(correction)[0]
+        return div if self.E == 0 else true_sum(div, self.E)
 
     def residual_stddev(self, correction: Correction = "reliability") -> float:
         """Noise standard deviation s = sqrt(RSS / D); NaN when undefined."""
@@ -380,7 +426,7 @@ class Regression:
             "half_life": None if self.half_life is None else self.half_life.to_dict(),
             "clock": self.clock, "count": self.count, "W": self.W, "W2": self.W2,
             "R": self._R.tolist(),
-        }
+        } | ({"scale_exponent": self.E} if self.E else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Regression:
@@ -391,6 +437,9 @@ class Regression:
             r.clock = None if d["clock"] is None else float(d["clock"])
             r.count = int(d["count"])
             r.W, r.W2 = float(d["W"]), float(d["W2"])
+            r.E = int(d.get("scale_exponent", 0))
+            if r.E % 2:
+                raise ValueError(f"scale_exponent {r.E} must be even")
             k1 = r.terms + 1
             r._R = np.asarray(d["R"], dtype=np.float64).reshape(k1, k1)
         except (KeyError, TypeError, ValueError) as exc:

@@ -114,6 +114,11 @@ class Thresholds:
         self.W += wb
         self._above += wb - np.cumsum(decayed[:k])
 
+    def _age(self, g: float) -> None:
+        """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol). A
+        silence long enough to underflow them empties the state (it keeps no scale)."""
+        self._scale(2.0 ** g)
+
     def _scale(self, f: float) -> None:
         self.W *= f
         self._above = self._above * f

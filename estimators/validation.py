@@ -165,6 +165,26 @@ def bound_batch(batch: Batch, max_abs: float = MAX_ABS_VALUE, min_weight: float 
     return Batch(a[keep], None if w is None else w[keep], None if t is None else t[keep]), counts
 
 
+def limit_batch(batch: Batch, low: np.ndarray, high: np.ndarray) -> tuple[Batch, int]:
+    """Drop the rows of a clean batch with a value outside [low, high] (per field, (d,)
+    each); returns the kept rows and how many were dropped. O(n d).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> b = Batch(np.array([[5.0], [-1.0], [70000.0]]), None, None)
+    >>> kept, dropped = limit_batch(b, np.array([0.0]), np.array([60000.0]))
+    >>> kept.x.ravel().tolist(), dropped
+    ([5.0], 2)
+    """
+    a, w, t = batch
+    if not a.shape[0] or ((a >= low).all() and (a <= high).all()):
+        return batch, 0
+    keep = ((a >= low) & (a <= high)).all(axis=1)
+    return Batch(a[keep], None if w is None else w[keep], None if t is None else t[keep]), \
+        int((~keep).sum())
+
+
 def screen_batch(x: object, dim: int, weights: object = None, times: object = None,
                  max_abs: float = MAX_ABS_VALUE, min_weight: float = MIN_WEIGHT,
                  max_weight: float = MAX_WEIGHT) -> tuple[Batch, dict[str, int]]:

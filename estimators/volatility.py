@@ -123,6 +123,11 @@ class Volatility:
         self.rate = self.rate + (batch - self.rate) * (wb / total)
         self.W = total
 
+    def _age(self, g: float) -> None:
+        """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol). A
+        silence long enough to underflow them empties the state (it keeps no scale)."""
+        self._scale(2.0 ** g)
+
     def _scale(self, f: float) -> None:
         self.W *= f
         if not self.W > 0.0:

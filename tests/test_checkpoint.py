@@ -49,6 +49,9 @@ from sigmad.estimators import Moments
 NOW = 1.7e9
 # written by the format-1 encoder of commit 43f9e18 from filled_engine()
 FORMAT_1 = ROOT / "tests" / "data" / "checkpoint-format-1.bin"
+# written by the format-2 encoder of commit 995c23f from filled_engine(), before the
+# estimators saved a weight scale and the low-order parts of their means (issue 16)
+FORMAT_2 = ROOT / "tests" / "data" / "checkpoint-format-2.bin"
 
 ENGINE_CONFIG = """
 [[source]]
@@ -174,6 +177,23 @@ def test_a_version_1_file_is_still_read_and_restored_exactly():
     again = Engine(fresh.config)
     restore_checkpoint(again, decode_checkpoint(checkpoint_bytes(fresh)), NOW)
     assert bits(again.export_state()) == bits(cp.states)
+
+
+def test_a_format_2_file_of_the_previous_estimators_is_still_read_and_restored_exactly():
+    cp = read_checkpoint(FORMAT_2)
+    assert cp.version == 2
+    fresh = Engine(parse_config(ENGINE_CONFIG))
+    assert restore_checkpoint(fresh, cp, NOW) == (3, [])
+    assert bits(fresh.export_state()) == bits(cp.series())
+    # reference: numpy's mean of the same draws (seed 3, the first 200 lognormals)
+    api = np.random.default_rng(3).lognormal(3, 0.5, 200)
+    (state,) = [d for d in fresh.export_state() if d["labels"] == ["api"]]
+    assert math.isclose(state["moments"]["mean"][0], float(np.mean(api)), rel_tol=1e-12)
+    # the same engine filled by today's code reads the same, to rounding
+    now = {(d["stream"], tuple(d["labels"])): d for d in filled_engine().export_state()}
+    for d in fresh.export_state():
+        np.testing.assert_allclose(now[(d["stream"], tuple(d["labels"]))]["moments"]["scatter"],
+                                   d["moments"]["scatter"], rtol=1e-12)
 
 
 @pytest.mark.parametrize("damage", ["flip", "truncate", "magic", "version", "empty"])

@@ -239,13 +239,15 @@ def test_decay_to_ages_weights_but_keeps_the_mean():
     assert m.weight_sum == pytest.approx(0.5, rel=1e-15)
 
 
-def test_decay_far_beyond_float_range_empties_the_state_without_nan():
+def test_decay_far_beyond_float_range_keeps_the_estimates_without_nan():
+    # issue 16: decaying every observation by one factor changes no estimate; only the
+    # weight sum itself (2**-1e6) is below what float64 shows
     m = Moments(half_life=HalfLife(1.0))
     m.update([5.0], times=[0.0])
     m.decay_to(1e6)
-    assert m.weight_sum == 0.0 and m.effective_samples == 0.0
-    m.update([7.0], times=[1e6])
-    assert m.mean[0] == 7.0
+    assert m.weight_sum == 0.0 and m.effective_samples == 1.0 and m.mean[0] == 5.0
+    m.update([7.0], times=[1e6])   # the old row weighs 2**-1e6 against the new one
+    assert m.mean[0] == 7.0 and m.effective_samples == 1.0
 
 
 # ------------------------------------------------------------- properties

@@ -378,12 +378,17 @@ def test_constant_field_collinear_with_intercept_is_flagged():
     assert not r.ok and np.isnan(r.coefficients).all()
 
 
-def test_state_decayed_to_nothing_is_empty():
+def test_state_decayed_far_beyond_float_range_keeps_its_fit():
+    # issue 16: decaying every observation by one factor changes no estimate; only the
+    # weight sum itself (10 * 2**-1e6) is below what float64 shows
     r = Regression(1, half_life=HalfLife(1.0))
     r.update(np.arange(10.0), np.arange(10.0) * 2.0 + np.sin(np.arange(10.0)), times=0.0)
     assert r.ok
+    before = (r.coefficients, r.stderr(), r.residual_stddev())
     r.decay_to(1e6)
-    assert r.W == 0.0 and not r.ok and np.isnan(r.coefficients).all()
+    assert r.weight_sum == 0.0 and r.ok
+    after = (r.coefficients, r.stderr(), r.residual_stddev())
+    np.testing.assert_allclose(np.hstack(after), np.hstack(before), rtol=1e-12)
 
 
 # --------------------------------------------------- bad input changes nothing

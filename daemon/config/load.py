@@ -210,6 +210,8 @@ class StreamConfig:
     legs: tuple[tuple[str, TopicTemplate], ...] | None = None   # (field, its topic)
     max_leg_age: float | None = _duration(None)
     session_reset: SessionReset | None = None
+    # per field (low, high): rows with a value outside are rejected as out_of_range
+    limits: tuple[tuple[float, float], ...] | None = None
 
     @property
     def templates(self) -> tuple[TopicTemplate, ...]:
@@ -870,6 +872,28 @@ def _at_most(t: _Table, name: str, items: tuple) -> None:
                           f"is too many: at most {MAX_PER_STREAM} per stream")
 
 
+def _limits(data: object, path: str,
+            fields: tuple[str, ...]) -> tuple[tuple[float, float], ...]:
+    """``limits = { field = [low, high], ... }``: each field's plausible range (a sensor's
+    rated range, a latency's plausible maximum); fields not named are unbounded."""
+    if not isinstance(data, dict):
+        raise ConfigError(path, data, "must be a table of field = [low, high]")
+    bounds = {f: (-math.inf, math.inf) for f in fields}
+    for name, pair in data.items():
+        key = f"{path}.{name}"
+        if name not in bounds:
+            raise ConfigError(key, name, f"is not one of the stream's fields {list(fields)}")
+        if not (isinstance(pair, list) and len(pair) == 2 and all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) and not math.isnan(v)
+                for v in pair)):
+            raise ConfigError(key, pair, "must be [low, high]: two numbers")
+        low, high = float(pair[0]), float(pair[1])
+        if not low < high:
+            raise ConfigError(key, pair, "must have low < high")
+        bounds[name] = (low, high)
+    return tuple(bounds[f] for f in fields)
+
+
 def _stream(data: object, path: str) -> StreamConfig:
     t = _Table(data, path, StreamConfig, extra=("separator",))   # separator: of the topic
     name = t.string("name")
@@ -905,6 +929,7 @@ def _stream(data: object, path: str) -> StreamConfig:
     regression = t.raw("regression")
     idle = t.raw("idle_expiry")
     thresholds = t.raw("thresholds", None)   # None: absent (the schema's () is the result)
+    limits = t.raw("limits")
     transform, unit = _transform(t, name, fields)
     if transform and isinstance(mixture, dict) and mixture.get("log") is True:
         raise ConfigError(t.key("mixture.log"), True, f"cannot fit the log of returns "
@@ -923,6 +948,7 @@ def _stream(data: object, path: str) -> StreamConfig:
         _thresholds(thresholds, t.key("thresholds"), name, fields),
         transform=transform, volatility_unit=unit, legs=legs, max_leg_age=age,
         session_reset=_session(t, name),
+        limits=None if limits is None else _limits(limits, t.key("limits"), fields),
     )
 
 
@@ -1260,6 +1286,11 @@ def describe(config: Config) -> str:
         if st.session_reset:
             lines.append(f"    sessions    reset daily at {st.session_reset.text}, closing "
                          "values exported")
+        if st.limits:
+            lines.append("    limits      " + ", ".join(
+                f"{f} in [{lo:g}, {hi:g}]" for f, (lo, hi) in zip(st.fields, st.limits,
+                                                                 strict=True)
+                if (lo, hi) != (-math.inf, math.inf)))
         expiry = _show_duration(st.idle_expiry) if st.idle_expiry else "never"
         lines.append(f"    series      at most {st.max_series}; idle expiry {expiry}")
     if config.publish:

@@ -29,7 +29,7 @@ from sigmad.estimators import (
 )
 from sigmad.estimators.model_tail import nominal_rate, tail_probability
 from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
-from sigmad.estimators.validation import screen_batch
+from sigmad.estimators.validation import limit_batch, screen_batch
 
 log = logging.getLogger("sigmad.engine")
 
@@ -250,6 +250,8 @@ class StreamState:
         legs = [f for f, _ in cfg.legs or ()]
         self.leg_order = [legs.index(f) for f in self.fields] if legs and \
             legs != self.field_list else None
+        self.limits = None if cfg.limits is None else \
+            (np.array([lo for lo, _ in cfg.limits]), np.array([hi for _, hi in cfg.limits]))
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
         cfg = self.cfg
@@ -998,6 +1000,10 @@ class Engine:
         batch, dropped = screen_batch(x, st.dim, w, t, self.config.daemon.max_abs_value)
         for reason, count in dropped.items():
             self.reject(reason, count, topic=_where(series), now=now)
+        if st.limits is not None:
+            batch, outside = limit_batch(batch, *st.limits)
+            if outside:
+                self.reject("out_of_range", outside, topic=_where(series), now=now)
         x, w, t = batch
         if series.returns is not None and x.shape[0]:
             x, w, t = self._transform(series, x, w, t, now)

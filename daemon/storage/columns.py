@@ -257,7 +257,7 @@ def views(st: StreamState, series: list[Series],
     # positional, in SeriesView's field order (as view_of): keywords cost 2 us a view
     return [SeriesView(
         name, s.key[1], fields, s.version, s.observations, s.last_update, s.moments.clock,
-        half_life, s.moments.W, s.moments.W2, effective[k], tuple(means[k]),
+        half_life, s.moments.weight_sum, s.moments.weight_sq_sum, effective[k], tuple(means[k]),
         tuple(variances[k]), covariance[k], correlation[k], quantile_at, tuple(quantiles[k]),
         thresholds, tuple(s.outliers), None, None, tuple(scatters[k]))
         for k, s in enumerate(series)]
