@@ -55,3 +55,13 @@ def test_checkpoint_of_20000_series_writes_and_restores_at_half_the_target_rate(
     wrote, read = write.ratio * 2.0, restore.ratio * 2.0     # ratio = seconds / 2 s budget
     assert wrote <= 0.8, write.cells()
     assert read <= 0.8, restore.cells()
+
+
+def test_three_thresholds_at_most_double_the_engines_batch_time():
+    # today about 1.3x the engine's CPU time alone (1.1x through the daemon); a guard
+    # at 2.0 flags a collapse, not a miss by a little
+    frames = bench._batches(300, 1000, 5)[0]
+    three = bench._SCALAR + "thresholds = [8.0, 10.0, 14.0]\n"
+    plain = min(bench._engine_seconds(bench._SCALAR, frames, 10) for _ in range(3))
+    with_three = min(bench._engine_seconds(three, frames, 10) for _ in range(3))
+    assert with_three / plain <= 2.0, (with_three, plain)

@@ -329,22 +329,21 @@ def _threshold_views(s: Series, means: tuple, variances: tuple) -> tuple:
     """(threshold_at, buckets, value_sums, model shares, observed shares) of a series:
     the model's share from the warm mixture (its field's marginal), else the normal
     model of the moments. O(fields k K)."""
-    st, mx = s.stream, s.mixture
+    st, mx, ths = s.stream, s.mixture, s.thresholds
     warm = mx is not None and mx.warm
     if warm:
         pi, mu, sd = mx.weights, mx.means, mx.stddevs
     model = []
     for i, b in st.threshold_at:
         if warm:
-            model.append(_floats(mixture_exceedance(b, pi, mu[:, i], sd[:, i], mx.log)))
+            p = mixture_exceedance(b, pi, mu[:, i], sd[:, i], mx.log)
         else:
             v = variances[i]
-            model.append(_floats(normal_exceedance(b, means[i], math.sqrt(v) if v >= 0.0
-                                                   else math.nan)))
-    ths = s.thresholds
-    return (st.threshold_at, tuple(_floats(th._cumulative) for th in ths),
+            p = normal_exceedance(b, means[i], math.sqrt(v) if v >= 0.0 else math.nan)
+        model.append(tuple(p.tolist()))
+    return (st.threshold_at, tuple(tuple(th._cumulative.tolist()) for th in ths),
             tuple(th.value_sum for th in ths), tuple(model),
-            tuple(_floats(th.observed_share) for th in ths))
+            tuple(tuple(th.observed_share.tolist()) for th in ths))
 
 
 class Engine:
