@@ -17,7 +17,14 @@ from itertools import compress
 import msgpack
 import numpy as np
 from sigmad.daemon.config.load import Config, StreamConfig
-from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
+from sigmad.daemon.engine.snapshot import (
+    Health,
+    LevelsView,
+    MixtureView,
+    RegressionView,
+    SeriesView,
+    Snapshot,
+)
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
@@ -322,13 +329,12 @@ def view_of(s: Series) -> SeriesView:
         cfg.half_life, m.weight_sum, m.weight_sq_sum, m.effective_samples, means,
         variances, covariance, correlation, st.quantile_at, quantiles,
         cfg.outlier_sigmas, tuple(s.outliers), mixture, regression, _floats(m.scatter),
-        *(_threshold_views(s, means, variances) if s.thresholds else ()))
+        _levels(s, means, variances) if s.thresholds else None)
 
 
-def _threshold_views(s: Series, means: tuple, variances: tuple) -> tuple:
-    """(threshold_at, buckets, value_sums, model shares, observed shares) of a series:
-    the model's share from the warm mixture (its field's marginal), else the normal
-    model of the moments. O(fields k K)."""
+def _levels(s: Series, means: tuple, variances: tuple) -> LevelsView:
+    """The counts and shares at a series' thresholds: the model's share from the warm
+    mixture (its field's marginal), else the normal model of the moments. O(fields k K)."""
     st, mx, ths = s.stream, s.mixture, s.thresholds
     warm = mx is not None and mx.warm
     if warm:
@@ -341,9 +347,9 @@ def _threshold_views(s: Series, means: tuple, variances: tuple) -> tuple:
             v = variances[i]
             p = normal_exceedance(b, means[i], math.sqrt(v) if v >= 0.0 else math.nan)
         model.append(tuple(p.tolist()))
-    return (st.threshold_at, tuple(tuple(th._cumulative.tolist()) for th in ths),
-            tuple(th.value_sum for th in ths), tuple(model),
-            tuple(tuple(th.observed_share.tolist()) for th in ths))
+    return LevelsView(st.threshold_at, tuple(tuple(th._cumulative.tolist()) for th in ths),
+                      tuple(th.value_sum for th in ths), tuple(model),
+                      tuple(tuple(th.observed_share.tolist()) for th in ths))
 
 
 class Engine:
