@@ -199,12 +199,14 @@ def series_state(s: Series) -> dict:
     return d
 
 
-def restore_series(st: StreamState, d: dict) -> Series:
+def restore_series(st: StreamState, d: dict, exact_thresholds: bool = False) -> Series:
     """Rebuild a series of stream ``st`` from ``series_state``.
 
     Raises IncompatibleError when the stream's definition changed incompatibly
     (fields, estimator kinds, label count, outlier thresholds) or the state is
-    malformed; the caller drops that series and keeps the rest.
+    malformed; the caller drops that series and keeps the rest. Counts at thresholds
+    restart when the bounds changed, unless ``exact_thresholds`` (the merge tier: a
+    shard of other bounds is refused, not pooled as zeros).
     """
     cfg = st.cfg
     try:
@@ -232,7 +234,7 @@ def restore_series(st: StreamState, d: dict) -> Series:
                                     f"must hold one count per threshold {d['thresholds']}")
         if list(d["thresholds"]) == list(cfg.outlier_sigmas):
             s.outliers = outliers
-        s.thresholds = restore_thresholds(st, d.get("threshold_counts"))
+        s.thresholds = restore_thresholds(st, d.get("threshold_counts"), exact_thresholds)
         s.observations = int(d["observations"])
         s.version = int(d["version"])
         s.last_update = float(d["last_update"])
@@ -244,18 +246,24 @@ def restore_series(st: StreamState, d: dict) -> Series:
     return s
 
 
-def restore_thresholds(st: StreamState, saved: list | None) -> list[Thresholds] | tuple:
+def restore_thresholds(st: StreamState, saved: list | None,
+                       exact: bool = False) -> list[Thresholds] | tuple:
     """The series' Thresholds from their saved forms: kept (counters resume) when the
     bounds and half-life are the stream's now, fresh otherwise or when absent (an
-    older checkpoint). IncompatibleError for a malformed state. O(fields k)."""
+    older checkpoint); with ``exact``, anything but the stream's own bounds is an
+    IncompatibleError. IncompatibleError for a malformed state. O(fields k)."""
     fresh = st.new_thresholds()
-    if not saved:
-        return fresh
-    if not isinstance(saved, list):
+    if saved is not None and not isinstance(saved, list):
         raise IncompatibleError("threshold_counts", type(saved).__name__, "must be a list")
-    old = [Thresholds.from_dict(d) for d in saved]
+    old = [Thresholds.from_dict(d) for d in saved or ()]
     by_bounds = {tuple(t.bounds.tolist()): t for t in old if t.half_life == st.cfg.half_life}
-    return [by_bounds.get(tuple(t.bounds.tolist()), t) for t in fresh] or ()
+    kept = [by_bounds.get(tuple(t.bounds.tolist()), t) for t in fresh]
+    if exact and (len(old) != len(fresh) or any(a is b for a, b in zip(kept, fresh,
+                                                                       strict=True))):
+        raise IncompatibleError("threshold_counts", [t.bounds.tolist() for t in old],
+                                f"must hold the stream's bounds "
+                                f"{[list(b) for _, b in st.threshold_at]}")
+    return kept or ()
 
 
 def check_estimators(st: StreamState, reg: Regression | None, mix: Mixture | None) -> None:
