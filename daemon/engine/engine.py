@@ -28,7 +28,7 @@ from sigmad.daemon.engine.snapshot import (
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
-from sigmad.estimators.model_tail import nominal_rate, tail_probability
+from sigmad.estimators.model_tail import nominal_rate, outlier_counts
 from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
 from sigmad.estimators.validation import screen_batch
 
@@ -879,9 +879,8 @@ class Engine:
             mx = series.mixture
             if series.regression is None and mx is not None and mx.warm:
                 # the fitted model's tail probability (model_tail): the nominal rate
-                p = tail_probability(mx, x)
-                for i, rate in enumerate(st.outlier_rates):
-                    series.outliers[i] += int(np.count_nonzero(p < rate))
+                for i, c in enumerate(outlier_counts(mx, x, st.outlier_rates)):
+                    series.outliers[i] += c
             else:
                 dist = self._distance(series, x)
                 for i, threshold in enumerate(st.cfg.outlier_sigmas):
