@@ -167,7 +167,7 @@ def test_series_state_round_trip_keeps_the_counts_and_refuses_damage():
     d = series_state(st.series[("api",)])
     again = restore_series(st, d)
     assert again.thresholds[0].to_dict() == st.series[("api",)].thresholds[0].to_dict()
-    d["threshold_counts"][0]["cumulative"] = [1.0]
+    d["threshold_counts"][0]["state"]["cumulative"] = [1.0]
     with pytest.raises(ValueError, match="cumulative"):
         restore_series(st, d)
 
@@ -240,7 +240,7 @@ def test_inspect_shows_the_counts_at_the_bounds():
     e.ingest(b"lat.api", encode({"ms": [50.0, 150.0, 400.0, 90.0]}), NOW)
     e.flush(NOW)
     cp = decode_checkpoint(encode_checkpoint(collect_columns(e), stream_definitions(e), NOW))
-    assert "at or below 100 300: 2 3 of 4" in describe_checkpoint(cp, "s.state")
+    assert "ms at or below 100 300: 2 3 of 4" in describe_checkpoint(cp, "s.state")
 
 
 def test_the_demos_latency_stream_is_no_longer_noisy_at_3_sigma():
@@ -276,3 +276,26 @@ def test_the_merge_tier_refuses_a_shard_of_other_bounds_rather_than_pool_zeros()
     with pytest.raises(ValueError, match="threshold_counts"):
         restore_series(e.streams[0], d, exact_thresholds=True)
     assert restore_series(e.streams[0], d).thresholds[0].total == 0.0   # a checkpoint: fresh
+
+
+TWIN = CONFIG.replace('thresholds = { bytes = [1000.0] }',
+                      'thresholds = { ms = [1000.0], bytes = [1000.0] }')
+
+
+def test_two_fields_with_equal_bounds_restore_their_own_counts():
+    e = engine(TWIN)
+    e.ingest(b"io", encode({"ms": [10.0, 2000.0, 3000.0], "bytes": [5.0, 6.0, 7e3]}), NOW)
+    e.flush(NOW)
+    fresh = checkpoint_round_trip(e, TWIN)
+    ms, size = fresh.streams[1].series[()].thresholds
+    assert ms is not size
+    assert ms.cumulative.tolist() == [1.0, 3.0] and size.cumulative.tolist() == [2.0, 3.0]
+
+
+def test_a_field_that_gains_thresholds_keeps_the_others_counts():
+    e = engine()
+    e.ingest(b"io", encode({"ms": [10.0, 2000.0], "bytes": [5.0, 6e3]}), NOW)
+    e.flush(NOW)
+    fresh = checkpoint_round_trip(e, TWIN)
+    ms, size = fresh.streams[1].series[()].thresholds
+    assert ms.total == 0.0 and size.cumulative.tolist() == [1.0, 2.0]

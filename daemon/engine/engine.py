@@ -195,7 +195,7 @@ def series_state(s: Series) -> dict:
         "mixture": None if s.mixture is None else s.mixture.to_dict(),
     }
     if s.thresholds:   # absent for streams without thresholds, as before they existed
-        d["threshold_counts"] = [th.to_dict() for th in s.thresholds]
+        d["threshold_counts"] = thresholds_state(s)
     return d
 
 
@@ -246,23 +246,41 @@ def restore_series(st: StreamState, d: dict, exact_thresholds: bool = False) -> 
     return s
 
 
+def thresholds_state(s: Series) -> list[dict]:
+    """A series' Thresholds as saved: one {"field", "state"} map per field that has them."""
+    fields = s.stream.fields
+    return [{"field": fields[i], "state": th.to_dict()}
+            for (i, _), th in zip(s.stream.threshold_at, s.thresholds, strict=True)]
+
+
 def restore_thresholds(st: StreamState, saved: list | None,
                        exact: bool = False) -> list[Thresholds] | tuple:
-    """The series' Thresholds from their saved forms: kept (counters resume) when the
-    bounds and half-life are the stream's now, fresh otherwise or when absent (an
-    older checkpoint); with ``exact``, anything but the stream's own bounds is an
-    IncompatibleError. IncompatibleError for a malformed state. O(fields k)."""
-    fresh = st.new_thresholds()
+    """The series' Thresholds from ``thresholds_state``: a field's counts are kept
+    (counters resume) when its bounds and half-life are the stream's now, fresh
+    otherwise or when absent (an older checkpoint); with ``exact``, anything but the
+    stream's own bounds for every field is an IncompatibleError, and so is a
+    malformed state. O(fields k)."""
     if saved is not None and not isinstance(saved, list):
         raise IncompatibleError("threshold_counts", type(saved).__name__, "must be a list")
-    old = [Thresholds.from_dict(d) for d in saved or ()]
-    by_bounds = {tuple(t.bounds.tolist()): t for t in old if t.half_life == st.cfg.half_life}
-    kept = [by_bounds.get(tuple(t.bounds.tolist()), t) for t in fresh]
-    if exact and (len(old) != len(fresh) or any(a is b for a, b in zip(kept, fresh,
-                                                                       strict=True))):
-        raise IncompatibleError("threshold_counts", [t.bounds.tolist() for t in old],
-                                f"must hold the stream's bounds "
-                                f"{[list(b) for _, b in st.threshold_at]}")
+    old = {}
+    for d in saved or ():
+        if not (isinstance(d, dict) and isinstance(d.get("field"), str)):
+            raise IncompatibleError("threshold_counts", type(d).__name__,
+                                    'must hold {"field", "state"} maps')
+        old[d["field"]] = Thresholds.from_dict(d.get("state"))
+    kept = []
+    for (i, bounds), t in zip(st.threshold_at, st.new_thresholds(), strict=True):
+        o = old.pop(st.fields[i], None)
+        same = o is not None and o.half_life == st.cfg.half_life \
+            and tuple(o.bounds.tolist()) == bounds
+        if exact and not same:
+            raise IncompatibleError(f"threshold_counts.{st.fields[i]}",
+                                    None if o is None else o.bounds.tolist(),
+                                    f"must hold the stream's bounds {list(bounds)}")
+        kept.append(o if same else t)
+    if exact and old:
+        raise IncompatibleError("threshold_counts", sorted(old),
+                                "names fields without thresholds in this stream")
     return kept or ()
 
 

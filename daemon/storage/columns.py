@@ -20,6 +20,7 @@ from sigmad.daemon.engine.engine import (
     StreamState,
     check_estimators,
     restore_thresholds,
+    thresholds_state,
     view_of,
 )
 from sigmad.daemon.engine.snapshot import SeriesView
@@ -45,7 +46,7 @@ class StreamColumns(NamedTuple):
     moments: MomentsColumns
     regression: list | None               # Regression.to_dict per series, when configured
     mixture: list | None                  # Mixture.to_dict per series, when configured
-    # per series, a list of Thresholds.to_dict (one per field with thresholds); None in
+    # per series, engine.thresholds_state (a map per field with thresholds); None in
     # checkpoints written before thresholds existed
     threshold_counts: list | None = None
 
@@ -80,7 +81,7 @@ def collect(st: StreamState) -> StreamColumns:
         MomentsColumns.of(_get("moments", series), st.dim, cfg.half_life),
         None if cfg.regression is None else [s.regression.to_dict() for s in series],
         None if cfg.mixture is None else [s.mixture.to_dict() for s in series],
-        [[th.to_dict() for th in s.thresholds] for s in series] if st.threshold_at else None)
+        [thresholds_state(s) for s in series] if st.threshold_at else None)
 
 
 def pack(c: StreamColumns) -> dict:
