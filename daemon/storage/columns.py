@@ -192,6 +192,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     regs = c.regression or [None] * c.n
     mixes = c.mixture or [None] * c.n
     counts = c.threshold_counts or [None] * c.n
+    levels = bool(st.threshold_at)
     out, dropped = [], []
     rows = zip(c.labels, c.moments.states(), c.observations.tolist(), c.version.tolist(),
                c.last_update.tolist(), regs, mixes, counts, strict=True)
@@ -200,14 +201,15 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
             reg = None if reg is None else Regression.from_dict(reg)
             mix = None if mix is None else Mixture.from_dict(mix)
             check_estimators(st, reg, mix)
-            ths = restore_thresholds(st, tc)
+            ths = restore_thresholds(st, tc) if levels else ()
         except IncompatibleError as exc:
             dropped.append((c.where(i), str(exc)))
             continue
         s = Series(st, labels, m, reg, mix,   # positional: keywords cost here
                    outliers[i] if keep_outliers else [0] * width, obs, version, last,
                    (name, tuple(zip(label_names, labels, strict=True))))
-        s.thresholds = ths
+        if ths:
+            s.thresholds = ths
         out.append(s)
     return out, dropped
 
