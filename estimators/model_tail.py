@@ -24,9 +24,10 @@ import numpy as np
 from .mixture import Mixture
 from .mixture_cdf import normal_mixture_cdf
 
-__all__ = ["chi2_survival", "nominal_rate", "tail_probability"]
+__all__ = ["chi2_survival", "erfc", "nominal_rate", "outlier_counts", "tail_probability"]
 
 _ONE, _ZERO = np.ones(1), np.zeros(1)
+_SQRT2 = math.sqrt(2.0)
 
 
 def nominal_rate(k: float) -> float:
@@ -38,6 +39,39 @@ def nominal_rate(k: float) -> float:
     0.0027
     """
     return math.erfc(k / math.sqrt(2.0))
+
+
+def erfc(z: np.ndarray) -> np.ndarray:
+    """The complementary error function of z >= 0, vectorised, to a relative error
+    below 1.2e-7 (numpy has none; ``math.erfc`` one value at a time costs ~30x more
+    on a batch).
+
+    Notes
+    -----
+    The Chebyshev fit of Press, Teukolsky, Vetterling & Flannery, Numerical Recipes
+    (2nd ed., 1992, section 6.2, ``erfcc``): with t = 1 / (1 + z/2),
+    erfc(z) = t exp(-z**2 + P(t)) for a polynomial P of degree 9. O(n).
+
+    Examples
+    --------
+    >>> float(erfc(np.array(3.0) / np.sqrt(2.0)).round(7))   # 2 Phi(-3)
+    0.0026998
+    """
+    shape = np.shape(z)
+    z = np.atleast_1d(np.asarray(z, dtype=np.float64))
+    t = 0.5 * z
+    t += 1.0
+    np.reciprocal(t, out=t)
+    poly = t * 0.17087277
+    for c in (-0.82215223, 1.48851587, -1.13520398, 0.27886807, -0.18628806, 0.09678418,
+              0.37409196, 1.00002368):
+        poly += c
+        poly *= t
+    poly -= 1.26551223
+    poly -= z * z
+    np.exp(poly, out=poly)
+    poly *= t
+    return poly.reshape(shape)
 
 
 def chi2_survival(y: object, d: int) -> np.ndarray:
@@ -78,6 +112,35 @@ def chi2_survival(y: object, d: int) -> np.ndarray:
     return total
 
 
+def outlier_counts(mixture: Mixture, x: np.ndarray, rates: tuple[float, ...]) -> list[int]:
+    """How many rows of x have a tail probability below each rate, under a warm mixture.
+
+    For one field this is the count outside [Q(rate/2), Q(1 - rate/2)], Q the mixture's
+    quantile function (F is continuous and increasing, so p < rate exactly there):
+    two quantile inversions per rate, then comparisons, O(n + rates K) instead of n K
+    tail evaluations. For d > 1, ``tail_probability`` < rate. An unwarmed mixture
+    counts nothing.
+
+    Examples
+    --------
+    >>> m = Mixture(1, warmup=200, seed=1)
+    >>> m.update(np.random.default_rng(0).normal(size=400))
+    >>> outlier_counts(m, np.array([[0.0], [4.0], [-9.0]]), (nominal_rate(3.0),))
+    [2]
+    """
+    if not mixture.warm or not rates:
+        return [0] * len(rates)
+    if x.shape[1] > 1:
+        p = tail_probability(mixture, x)
+        return [int(np.count_nonzero(p < r)) for r in rates]
+    v = x[:, 0]
+    out = []
+    for r in rates:
+        lo, hi = (float(q) for q in mixture.quantile([0.5 * r, 1.0 - 0.5 * r]))
+        out.append(int(np.count_nonzero((v < lo) | (v > hi))))
+    return out
+
+
 def tail_probability(mixture: Mixture, x: np.ndarray) -> np.ndarray:
     """Each row's tail probability under a warm mixture (see the module notes).
 
@@ -92,7 +155,8 @@ def tail_probability(mixture: Mixture, x: np.ndarray) -> np.ndarray:
     Returns
     -------
     ndarray (n,)
-        O(n K) ``erfc`` calls for d = 1, O(n K d**2) otherwise.
+        O(n K) vectorised for d = 1 (``erfc``: relative error below 1.2e-7), O(n K d**2)
+        otherwise.
 
     Examples
     --------
@@ -106,9 +170,25 @@ def tail_probability(mixture: Mixture, x: np.ndarray) -> np.ndarray:
     if not mixture.warm:
         return np.full(n, np.nan)
     if d == 1:
-        f = np.asarray(mixture.cdf(x[:, 0]), dtype=np.float64)
-        p = 2.0 * np.minimum(f, 1.0 - f)
-        return np.where(x[:, 0] > 0.0, p, 0.0) if mixture.log else p
+        v = x[:, 0]
+        bad = v <= 0.0 if mixture.log else np.zeros(n, bool)
+        y = np.log(np.where(bad, 1.0, v)) if mixture.log else v
+        w, mu, sd = mixture.weights, mixture.means[:, 0], mixture.stddevs[:, 0]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = (y[:, None] - mu) * (1.0 / (sd * _SQRT2))
+        # a component's near tail is erfc(|z|)/2 and its far side 1 minus that, so
+        # F = sum_{z>=0} w + sum s w erfc(|z|)/2 with s = +1 below the mean, -1 above,
+        # and S likewise: a small F or S is a sum of small terms and keeps its digits
+        neg = z < 0.0
+        half = erfc(np.abs(z))
+        half *= 0.5
+        signed = np.where(neg, half, -half) @ w
+        lower = (~neg) @ w + signed
+        upper = neg @ w - signed
+        p = np.minimum(lower, upper)
+        p *= 2.0
+        p[bad] = 0.0
+        return p
     bad = (x <= 0.0).any(axis=1) if mixture.log else np.zeros(n, bool)
     y = np.log(np.where(bad[:, None], 1.0, x)) if mixture.log else x
     r = mixture.responsibilities(x)

@@ -21,13 +21,12 @@ import numpy as np
 
 from .errors import IncompatibleError
 from .forgetting import HalfLife, age_to, take_batch
-from .mixture_cdf import normal_mixture_cdf
 from .validation import check_batch, check_saved
 
 __all__ = ["Thresholds", "mixture_exceedance", "normal_exceedance"]
 
-_ONE = np.ones(1)
-_ZERO = np.zeros(1)
+_SQRT2 = math.sqrt(2.0)
+_BLOCK = 32768   # rows per block of comparisons: (k + 1) x 32768 bytes of mask
 
 
 def _check_bounds(bounds: object) -> np.ndarray:
@@ -59,7 +58,7 @@ class Thresholds:
       = sum_i w_i (the total), never decayed; ``value_sum`` = sum_i w_i x_i;
     - ``observed_share[j]`` = sum_i w_i f_i [x_i > b_j] / sum_i w_i f_i.
 
-    One ``searchsorted`` and two weighted ``bincount`` calls per batch: O(n log k).
+    One (k, n) comparison and one or two matrix-vector products per batch: O(n k).
     ``merge`` adds the counters and pools the decayed sums at the later clock,
     exactly as if one state had seen both streams.
 
@@ -90,7 +89,7 @@ class Thresholds:
 
     # ------------------------------------------------------------------ updates
     def update(self, x: object, weights: object = None, times: object = None) -> None:
-        """Fold in a batch of n values; a rejected batch changes nothing. O(n log k)."""
+        """Fold in a batch of n values; a rejected batch changes nothing. O(n k)."""
         b = check_batch(x, 1, weights, times)
         self._fold(b.x[:, 0], b.weights, b.times)
 
@@ -99,20 +98,28 @@ class Thresholds:
         n = x.shape[0]
         if n == 0:
             return
-        k = self.bounds.size
         v = take_batch(self, n, t, w)
-        # bucket j holds b_{j-1} < x <= b_j: searchsorted "left" counts the bounds below x
-        idx = np.searchsorted(self.bounds, x)
-        counts = np.bincount(idx, w, k + 1)
-        self._cumulative += np.cumsum(counts)
+        # "x <= b_j" for the bounds and +inf (the total): k + 1 comparisons and a product
+        # beat a binary search per row for small k; blocks keep the masks in cache
+        ext = np.append(self.bounds, np.inf)
+        k1 = ext.size
+        counts = np.zeros(k1)
+        decayed = counts if v is w else np.zeros(k1)
+        if w is None and v is None:     # unit weights, no decay: counts (a popcount each)
+            counts[:-1] = [np.count_nonzero(x <= b) for b in self.bounds.tolist()]
+            counts[-1] = n
+        for i in range(0, n, _BLOCK) if v is not None else ():
+            le = np.greater_equal.outer(ext, x[i:i + _BLOCK])
+            if w is None:
+                counts += np.count_nonzero(le, axis=1)
+            else:
+                counts += le @ w[i:i + _BLOCK]
+            if v is not w:
+                decayed += le @ v[i:i + _BLOCK]
+        self._cumulative += counts
         self.value_sum += float(x.sum() if w is None else w @ x)
-        if v is w:
-            decayed, wb = counts, float(counts.sum())
-        else:
-            decayed = np.bincount(idx, v, k + 1)
-            wb = float(decayed.sum())
-        self.W += wb
-        self._above += wb - np.cumsum(decayed[:k])
+        self.W += decayed[-1]
+        self._above += decayed[-1] - decayed[:-1]
 
     def _age(self, g: float) -> None:
         """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol). A
@@ -177,7 +184,7 @@ class Thresholds:
         """Decayed weighted share of values above each bound (k,); NaN while empty."""
         if not self.W > 0.0:
             return np.full(self.bounds.size, np.nan)
-        return np.clip(self._above / self.W, 0.0, 1.0)
+        return np.minimum(np.maximum(self._above / self.W, 0.0), 1.0)
 
     # ------------------------------------------------------------- persistence
     def to_dict(self) -> dict:
@@ -239,10 +246,7 @@ def normal_exceedance(bounds: object, mean: float, sd: float) -> np.ndarray:
     >>> normal_exceedance([0.0, 1.959963984540054], 0.0, 1.0).round(6).tolist()
     [0.5, 0.025]
     """
-    b = np.asarray(bounds, dtype=np.float64)
-    if not (math.isfinite(mean) and math.isfinite(sd) and sd >= 0.0):
-        return np.full(b.shape, np.nan)
-    return normal_mixture_cdf(b, _ONE, np.array([mean]), np.array([sd]), upper=True)
+    return _upper(bounds, (1.0,), (mean,), (sd,))
 
 
 def mixture_exceedance(bounds: object, weights: np.ndarray, means: np.ndarray,
@@ -273,9 +277,27 @@ def mixture_exceedance(bounds: object, weights: np.ndarray, means: np.ndarray,
     ...                    log=True).tolist()
     [0.5, 1.0]
     """
-    b = np.asarray(bounds, dtype=np.float64)
-    if not log:
-        return normal_mixture_cdf(b, weights, means, sds, upper=True)
-    positive = b > 0.0
-    lb = np.log(np.where(positive, b, 1.0))
-    return np.where(positive, normal_mixture_cdf(lb, weights, means, sds, upper=True), 1.0)
+    b = np.asarray(bounds, dtype=np.float64).tolist()
+    if log:
+        b = [math.log(v) if v > 0.0 else -math.inf for v in b]
+    w, m, sd = (np.asarray(a, dtype=np.float64).tolist() for a in (weights, means, sds))
+    return _upper(b, w, m, sd)
+
+
+def _upper(bounds: object, weights, means, sds) -> np.ndarray:
+    """sum_k w_k P(N(m_k, s_k**2) > b) per bound, with ``math.erfc`` on plain floats:
+    for the few bounds and components of a read-out, ten times cheaper than arrays.
+    s_k = 0 is a point mass; a NaN parameter gives NaN. O(k K)."""
+    out = []
+    parts = list(zip(weights, means, sds, strict=True))
+    for b in np.asarray(bounds, dtype=np.float64).tolist():
+        total = 0.0
+        for wk, mk, sk in parts:
+            if sk > 0.0:
+                total += wk * 0.5 * math.erfc((b - mk) / (sk * _SQRT2))
+            elif sk == 0.0:
+                total += wk if b < mk else 0.0
+            else:
+                total = math.nan
+        out.append(total)
+    return np.array(out)

@@ -70,14 +70,15 @@ class Prometheus:
     shipped recording rules every second. Always ``stop()`` it (a context manager).
     """
 
-    def __init__(self, binary: str, tmp: Path, targets: list[str], job: str = "sigmad-shards"):
+    def __init__(self, binary: str, tmp: Path, targets: list[str], job: str = "sigmad-shards",
+                 rules: tuple[Path, ...] = (RULES,)):
         self.port = free_port()
         self.dir = tmp / "prometheus"
         self.dir.mkdir()
         cfg = self.dir / "prometheus.yml"
         cfg.write_text(json.dumps({   # JSON is YAML
             "global": {"scrape_interval": "1s", "evaluation_interval": "1s"},
-            "rule_files": [str(RULES)],
+            "rule_files": [str(r) for r in rules],
             "scrape_configs": [{"job_name": job, "static_configs": [{"targets": targets}]}],
         }))
         self.log = self.dir / "prometheus.log"

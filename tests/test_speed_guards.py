@@ -70,3 +70,13 @@ def test_json_readings_over_mqtt_keep_half_the_target_share_of_a_bare_paho_subsc
     need_binary("mosquitto")
     row = bench_mqtt_json(3_000)               # target 0.5 (best of 2 interleaved runs each)
     assert row.met is not None and row.ratio >= 0.25, row.cells()
+
+
+def test_three_thresholds_at_most_double_the_engines_batch_time():
+    # today about 1.3x the engine's CPU time alone (1.1x through the daemon); a guard
+    # at 2.0 flags a collapse, not a miss by a little
+    frames = bench._batches(300, 1000, 5)[0]
+    three = bench._SCALAR + "thresholds = [8.0, 10.0, 14.0]\n"
+    plain = min(bench._engine_seconds(bench._SCALAR, frames, 10) for _ in range(3))
+    with_three = min(bench._engine_seconds(three, frames, 10) for _ in range(3))
+    assert with_three / plain <= 2.0, (with_three, plain)

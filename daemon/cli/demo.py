@@ -45,6 +45,7 @@ half_life = "30s"
 quantiles = [0.5, 0.9, 0.99]
 outlier_sigmas = [3.0]
 mixture = {{ components = 2, log = true, warmup = 300 }}
+thresholds = [50.0, 100.0]
 
 [[stream]]
 name = "greenhouse"

@@ -238,7 +238,7 @@ class Merger:
             if known is not None and known.version == d.get("version"):
                 return known
         try:
-            return restore_series(st, d)
+            return restore_series(st, d, exact_thresholds=True)
         except IncompatibleError as exc:
             self.rejected["state_incompatible"] += 1
             log.warning("refused a %s series state: %s", st.name, exc)

@@ -15,7 +15,14 @@ from itertools import compress
 
 import numpy as np
 from sigmad.daemon.config.load import Config, StreamConfig
-from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
+from sigmad.daemon.engine.snapshot import (
+    Health,
+    LevelsView,
+    MixtureView,
+    RegressionView,
+    SeriesView,
+    Snapshot,
+)
 from sigmad.daemon.ingest.layouts import LayoutTable, Readout, learn, runs
 from sigmad.daemon.ingest.wire import Reader, Single, WireError
 from sigmad.estimators import (
@@ -27,7 +34,7 @@ from sigmad.estimators import (
     Returns,
     Volatility,
 )
-from sigmad.estimators.model_tail import nominal_rate, tail_probability
+from sigmad.estimators.model_tail import nominal_rate, outlier_counts
 from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
 from sigmad.estimators.validation import limit_batch, screen_batch
 
@@ -302,7 +309,7 @@ def series_state(s: Series) -> dict:
         **extra_state(s),
     }
     if s.thresholds:   # absent for streams without thresholds, as before they existed
-        d["threshold_counts"] = [th.to_dict() for th in s.thresholds]
+        d["threshold_counts"] = thresholds_state(s)
     return d
 
 
@@ -351,12 +358,14 @@ def restore_extra(s: Series, d: dict) -> None:
         s.volatility = v
 
 
-def restore_series(st: StreamState, d: dict) -> Series:
+def restore_series(st: StreamState, d: dict, exact_thresholds: bool = False) -> Series:
     """Rebuild a series of stream ``st`` from ``series_state``.
 
     Raises IncompatibleError when the stream's definition changed incompatibly
     (fields, estimator kinds, label count, outlier thresholds) or the state is
-    malformed; the caller drops that series and keeps the rest.
+    malformed; the caller drops that series and keeps the rest. Counts at thresholds
+    restart when the bounds changed, unless ``exact_thresholds`` (the merge tier: a
+    shard of other bounds is refused, not pooled as zeros).
     """
     cfg = st.cfg
     try:
@@ -385,7 +394,7 @@ def restore_series(st: StreamState, d: dict) -> Series:
                                     f"must hold one count per threshold {d['thresholds']}")
         if list(d["thresholds"]) == list(cfg.outlier_sigmas):
             s.outliers = outliers
-        s.thresholds = restore_thresholds(st, d.get("threshold_counts"))
+        s.thresholds = restore_thresholds(st, d.get("threshold_counts"), exact_thresholds)
         s.observations = int(d["observations"])
         s.version = int(d["version"])
         s.last_update = float(d["last_update"])
@@ -397,18 +406,42 @@ def restore_series(st: StreamState, d: dict) -> Series:
     return s
 
 
-def restore_thresholds(st: StreamState, saved: list | None) -> list[Thresholds] | tuple:
-    """The series' Thresholds from their saved forms: kept (counters resume) when the
-    bounds and half-life are the stream's now, fresh otherwise or when absent (an
-    older checkpoint). IncompatibleError for a malformed state. O(fields k)."""
-    fresh = st.new_thresholds()
-    if not saved:
-        return fresh
-    if not isinstance(saved, list):
+def thresholds_state(s: Series) -> list[dict]:
+    """A series' Thresholds as saved: one {"field", "state"} map per field that has them."""
+    fields = s.stream.fields
+    return [{"field": fields[i], "state": th.to_dict()}
+            for (i, _), th in zip(s.stream.threshold_at, s.thresholds, strict=True)]
+
+
+def restore_thresholds(st: StreamState, saved: list | None,
+                       exact: bool = False) -> list[Thresholds] | tuple:
+    """The series' Thresholds from ``thresholds_state``: a field's counts are kept
+    (counters resume) when its bounds and half-life are the stream's now, fresh
+    otherwise or when absent (an older checkpoint); with ``exact``, anything but the
+    stream's own bounds for every field is an IncompatibleError, and so is a
+    malformed state. O(fields k)."""
+    if saved is not None and not isinstance(saved, list):
         raise IncompatibleError("threshold_counts", type(saved).__name__, "must be a list")
-    old = [Thresholds.from_dict(d) for d in saved]
-    by_bounds = {tuple(t.bounds.tolist()): t for t in old if t.half_life == st.cfg.half_life}
-    return [by_bounds.get(tuple(t.bounds.tolist()), t) for t in fresh] or ()
+    old = {}
+    for d in saved or ():
+        if not (isinstance(d, dict) and isinstance(d.get("field"), str)):
+            raise IncompatibleError("threshold_counts", type(d).__name__,
+                                    'must hold {"field", "state"} maps')
+        old[d["field"]] = Thresholds.from_dict(d.get("state"))
+    kept = []
+    for (i, bounds), t in zip(st.threshold_at, st.new_thresholds(), strict=True):
+        o = old.pop(st.fields[i], None)
+        same = o is not None and o.half_life == st.cfg.half_life \
+            and tuple(o.bounds.tolist()) == bounds
+        if exact and not same:
+            raise IncompatibleError(f"threshold_counts.{st.fields[i]}",
+                                    None if o is None else o.bounds.tolist(),
+                                    f"must hold the stream's bounds {list(bounds)}")
+        kept.append(o if same else t)
+    if exact and old:
+        raise IncompatibleError("threshold_counts", sorted(old),
+                                "names fields without thresholds in this stream")
+    return kept or ()
 
 
 def check_estimators(st: StreamState, reg: Regression | None, mix: Mixture | None) -> None:
@@ -487,34 +520,27 @@ def view_of(s: Series) -> SeriesView:
         cfg.half_life, m.weight_sum, m.weight_sq_sum, m.effective_samples, means,
         variances, covariance, correlation, st.quantile_at, quantiles,
         cfg.outlier_sigmas, tuple(s.outliers), mixture, regression, _floats(m.scatter),
-        *(_threshold_views(s, means, variances) if s.thresholds else _NO_THRESHOLDS),
-        volatility)
+        _levels(s, means, variances) if s.thresholds else None, volatility)
 
 
-#: the threshold fields of a SeriesView without thresholds (see ``_threshold_views``)
-_NO_THRESHOLDS = ((), (), (), (), ())
-
-
-def _threshold_views(s: Series, means: tuple, variances: tuple) -> tuple:
-    """(threshold_at, buckets, value_sums, model shares, observed shares) of a series:
-    the model's share from the warm mixture (its field's marginal), else the normal
-    model of the moments. O(fields k K)."""
-    st, mx = s.stream, s.mixture
+def _levels(s: Series, means: tuple, variances: tuple) -> LevelsView:
+    """The counts and shares at a series' thresholds: the model's share from the warm
+    mixture (its field's marginal), else the normal model of the moments. O(fields k K)."""
+    st, mx, ths = s.stream, s.mixture, s.thresholds
     warm = mx is not None and mx.warm
     if warm:
         pi, mu, sd = mx.weights, mx.means, mx.stddevs
     model = []
     for i, b in st.threshold_at:
         if warm:
-            model.append(_floats(mixture_exceedance(b, pi, mu[:, i], sd[:, i], mx.log)))
+            p = mixture_exceedance(b, pi, mu[:, i], sd[:, i], mx.log)
         else:
             v = variances[i]
-            model.append(_floats(normal_exceedance(b, means[i], math.sqrt(v) if v >= 0.0
-                                                   else math.nan)))
-    ths = s.thresholds
-    return (st.threshold_at, tuple(_floats(th._cumulative) for th in ths),
-            tuple(th.value_sum for th in ths), tuple(model),
-            tuple(_floats(th.observed_share) for th in ths))
+            p = normal_exceedance(b, means[i], math.sqrt(v) if v >= 0.0 else math.nan)
+        model.append(tuple(p.tolist()))
+    return LevelsView(st.threshold_at, tuple(tuple(th._cumulative.tolist()) for th in ths),
+                      tuple(th.value_sum for th in ths), tuple(model),
+                      tuple(tuple(th.observed_share.tolist()) for th in ths))
 
 
 class Engine:
@@ -1022,9 +1048,8 @@ class Engine:
             mx = series.mixture
             if series.regression is None and mx is not None and mx.warm:
                 # the fitted model's tail probability (model_tail): the nominal rate
-                p = tail_probability(mx, x)
-                for i, rate in enumerate(st.outlier_rates):
-                    series.outliers[i] += int(np.count_nonzero(p < rate))
+                for i, c in enumerate(outlier_counts(mx, x, st.outlier_rates)):
+                    series.outliers[i] += c
             else:
                 dist = self._distance(series, x)
                 for i, threshold in enumerate(st.cfg.outlier_sigmas):

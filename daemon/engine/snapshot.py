@@ -46,6 +46,17 @@ class RegressionView:
 
 
 @dataclass(frozen=True, slots=True)
+class LevelsView:
+    """A series' counts at its stream's thresholds, per field that has them."""
+
+    at: tuple[tuple[int, tuple[float, ...]], ...]   # (field index, bounds), per stream
+    buckets: tuple[tuple[float, ...], ...]    # undecayed weighted counts at each bound, total
+    value_sums: tuple[float, ...]             # undecayed weighted sums of the values
+    exceedance: tuple[tuple[float, ...], ...]           # the model's decayed share above
+    exceedance_observed: tuple[tuple[float, ...], ...]  # the data's decayed share above
+
+
+@dataclass(frozen=True, slots=True)
 class SeriesView:
     stream: str
     labels: tuple[tuple[str, str], ...]       # template labels, in template order
@@ -71,15 +82,7 @@ class SeriesView:
     mixture: MixtureView | None = None
     regression: RegressionView | None = None
     scatter: tuple[float, ...] = ()           # centred Σw(x-μ)² per field, as of ``clock``
-    # thresholds (per stream, shared): (field index, bounds) of each field that has them;
-    # then per such field: cumulative undecayed weighted counts at the bounds and the
-    # total (k + 1), the weighted sum of values, the model's and the data's decayed
-    # shares above each bound (k)
-    threshold_at: tuple[tuple[int, tuple[float, ...]], ...] = ()
-    buckets: tuple[tuple[float, ...], ...] = ()
-    value_sums: tuple[float, ...] = ()
-    exceedance: tuple[tuple[float, ...], ...] = ()
-    exceedance_observed: tuple[tuple[float, ...], ...] = ()
+    levels: LevelsView | None = None          # with ``thresholds``: one slot (idle memory)
     volatility: tuple[tuple[str, float], ...] = ()   # (return field, per volatility_unit)
 
     @property
@@ -100,6 +103,26 @@ class SeriesView:
     def outliers(self) -> tuple[tuple[float, int], ...]:
         """(threshold, count) pairs."""
         return tuple(zip(self.thresholds, self.outlier_counts, strict=True))
+
+    @property
+    def threshold_at(self) -> tuple:
+        return () if self.levels is None else self.levels.at
+
+    @property
+    def buckets(self) -> tuple:
+        return () if self.levels is None else self.levels.buckets
+
+    @property
+    def value_sums(self) -> tuple:
+        return () if self.levels is None else self.levels.value_sums
+
+    @property
+    def exceedance(self) -> tuple:
+        return () if self.levels is None else self.levels.exceedance
+
+    @property
+    def exceedance_observed(self) -> tuple:
+        return () if self.levels is None else self.levels.exceedance_observed
 
     def weights_at(self, t: float) -> tuple[float, float]:
         """(W, W2) aged to event time t, never backwards. The mean, the variances and

@@ -502,8 +502,8 @@ def _describe_series(d: dict, corrections: dict) -> list[str]:
             lines.append(f"    mixture weights {_fmt(x.weights.tolist())}" if x.warm
                          else "    mixture warming up")
         for t in d.get("threshold_counts") or []:
-            th = Thresholds.from_dict(t)
-            lines.append(f"    at or below {_fmt(th.bounds.tolist())}: "
+            th = Thresholds.from_dict(t.get("state") if isinstance(t, dict) else t)
+            lines.append(f"    {t.get('field')} at or below {_fmt(th.bounds.tolist())}: "
                          f"{_fmt(th.cumulative[:-1].tolist())} of {th.total:.6g}")
     except (ValueError, ArithmeticError) as exc:   # IncompatibleError, LinAlgError among them
         lines.append(f"    unreadable estimator state ({exc})")

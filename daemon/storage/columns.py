@@ -22,6 +22,7 @@ from sigmad.daemon.engine.engine import (
     extra_state,
     restore_extra,
     restore_thresholds,
+    thresholds_state,
     view_of,
 )
 from sigmad.daemon.engine.snapshot import SeriesView
@@ -47,7 +48,7 @@ class StreamColumns(NamedTuple):
     moments: MomentsColumns
     regression: list | None               # Regression.to_dict per series, when configured
     mixture: list | None                  # Mixture.to_dict per series, when configured
-    # per series, a list of Thresholds.to_dict (one per field with thresholds); None in
+    # per series, engine.thresholds_state (a map per field with thresholds); None in
     # checkpoints written before thresholds existed
     threshold_counts: list | None = None
     extras: list | None = None            # engine.extra_state per series (transform or
@@ -84,7 +85,7 @@ def collect(st: StreamState) -> StreamColumns:
         MomentsColumns.of(_get("moments", series), st.dim, cfg.half_life),
         None if cfg.regression is None else [s.regression.to_dict() for s in series],
         None if cfg.mixture is None else [s.mixture.to_dict() for s in series],
-        [[th.to_dict() for th in s.thresholds] for s in series] if st.threshold_at else None,
+        [thresholds_state(s) for s in series] if st.threshold_at else None,
         None if cfg.transform is None and cfg.regression is None and not cfg.legs else
         [extra_state(s) for s in series])
 
@@ -202,6 +203,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     counts = c.threshold_counts or [None] * c.n
     # a checkpoint from before the stream had a transform: fresh transform states
     extra = c.extras or [{}] * c.n
+    levels = bool(st.threshold_at)
     out, dropped = [], []
     rows = zip(c.labels, c.moments.states(), c.observations.tolist(), c.version.tolist(),
                c.last_update.tolist(), regs, mixes, counts, extra, strict=True)
@@ -210,11 +212,12 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
             reg = None if reg is None else Regression.from_dict(reg)
             mix = None if mix is None else Mixture.from_dict(mix)
             check_estimators(st, reg, mix)
-            ths = restore_thresholds(st, tc)
+            ths = restore_thresholds(st, tc) if levels else ()
             s = Series(st, labels, m, reg, mix,   # positional: keywords cost here
                        outliers[i] if keep_outliers else [0] * width, obs, version, last,
                        (name, tuple(zip(label_names, labels, strict=True))))
-            s.thresholds = ths
+            if ths:
+                s.thresholds = ths
             if cfg.transform is not None or cfg.legs:
                 fresh = st.new_series(labels)
                 s.returns, s.volatility, s.legs = fresh.returns, fresh.volatility, fresh.legs
