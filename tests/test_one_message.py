@@ -357,3 +357,20 @@ def test_frames_are_read_as_the_readme_says(daemon, what, messages, rows, counts
         {r: float(counts.get(r, 0)) for r in REASONS}
     assert value(daemon.metrics(), "sigmad_observations_total", stream="s", k=key) == \
         seen + len(x) + rows
+
+
+# ------------------------------------------------------------------ log flooding
+def test_http_clients_that_reset_mid_response_write_no_log_lines(daemon):
+    # issue 15: 200 clients that reset while /metrics is sent printed 5,000 log lines
+    import socket
+
+    x = _feed(daemon, "resets", [], per_bad=400)    # a /metrics long enough to cut off
+    before = len(daemon.log.read_text().splitlines())
+    for _ in range(200):
+        c = socket.create_connection(("127.0.0.1", daemon.port))
+        c.sendall(b"GET /metrics HTTP/1.1\r\nHost: x\r\n\r\n")
+        c.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+        c.close()                                   # RST: the response is cut off
+    _assert_exact(daemon, "resets", x)              # and the server still answers
+    lines = daemon.log.read_text().splitlines()[before:]
+    assert lines == [], lines[:5]
