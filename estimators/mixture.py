@@ -395,6 +395,10 @@ class Mixture:
         # recent rows are all one value: then the data itself is constant
         if narrow.any() and self._recent.shape[0] and np.ptp(self._recent, axis=0).any():
             sick |= narrow
+        self._reseed(sick)
+
+    def _reseed(self, sick: np.ndarray) -> None:
+        """Re-seed the components marked ``sick`` (K,), as ``_reseed_collapsed`` says."""
         if not sick.any() or self._recent.shape[0] == 0:
             return
         for k in np.flatnonzero(sick):
@@ -435,6 +439,12 @@ class Mixture:
         # min_weight) or two overlap (Ueda et al.'s merge criterion, cosine of their
         # responsibility columns)
         gamma = _e_step(y, self._prepared())[1]
+        # a component that should hold 10 of the window's rows and holds none is
+        # stranded (left behind by a drift, or fitted to one absurd row): re-seed it
+        dead = (self._pi * n >= 10.0) & (gamma.sum(axis=0) < 1.0)
+        if dead.any():
+            self._reseed(dead)
+            return True
         norms = np.sqrt((gamma * gamma).sum(axis=0))
         with np.errstate(divide="ignore", invalid="ignore"):
             overlap = (gamma.T @ gamma) / np.outer(norms, norms)

@@ -569,3 +569,18 @@ def test_a_split_keeps_the_mean_and_covariance_of_the_component():
         pooled = half + 0.5 * (np.outer(m1 - mean, m1 - mean) + np.outer(m2 - mean, m2 - mean))
         np.testing.assert_allclose(pooled, c, rtol=1e-14, atol=1e-15)
         assert (np.linalg.eigvalsh(half) > 0).all()
+
+
+def test_one_absurd_row_into_a_warm_mixture_is_forgotten():
+    # Reference: scipy.stats.norm.ppf of N(0, 1), the stream before and after the row.
+    # The component that took the 1e100 row holds none of the recent rows while its
+    # weight says it should hold dozens: it is re-seeded (issue 16's glitch).
+    rng = np.random.default_rng(23)
+    mix = Mixture(2, half_life=HalfLife(2000, "observations"))
+    mix.update(rng.normal(0.0, 1.0, 1000))
+    mix.update([1e100])
+    for _ in range(400):
+        mix.update(rng.normal(0.0, 1.0, 100))
+    assert mix.quantile(0.5) == pytest.approx(0.0, abs=0.05)
+    assert mix.quantile(0.99) == pytest.approx(stats.norm.ppf(0.99), abs=0.05)
+    assert math.isfinite(mix.average_loglik)
