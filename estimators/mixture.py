@@ -20,7 +20,7 @@ _RESEED_WEIGHT = 0.5    # a re-seeded component starts with this share of 1/K
 _RESOLUTION = 2.0 ** -60  # a constant field's floor sd, relative to its value (_floor_for)
 _MOVE_EVERY = 64         # a split-and-merge check after this many windows of new rows,
 _MOVE_BACKOFF = 4        # doubled after each quiet check, up to 2**_MOVE_BACKOFF times
-_MOVE_ITER = 5           # EM iterations on the window for each side of the comparison
+_MOVE_ITER = 4           # EM iterations on the window for each side of the comparison
 _MOVE_GAIN = 0.002       # nats per window row a proposal must gain to be kept
 _MOVE_OVERLAP = 0.3      # responsibility overlap of two components that calls for a check
 _TINY_VARIANCE = 1e-100  # 1/floor times a squared difference (<= 4e200) stays finite
@@ -104,8 +104,8 @@ class Mixture:
     weight) or two overlap (cosine of their responsibilities above 0.3),
     split-and-merge proposals
     (``mixture_moves``: free the lightest component or merge the cheapest
-    Runnalls pair, split a wide heavy one along its principal axis) and the
-    current fit each get 5 batch EM iterations on the recent rows; the best
+    Runnalls pair, split the widest heavy one along its principal axis) and the
+    current fit each get 4 batch EM iterations on the recent rows; the best
     proposal replaces the fit when it explains those rows better by 0.002 nats
     a row, and counts in ``reseeds``. This frees a fit that followed a drifting
     stream into a local optimum (a stranded component, two sharing a mode, one
@@ -395,6 +395,10 @@ class Mixture:
         # recent rows are all one value: then the data itself is constant
         if narrow.any() and self._recent.shape[0] and np.ptp(self._recent, axis=0).any():
             sick |= narrow
+        self._reseed(sick)
+
+    def _reseed(self, sick: np.ndarray) -> None:
+        """Re-seed the components marked ``sick`` (K,), as ``_reseed_collapsed`` says."""
         if not sick.any() or self._recent.shape[0] == 0:
             return
         for k in np.flatnonzero(sick):
@@ -435,6 +439,12 @@ class Mixture:
         # min_weight) or two overlap (Ueda et al.'s merge criterion, cosine of their
         # responsibility columns)
         gamma = _e_step(y, self._prepared())[1]
+        # a component that should hold 10 of the window's rows and holds none is
+        # stranded (left behind by a drift, or fitted to one absurd row): re-seed it
+        dead = (self._pi * n >= 10.0) & (gamma.sum(axis=0) < 1.0)
+        if dead.any():
+            self._reseed(dead)
+            return True
         norms = np.sqrt((gamma * gamma).sum(axis=0))
         with np.errstate(divide="ignore", invalid="ignore"):
             overlap = (gamma.T @ gamma) / np.outer(norms, norms)

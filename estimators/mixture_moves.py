@@ -26,7 +26,7 @@ import numpy as np
 from .mixture_reduce import _cheapest_pair, merge_pair
 
 _SPLIT_OFFSET = 0.5    # each half moves this many sds of the split axis from the mean
-_SPLIT_CANDIDATES = 2  # components tried as the one to split, widest mass first
+_SPLIT_CANDIDATES = 1  # components tried as the one to split, widest mass first
 
 
 def split_component(w: float, mean: np.ndarray, cov: np.ndarray,
@@ -56,7 +56,7 @@ def proposals(pi: np.ndarray, mu: np.ndarray, cov: np.ndarray, floor: np.ndarray
 
     The freed component is the lightest one (dropped, its weight shared out) or,
     separately, the second of the cheapest Runnalls pair (merged into the first);
-    it then takes half of one of the ``_SPLIT_CANDIDATES`` components of largest
+    it then takes half of the ``_SPLIT_CANDIDATES`` other component(s) of largest
     weight times spread. Every proposal keeps the mixture's weights summing to 1.
     O(K**2 d**3)."""
     k = pi.shape[0]

@@ -569,3 +569,36 @@ def test_a_split_keeps_the_mean_and_covariance_of_the_component():
         pooled = half + 0.5 * (np.outer(m1 - mean, m1 - mean) + np.outer(m2 - mean, m2 - mean))
         np.testing.assert_allclose(pooled, c, rtol=1e-14, atol=1e-15)
         assert (np.linalg.eigvalsh(half) > 0).all()
+
+
+def test_one_absurd_row_into_a_warm_mixture_is_forgotten():
+    # Reference: scipy.stats.norm.ppf of N(0, 1), the stream before and after the row.
+    # The component that took the 1e100 row holds none of the recent rows while its
+    # weight says it should hold dozens: it is re-seeded (issue 16's glitch).
+    rng = np.random.default_rng(23)
+    mix = Mixture(2, half_life=HalfLife(2000, "observations"))
+    mix.update(rng.normal(0.0, 1.0, 1000))
+    mix.update([1e100])
+    for _ in range(400):
+        mix.update(rng.normal(0.0, 1.0, 100))
+    assert mix.quantile(0.5) == pytest.approx(0.0, abs=0.05)
+    assert mix.quantile(0.99) == pytest.approx(stats.norm.ppf(0.99), abs=0.05)
+    assert math.isfinite(mix.average_loglik)
+
+
+def test_daemon_counts_values_whose_squares_would_overflow_as_out_of_range():
+    # Reference: float64's largest value 1.797e308 (numpy.finfo): squares of 1e155 and
+    # beyond overflow; the daemon's bound (max_abs_value, at most 1e100) drops them.
+    from sigmad.daemon.config.load import parse_config
+    from sigmad.daemon.engine.engine import Engine
+    from sigmad.daemon.ingest.wire import encode
+    with np.errstate(over="ignore"):
+        assert np.isinf(np.float64(1e155) * np.float64(1e155))
+    e = Engine(parse_config(LIMITS_CONFIG.replace("limits = { ms = [0.0, 60000.0] }\n", "")))
+    e.ingest(b"lat.api", encode({"ms": [1e155, -1e200, 5.0, 1e101, 7.0],
+                                 "bytes": [1.0, 2.0, 3.0, 4.0, 5.0]}), 1.7e9)
+    e.flush(1.7e9)
+    assert e.rejected["out_of_range"] == 3
+    (state,) = e.export_state()
+    assert state["moments"]["count"] == 2
+    assert state["moments"]["mean"] == [6.0, 4.0]
