@@ -3,7 +3,10 @@ tests/fuzz_oracle.py): rejections by reason and series against numpy."""
 
 import logging
 
+import pytest
 from fuzz_oracle import run
+
+pytestmark = pytest.mark.slow   # a 100,000-message fuzz loop
 
 
 def test_100000_fuzzed_messages_end_as_the_readme_predicts():

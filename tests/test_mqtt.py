@@ -31,6 +31,8 @@ from sigmad.daemon.ingest.payloads import to_body
 from sigmad.daemon.ingest.topics import TopicError, TopicTemplate
 from sigmad.daemon.ingest.wire import REASONS, WireError, decode, encode
 
+pytestmark = pytest.mark.slow   # a real mosquitto broker and daemon subprocesses
+
 # --------------------------------------------------------------------------- a broker
 
 class Broker:

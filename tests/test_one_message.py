@@ -21,6 +21,8 @@ import pytest
 import zmq
 from harness import Sigmad, free_port, value
 
+pytestmark = pytest.mark.slow   # a real daemon subprocess fed hostile messages
+
 CONFIG = """
 [daemon]
 http = "{HTTP}"

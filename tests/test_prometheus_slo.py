@@ -10,9 +10,12 @@ import time
 from pathlib import Path
 
 import numpy as np
+import pytest
 from conftest import need_binary
 from fleet import Prometheus, fan_out, start_shards, stop_all, wait_total
 from sigmad.daemon.ingest.wire import encode
+
+pytestmark = pytest.mark.slow   # a real Prometheus
 
 SLO_RULES = Path(__file__).resolve().parent.parent / "configs" / "prometheus" \
     / "sigmad-slo.rules.yml"

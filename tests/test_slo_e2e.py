@@ -18,6 +18,8 @@ from conftest import need_binary, need_module
 from harness import Sigmad, free_port, scrape, value
 from sigmad.daemon.client import Producer
 
+pytestmark = pytest.mark.slow   # real daemon subprocesses and promtool
+
 CONFIG = """
 [daemon]
 http = "{HTTP}"

@@ -20,7 +20,10 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import pytest
 from conftest import need_binary
+
+pytestmark = pytest.mark.slow   # promtool
 
 ROOT = Path(__file__).resolve().parent.parent
 RULES = ROOT / "configs" / "prometheus" / "sigmad-slo.rules.yml"

@@ -15,6 +15,8 @@ import pytest
 import zmq.auth
 from harness import ROOT, free_port
 
+pytestmark = pytest.mark.slow   # daemon subprocesses that must fail to start
+
 START_LIMIT = 5.0   # seconds: the start-up rule of issue 14
 
 BASE = """
