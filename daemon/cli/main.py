@@ -80,7 +80,8 @@ def _cmd_validate(args: argparse.Namespace) -> int:
 def _cmd_send(args: argparse.Namespace) -> int:
     from sigmad.daemon.cli.send import send_stdin
 
-    return send_stdin(args.topic, args.connect, args.field, args.bind, args.socket)
+    return send_stdin(args.topic, args.connect, args.field, args.bind, args.socket,
+                      follow=args.follow, timeout=args.timeout)
 
 
 def _cmd_inspect(args: argparse.Namespace) -> int:
@@ -158,6 +159,13 @@ def build_parser() -> argparse.ArgumentParser:
     send.add_argument("--socket", choices=["push", "pub"], default="push")
     send.add_argument("--field", metavar="F",
                       help="field name for bare numbers (default: the stream's only field)")
+    send.add_argument("--follow", action="store_true",
+                      help="endless input (tail -f): send each line as it comes, skip and "
+                           "count unreadable lines (default: read and check all input "
+                           "first, send nothing if a line is unreadable)")
+    send.add_argument("--timeout", type=float, default=5.0, metavar="S",
+                      help="seconds to wait for the daemon (or, with --socket pub, a "
+                           "subscriber) before exiting 1 (default 5)")
     send.set_defaults(func=_cmd_send)
 
     bench = sub.add_parser("bench", help="end-to-end throughput on this machine, beside "
