@@ -94,7 +94,7 @@ class Producer:
         Messages queued before ``send`` waits (PUSH) or drops (PUB).
     linger : float
         Seconds ``close`` waits for queued messages to leave (then
-        :class:`DeliveryError`).
+        :class:`DeliveryError`); 0 drops them without a word.
     send_timeout : float, optional
         Seconds a PUSH ``send`` waits on a full queue before ``zmq.Again``;
         default wait for ever.
@@ -233,6 +233,9 @@ class Producer:
         self._close_monitor()
         if not self._own_context:
             self._socket.close()
+            return
+        if self.linger <= 0:   # asked not to wait: what is queued is dropped, unsaid
+            self._abandon()
             return
         self._socket.setsockopt(zmq.LINGER, -1)   # term() below returns when all have left
         self._socket.close()

@@ -19,6 +19,7 @@ import numpy as np
 from sigmad.daemon.config.load import Config, StreamConfig
 from sigmad.daemon.engine.snapshot import Health, MixtureView, RegressionView, SeriesView, Snapshot
 from sigmad.daemon.ingest.layouts import BatchLayout, LayoutTable, Readout, learn, learn_batch, runs
+from sigmad.daemon.ingest.topics import series_text
 from sigmad.daemon.ingest.wire import MAX_SOURCE, WireError, interpret, origin, single, unpack
 from sigmad.estimators import IncompatibleError, Mixture, Moments, Regression
 from sigmad.estimators.validation import screen_batch
@@ -51,7 +52,7 @@ def _floats(a) -> tuple[float, ...]:
 def _route_name(route: tuple) -> str:
     """How a (stream, labels) route, and so its series, is named in the rejection log."""
     st, labels = route
-    return f"{st.name}{dict(zip(st.cfg.topic.labels, labels, strict=True)) or ''}"
+    return series_text(st.name, st.cfg.topic.labels, labels)
 
 
 def _where(series: Series) -> str:

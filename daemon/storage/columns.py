@@ -17,6 +17,7 @@ from typing import NamedTuple
 import numpy as np
 from sigmad.daemon.engine.engine import Series, StreamState, check_estimators, view_of
 from sigmad.daemon.engine.snapshot import SeriesView
+from sigmad.daemon.ingest.topics import series_text
 from sigmad.estimators import IncompatibleError, Mixture, Regression
 from sigmad.estimators.moments_columns import MomentsColumns, blob, from_blob
 
@@ -44,9 +45,9 @@ class StreamColumns(NamedTuple):
     def n(self) -> int:
         return len(self.labels)
 
-    def where(self, i: int) -> str:
-        """How series i is named when it is dropped (as format 1 named it)."""
-        return f"{self.stream}{list(self.labels[i])}"
+    def where(self, i: int, names: tuple[str, ...] | None = None) -> str:
+        """How series i is named when it is dropped (``topics.series_text``)."""
+        return series_text(self.stream, names, tuple(self.labels[i]))
 
 
 def _get(name: str, series: list) -> list:
@@ -171,7 +172,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     try:
         _check_stream(st, c)
     except IncompatibleError as exc:
-        return [], [(c.where(i), str(exc)) for i in range(c.n)]
+        return [], [(c.where(i, st.cfg.topic.labels), str(exc)) for i in range(c.n)]
     cfg = st.cfg
     name, label_names = st.name, cfg.topic.labels
     keep_outliers = c.thresholds == list(cfg.outlier_sigmas)
@@ -188,7 +189,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
             mix = None if mix is None else Mixture.from_dict(mix)
             check_estimators(st, reg, mix)
         except IncompatibleError as exc:
-            dropped.append((c.where(i), str(exc)))
+            dropped.append((c.where(i, st.cfg.topic.labels), str(exc)))
             continue
         out.append(Series(st, labels, m, reg, mix,   # positional: keywords cost here
                           outliers[i] if keep_outliers else [0] * width, obs, version, last,
