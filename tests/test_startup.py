@@ -257,3 +257,28 @@ def test_inspect_into_a_closed_pipe_is_quiet(tmp_path):
                        shell=True, capture_output=True, text=True, env=env, timeout=60)
     assert r.stdout.count("\n") == 1
     assert "Error" not in r.stderr and "Traceback" not in r.stderr, r.stderr
+
+
+def test_validate_reports_every_problem_of_the_text(tmp_path):
+    path = tmp_path / "text.toml"
+    path.write_text("""
+[daemon]
+flush_every = 5
+[[source]]
+socket = "push"
+bind = "tcp://127.0.0.1:7410"
+[[stream]]
+name = "ok"
+topic = "{s}"
+fields = ["value"]
+[[stream]]
+name = "v"
+topic = "a.{s}"
+fields = ["value"]
+half_life = "ten minutes"
+""")
+    rc, err, _ = _sigmad("validate", str(path))
+    assert rc == 1
+    for key in ("daemon.flush_every", "source[0].socket", "stream[1].half_life"):
+        assert key in err, (key, err)
+    assert "3 problem(s)" in err

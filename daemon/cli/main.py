@@ -62,10 +62,24 @@ def serve(daemon, duration: float | None = None, tick=None) -> int:
 
 
 def _cmd_validate(args: argparse.Namespace) -> int:
-    from sigmad.daemon.config.host import host_problems
-    from sigmad.daemon.config.load import describe, load_config
+    from pathlib import Path
 
-    config = load_config(args.file)
+    from sigmad.daemon.config.host import host_problems
+    from sigmad.daemon.config.load import ConfigError, config_problems, describe, load_config
+
+    try:
+        config = load_config(args.file)
+    except ConfigError as first:   # every problem of the text, not only the first
+        try:
+            text = Path(args.file).read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError):
+            raise first from None
+        problems = config_problems(text, args.file) or [first]
+        for problem in problems:
+            print(f"sigmad: {problem}", file=sys.stderr)
+        if len(problems) > 1:
+            print(f"sigmad: {len(problems)} problem(s) in {args.file}", file=sys.stderr)
+        return EXIT_USER
     problems = host_problems(config)
     for problem in problems:
         print(f"sigmad: {problem}", file=sys.stderr)
