@@ -62,7 +62,8 @@ regression = {{ y = "heron", x = ["kestrel"] }}
 
 def _produce(endpoint: str, stop: threading.Event, started: float) -> None:
     rng = np.random.default_rng(2026)
-    with Producer(endpoint, source="demo-producer") as p:
+    # linger=0: at Ctrl-C the daemon stops first; the invented data still queued is dropped
+    with Producer(endpoint, source="demo-producer", linger=0) as p:
         tick = 0
         while not stop.is_set():
             age = time.monotonic() - started
@@ -124,7 +125,7 @@ def run_demo(duration: float | None, http: str) -> int:
                 return
             last[0] = time.monotonic()
             snap = daemon.engine.snapshot
-            rejected = dict(snap.health.rejected)
+            rejected = {k: n for k, n in snap.health.rejected if n}   # (all exist, at 0)
             print(f"-- {len(snap.series)} series, rejected {rejected or 'none'}")
             for v in sorted(snap.series.values(), key=lambda v: v.key):
                 print(_line(v))
