@@ -43,7 +43,8 @@ REJECT_REASONS: tuple[str, ...] = WIRE_REASONS + (
     "bad_frames", "no_stream", "series_limit", "not_finite", "bad_weight", "bad_time",
     "clock_skew", "not_positive", "out_of_range")
 MERGE_REASONS: tuple[str, ...] = (
-    "state_malformed", "state_incompatible", "state_unknown_stream", "state_too_many_shards")
+    "state_malformed", "state_incompatible", "state_unknown_stream", "state_too_many_shards",
+    "state_too_large")
 
 HOUSEKEEPING_EVERY = 1.0   # seconds between idle-expiry sweeps
 IDLE_FLUSH_ROWS = 10_000   # rows waiting that are folded as soon as the sources go quiet

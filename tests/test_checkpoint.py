@@ -285,7 +285,7 @@ def test_a_malformed_mixture_drops_only_its_series():
     restored, dropped = restore_checkpoint(fresh, decode_checkpoint(blocks_file(blocks)), NOW)
     assert restored == 2
     assert [(where, reason.split(":")[0]) for where, reason in dropped] == \
-        [("lat['api']", "mixture")]
+        [("lat{svc=api}", "mixture")]
 
 
 # a damaged mixture may hold a negative variance: its read-outs are NaN, which numpy notes
@@ -470,9 +470,15 @@ def test_corrupt_checkpoint_is_moved_aside_counted_and_strict_refuses(tmp_path):
     (aside,) = tmp_path.glob("s.state.corrupt-*")
     assert aside.read_bytes().startswith(b"not a checkpoint")
     path.write_bytes(b"junk again")
-    with pytest.raises(CheckpointError, match="strict_restore"):
-        Checkpointer(str(path), 1.0, CollectorRegistry()).restore(e, NOW, strict=True)
-    assert len(list(tmp_path.glob("s.state.corrupt-*"))) == 2
+    before = path.stat()
+    for _ in range(2):   # a service manager's restart refuses again: strictness lasts
+        with pytest.raises(CheckpointError, match="strict_restore"):
+            Checkpointer(str(path), 1.0, CollectorRegistry()).restore(e, NOW, strict=True)
+    # left where and as it was: same bytes, same inode, same modification time
+    assert path.read_bytes() == b"junk again"
+    after = path.stat()
+    assert (after.st_ino, after.st_mtime_ns) == (before.st_ino, before.st_mtime_ns)
+    assert len(list(tmp_path.glob("s.state.corrupt-*"))) == 1
 
 
 @pytest.mark.slow
@@ -487,6 +493,9 @@ def test_strict_restore_makes_the_cli_exit_2_with_one_sentence(tmp_path):
                        env=dict(os.environ, PYTHONPATH=str(ROOT)))
     assert r.returncode == 2
     assert r.stderr.count("\n") == 1 and "refusing to start" in r.stderr
+    assert "left in place" in r.stderr
+    assert (tmp_path / "s.state").read_bytes() == b"junk"
+    assert not list(tmp_path.glob("s.state.corrupt-*"))
 
 
 def test_what_the_engine_thread_collects_is_not_changed_by_later_updates():
@@ -570,12 +579,14 @@ def test_unwritable_state_directory_is_retried_while_ingest_goes_on(tmp_path):
     missing = tmp_path / "not-yet"
     d = Sigmad(tmp_path, DAEMON_CONFIG % {"state": missing / "s.state", "port": port})
     try:
-        assert missing.is_dir()         # created at start: its parent exists
-        shutil.rmtree(missing)          # then taken away under the running daemon
+        assert missing.is_dir()   # created at start: its parent exists
+        shutil.rmtree(missing)
+        missing.write_text("a file where the directory was")   # every write now fails
         with Producer(f"tcp://127.0.0.1:{port}", source="t") as p:
             p.send("k.main", {"v": [1.0, 2.0, 3.0]})
         d.wait_for("sigmad_checkpoint_failures_total", 3)
         d.wait_for("sigmad_observations_total", 3, stream="k")
+        missing.unlink()
         missing.mkdir()
         d.wait_for("sigmad_checkpoint_writes_total", 1)
     finally:

@@ -7,6 +7,8 @@ numpy arrays that were sent.
 
 import os
 import socket
+import threading
+import time
 
 import msgpack
 import numpy as np
@@ -220,3 +222,57 @@ def test_a_bad_endpoint_raises_and_closes_its_socket(ctx):
     # a leaked socket would make the fixture's ctx.term() block
     with pytest.raises(zmq.ZMQError):
         Producer("bogus://x", context=ctx)
+
+
+def test_close_raises_when_messages_could_not_leave(tmp_path):
+    from sigmad.daemon.client import DeliveryError
+
+    # nothing listens on this ipc path: the messages stay queued
+    p = Producer(f"ipc://{tmp_path}/nobody.ipc", linger=0.3)
+    assert not p.wait_ready(0.2)
+    p.send("t", 1.0)
+    with pytest.raises(DeliveryError, match="nobody.ipc"):
+        p.close()
+
+
+def _subscriber(ctx, endpoint: str, got: list, ready: threading.Event) -> None:
+    """A bound SUB polled the whole time, as the daemon's engine loop polls its sources."""
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    sub.bind(endpoint)
+    ready.set()
+    deadline = time.monotonic() + 5.0
+    while time.monotonic() < deadline and not got:
+        if sub.poll(20):
+            got.append(sub.recv_multipart())
+    sub.close(0)
+
+
+@pytest.mark.parametrize("bind", [False, True])
+def test_wait_ready_sees_a_push_peer_and_a_pub_subscriber(ctx, pull_tcp, tmp_path, bind):
+    _, endpoint = pull_tcp
+    with Producer(endpoint) as p:
+        assert p.wait_ready(5.0)
+    endpoint = f"ipc://{tmp_path}/sub.ipc"
+    got: list = []
+    if bind:   # the producer binds, the subscriber connects
+        with Producer(endpoint, socket="pub", bind=True) as p:
+            sub = ctx.socket(zmq.SUB)
+            sub.setsockopt(zmq.SUBSCRIBE, b"")
+            sub.connect(endpoint)
+            try:
+                assert p.wait_ready(5.0)
+                p.send("t", 2.0)             # the first message sent: not dropped
+                assert sub.poll(WAIT_MS)
+            finally:
+                sub.close(0)
+        return
+    ready = threading.Event()
+    t = threading.Thread(target=_subscriber, args=(ctx, endpoint, got, ready))
+    t.start()
+    ready.wait(5)
+    with Producer(endpoint, socket="pub") as p:
+        assert p.wait_ready(5.0)
+        p.send("t", 2.0)                     # the first message sent: not dropped
+    t.join()
+    assert got and got[0][0] == b"t"

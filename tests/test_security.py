@@ -17,7 +17,7 @@ import urllib.request
 import pytest
 from conftest import need_binary
 from harness import ROOT, Sigmad, free_port, samples, value
-from sigmad.daemon.client import Producer
+from sigmad.daemon.client import DeliveryError, Producer
 
 pytestmark = pytest.mark.slow   # real daemon subprocesses with TLS and CurveZMQ
 
@@ -79,11 +79,16 @@ def refused(d: Sigmad, reason: str) -> float:
                  endpoint=f"pull {d.endpoint}", reason=reason) or 0.0
 
 
-def _send_some(d: Sigmad, who: str, **curve) -> None:
-    with Producer(d.endpoint, source=who, linger=0.5, **curve) as p:
-        for i in range(5):
-            p.send(f"k.{who}", {"v": float(i)})
-        time.sleep(0.8)
+def _send_some(d: Sigmad, who: str, refused: bool = False, **curve) -> None:
+    p = Producer(d.endpoint, source=who, linger=0.5, **curve)
+    for i in range(5):
+        p.send(f"k.{who}", {"v": float(i)})
+    time.sleep(0.8)
+    if refused:   # the producer is told its messages never left
+        with pytest.raises(DeliveryError):
+            p.close()
+    else:
+        p.close()
 
 
 def test_allowed_key_is_accepted(curve_daemon):
@@ -96,7 +101,7 @@ def test_allowed_key_is_accepted(curve_daemon):
 def test_unknown_key_is_refused_and_counted(curve_daemon):
     d = curve_daemon
     before = refused(d, "auth")
-    _send_some(d, "stranger", curve_server_key=d.keys / "server.key",
+    _send_some(d, "stranger", refused=True, curve_server_key=d.keys / "server.key",
                curve_keypair=d.keys / "stranger.key_secret")
     parsed = d.metrics()
     assert value(parsed, "sigmad_observations_total", stream="k", who="stranger") is None
@@ -106,7 +111,7 @@ def test_unknown_key_is_refused_and_counted(curve_daemon):
 def test_producer_without_a_key_is_refused_and_counted(curve_daemon):
     d = curve_daemon
     before = refused(d, "protocol") + refused(d, "no_detail")
-    _send_some(d, "anon")
+    _send_some(d, "anon", refused=True)
     parsed = d.metrics()
     assert value(parsed, "sigmad_observations_total", stream="k", who="anon") is None
     assert refused(d, "protocol") + refused(d, "no_detail") > before

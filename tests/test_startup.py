@@ -179,3 +179,108 @@ def test_http_stop_before_start_does_not_block():
     t.start()
     t.join(2.0)
     assert not t.is_alive(), "HttpServer.stop() blocked before start()"
+
+
+def test_every_rejection_reason_and_source_counter_exist_at_zero(tmp_path):
+    from harness import Sigmad, value
+    from sigmad.daemon.app import REJECT_REASONS
+
+    port = free_port()
+    d = Sigmad(tmp_path, BASE.format(http="{HTTP}", bind=f"tcp://127.0.0.1:{port}",
+                                     daemon_extra="", source_extra=""))
+    try:
+        parsed = d.metrics()
+    finally:
+        assert d.stop() == 0
+    for reason in REJECT_REASONS:
+        assert value(parsed, "sigmad_rejected_total", reason=reason) == 0.0, reason
+    assert value(parsed, "sigmad_messages_total", endpoint=f"pull tcp://127.0.0.1:{port}") \
+        == 0.0
+
+
+def test_every_reason_in_the_code_is_listed_and_documented():
+    import re
+
+    from sigmad.daemon.app import MERGE_REASONS, REJECT_REASONS
+    from sigmad.daemon.ingest.curve_auth import _REFUSALS
+
+    code = "".join(p.read_text() for p in (ROOT / "daemon").rglob("*.py"))
+    code += "".join(p.read_text() for p in (ROOT / "estimators").rglob("*.py"))
+    used = set(re.findall(r'reject(?:ed)?\[?\(?"([a-z_]+)"', code))
+    used |= set(re.findall(r'\("([a-z_]+)", bad_', code))   # estimators.validation
+    used |= set(re.findall(r'StateError\("([a-z_]+)"', code))
+    used |= set(re.findall(r'WireError\("([a-z_]+)"', code))
+    known = set(REJECT_REASONS) | set(MERGE_REASONS)
+    assert used and used <= known, used - known
+    readme = (ROOT / "README.md").read_text()
+    for reason in known | set(_REFUSALS.values()):
+        assert f"`{reason}`" in readme, reason
+
+
+def test_the_stop_line_says_what_was_checkpointed(tmp_path):
+    from harness import Sigmad
+
+    extra = f'state_file = "{tmp_path}/state/s.state"'
+    d = Sigmad(tmp_path, BASE.format(http="{HTTP}", bind=f"tcp://127.0.0.1:{free_port()}",
+                                     daemon_extra=extra, source_extra=""))
+    assert d.stop() == 0
+    log = d.log.read_text()
+    assert "created the state directory" in log
+    assert f"checkpointed 0 series to {tmp_path}/state/s.state" in log
+
+
+def test_keygen_into_a_directory_whose_parent_is_missing(tmp_path):
+    rc, err, _ = _sigmad("keygen", str(tmp_path / "no" / "such" / "dir"))
+    assert rc == 1
+    assert "no/such" in err and "does not exist" in err and "Traceback" not in err
+
+
+def test_inspect_into_a_closed_pipe_is_quiet(tmp_path):
+    import numpy as np
+    from sigmad.daemon.config.load import parse_config
+    from sigmad.daemon.engine.engine import Engine
+    from sigmad.daemon.ingest.wire import encode
+    from sigmad.daemon.storage.checkpoint import (
+        collect_columns,
+        encode_checkpoint,
+        stream_definitions,
+    )
+
+    engine = Engine(parse_config(BASE.format(http="127.0.0.1:0", bind="tcp://127.0.0.1:1",
+                                             daemon_extra="", source_extra="")))
+    for i in range(3000):   # far more text than a pipe holds
+        engine.ingest(f"s{i}".encode(), encode(np.array([1.0, 2.0])), 1.7e9)
+    engine.flush(1.7e9)
+    state = tmp_path / "big.state"
+    state.write_bytes(encode_checkpoint(collect_columns(engine), stream_definitions(engine),
+                                        1.7e9, {}))
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    r = subprocess.run(f"{sys.executable} -m sigmad.daemon inspect {state} | head -1",
+                       shell=True, capture_output=True, text=True, env=env, timeout=60)
+    assert r.stdout.count("\n") == 1
+    assert "Error" not in r.stderr and "Traceback" not in r.stderr, r.stderr
+
+
+def test_validate_reports_every_problem_of_the_text(tmp_path):
+    path = tmp_path / "text.toml"
+    path.write_text("""
+[daemon]
+flush_every = 5
+[[source]]
+socket = "push"
+bind = "tcp://127.0.0.1:7410"
+[[stream]]
+name = "ok"
+topic = "{s}"
+fields = ["value"]
+[[stream]]
+name = "v"
+topic = "a.{s}"
+fields = ["value"]
+half_life = "ten minutes"
+""")
+    rc, err, _ = _sigmad("validate", str(path))
+    assert rc == 1
+    for key in ("daemon.flush_every", "source[0].socket", "stream[1].half_life"):
+        assert key in err, (key, err)
+    assert "3 problem(s)" in err

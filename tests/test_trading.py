@@ -535,7 +535,8 @@ def test_a_non_positive_price_is_logged_with_its_stream_and_field(caplog):
              now=2.0)
     with caplog.at_level("WARNING", logger="sigmad.engine"):
         e.flush(2.0)
-    assert "px{'sym': 'aaa'}" in caplog.text   # the series, then the reason and its bound
+    assert "px{sym=aaa}" in caplog.text   # the series (one format in every log line), then
+    # the reason and its bound
     assert "not_positive (log_return of mid needs a price > 0)" in caplog.text
 
 

@@ -74,7 +74,8 @@ quantiles = []
 
 def _produce(endpoint: str, stop: threading.Event, started: float) -> None:
     rng = np.random.default_rng(2026)
-    with Producer(endpoint, source="demo-producer") as p:
+    # linger=0: at Ctrl-C the daemon stops first; the invented data still queued is dropped
+    with Producer(endpoint, source="demo-producer", linger=0) as p:
         tick = 0
         log_mid = {"kestrel": math.log(100.0), "heron": math.log(150.0)}   # random walks
         while not stop.is_set():
@@ -147,7 +148,7 @@ def run_demo(duration: float | None, http: str) -> int:
                 return
             last[0] = time.monotonic()
             snap = daemon.engine.snapshot
-            rejected = dict(snap.health.rejected)
+            rejected = {k: n for k, n in snap.health.rejected if n}   # (all exist, at 0)
             print(f"-- {len(snap.series)} series, rejected {rejected or 'none'}")
             for v in sorted(snap.series.values(), key=lambda v: v.key):
                 print(_line(v))

@@ -62,10 +62,24 @@ def serve(daemon, duration: float | None = None, tick=None) -> int:
 
 
 def _cmd_validate(args: argparse.Namespace) -> int:
-    from sigmad.daemon.config.host import host_problems
-    from sigmad.daemon.config.load import describe, load_config
+    from pathlib import Path
 
-    config = load_config(args.file)
+    from sigmad.daemon.config.host import host_problems
+    from sigmad.daemon.config.load import ConfigError, config_problems, describe, load_config
+
+    try:
+        config = load_config(args.file)
+    except ConfigError as first:   # every problem of the text, not only the first
+        try:
+            text = Path(args.file).read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError):
+            raise first from None
+        problems = config_problems(text, args.file) or [first]
+        for problem in problems:
+            print(f"sigmad: {problem}", file=sys.stderr)
+        if len(problems) > 1:
+            print(f"sigmad: {len(problems)} problem(s) in {args.file}", file=sys.stderr)
+        return EXIT_USER
     problems = host_problems(config)
     for problem in problems:
         print(f"sigmad: {problem}", file=sys.stderr)
@@ -80,7 +94,8 @@ def _cmd_validate(args: argparse.Namespace) -> int:
 def _cmd_send(args: argparse.Namespace) -> int:
     from sigmad.daemon.cli.send import send_stdin
 
-    return send_stdin(args.topic, args.connect, args.field, args.bind, args.socket)
+    return send_stdin(args.topic, args.connect, args.field, args.bind, args.socket,
+                      follow=args.follow, timeout=args.timeout)
 
 
 def _cmd_inspect(args: argparse.Namespace) -> int:
@@ -158,6 +173,13 @@ def build_parser() -> argparse.ArgumentParser:
     send.add_argument("--socket", choices=["push", "pub"], default="push")
     send.add_argument("--field", metavar="F",
                       help="field name for bare numbers (default: the stream's only field)")
+    send.add_argument("--follow", action="store_true",
+                      help="endless input (tail -f): send each line as it comes, skip and "
+                           "count unreadable lines (default: read and check all input "
+                           "first, send nothing if a line is unreadable)")
+    send.add_argument("--timeout", type=float, default=5.0, metavar="S",
+                      help="seconds to wait for the daemon (or, with --socket pub, a "
+                           "subscriber) before exiting 1 (default 5)")
     send.set_defaults(func=_cmd_send)
 
     bench = sub.add_parser("bench", help="end-to-end throughput on this machine, beside "

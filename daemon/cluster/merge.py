@@ -38,6 +38,7 @@ from sigmad.daemon.config.load import Config
 from sigmad.daemon.engine.engine import Series, StreamState, restore_series, series_state, view_of
 from sigmad.daemon.engine.snapshot import Health, SeriesView, Snapshot
 from sigmad.daemon.export.model import METRICS
+from sigmad.daemon.ingest.topics import series_text
 from sigmad.daemon.ingest.wire import MsgpackError, unpack_bounded
 from sigmad.estimators import IncompatibleError, Volatility
 
@@ -290,7 +291,8 @@ class Merger:
                     cache[key] = (signature, pooled, view_of(pooled))
                 except IncompatibleError as exc:   # e.g. shards disagree on a mixture's K
                     self.rejected["state_incompatible"] += 1
-                    log.warning("cannot pool %s: %s", key, exc)
+                    log.warning("cannot pool %s: %s", series_text(
+                        key[0], tuple(n for n, _ in key[1]), tuple(v for _, v in key[1])), exc)
         self._cache = cache
         self._dirty = False
         self.rebuilds += 1

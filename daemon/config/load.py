@@ -1169,6 +1169,45 @@ def parse_config(text: str, origin: str = "<string>") -> Config:
     return dataclasses.replace(cfg, origin=origin)
 
 
+def config_problems(text: str, origin: str = "<string>") -> list[ConfigError]:
+    """Every problem :func:`parse_config` would raise one at a time, as far as they can
+    be told apart: the ``[daemon]`` table and each ``[[source]]`` and ``[[stream]]``
+    are checked on their own (each reports its first problem), then, if they are
+    all sound, the whole (cross-checks). ``sigmad validate`` prints them all.
+
+    Examples
+    --------
+    >>> bad = '[daemon]\\nflush_every = 5\\n[[stream]]\\nname = "x y"'
+    >>> [p.key for p in config_problems(bad)]
+    ['daemon.flush_every', 'stream[0].name']
+    """
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        return [ConfigError("", None, f"not valid TOML ({exc})", origin)]
+    problems: list[ConfigError] = []
+
+    def attempt(check, *args) -> None:
+        try:
+            check(*args)
+        except ConfigError as exc:
+            problems.append(exc.with_origin(origin))
+
+    attempt(_Table, data, "", _TOP_KEYS)
+    attempt(_daemon, data.get("daemon", {}))
+    for name, check in (("source", _source), ("stream", _stream)):
+        try:
+            tables = _array_of_tables(data, name)
+        except ConfigError as exc:
+            problems.append(exc.with_origin(origin))
+            continue
+        for i, table in enumerate(tables):
+            attempt(check, table, f"{name}[{i}]")
+    if not problems:
+        attempt(parse_config, text, origin)
+    return problems
+
+
 def load_config(path: str | Path) -> Config:
     """Read and validate a TOML file; see :func:`parse_config`.
 

@@ -24,6 +24,7 @@ from sigmad.daemon.engine.snapshot import (
     Snapshot,
 )
 from sigmad.daemon.ingest.layouts import LayoutTable, Readout, learn, runs
+from sigmad.daemon.ingest.topics import series_text
 from sigmad.daemon.ingest.wire import Reader, Single, WireError
 from sigmad.estimators import (
     IncompatibleError,
@@ -71,7 +72,7 @@ def _floats(a) -> tuple[float, ...]:
 def _route_name(route: tuple) -> str:
     """How a (stream, labels) route, and so its series, is named in the rejection log."""
     st, labels = route
-    return f"{st.name}{dict(zip(st.cfg.topic.labels, labels, strict=True)) or ''}"
+    return series_text(st.name, st.cfg.topic.labels, labels)
 
 
 def _single(st: StreamState, body: bytes) -> bool:

@@ -214,3 +214,23 @@ class TopicTemplate:
 
     def __str__(self) -> str:
         return self.text
+
+
+def series_text(stream: str, names: tuple[str, ...] | None, values: tuple[str, ...]) -> str:
+    """How a series is named in every log line: ``stream{label=value,...}``, as the
+    status page names its cards (values only when the names are no longer known,
+    e.g. a checkpoint's stream that is no longer configured).
+
+    Examples
+    --------
+    >>> series_text("lat", ("service", "region"), ("checkout", "eu"))
+    'lat{service=checkout,region=eu}'
+    >>> series_text("lat", None, ("checkout",)), series_text("q", (), ())
+    ('lat{checkout}', 'q')
+    """
+    if not values:
+        return stream
+    shown = list(values)
+    if names is not None:
+        shown = [f"{n}={v}" for n, v in zip(names, shown, strict=True)]
+    return f"{stream}{{{','.join(shown)}}}"

@@ -319,7 +319,7 @@ class Checkpointer:
     def restore(self, engine: Engine, now: float, strict: bool) -> None:
         """Load the checkpoint into ``engine``; a corrupt one is moved aside.
 
-        Raises CheckpointError (after moving the file aside) when ``strict``.
+        Raises CheckpointError when ``strict``, leaving the file where and as it is.
         """
         try:
             cp = read_checkpoint(self.path)
@@ -328,20 +328,20 @@ class Checkpointer:
             return
         except (CheckpointError, OSError) as exc:
             self.restore_failures.inc()
+            problem = exc.problem if isinstance(exc, CheckpointError) else str(exc)
+            if strict:
+                # the file stays where and as it is: every restart refuses again until
+                # someone looks at it (strictness that lasts one start is none)
+                raise CheckpointError(self.path, f"unreadable ({problem}); left in place; "
+                                      "refusing to start because strict_restore is set "
+                                      "(move it aside to start fresh)") from None
             aside = None
             try:
                 aside = move_aside(self.path, now)
             except OSError as move_exc:
                 log.error("could not move the bad checkpoint aside: %s", move_exc)
-            problem = exc.problem if isinstance(exc, CheckpointError) else str(exc)
-            msg = (f"checkpoint {self.path} is unreadable ({problem}); "
-                   + (f"moved to {aside}" if aside else "left in place"))
-            if strict:
-                raise CheckpointError(self.path, f"unreadable ({problem}); "
-                                      + (f"moved to {aside}; " if aside else "")
-                                      + "refusing to start because strict_restore is set") \
-                    from None
-            log.error("%s; starting fresh", msg)
+            log.error("checkpoint %s is unreadable (%s); %s; starting fresh", self.path,
+                      problem, f"moved to {aside}" if aside else "left in place")
             return
         restored, dropped = restore_checkpoint(engine, cp, now)
         for where, reason in dropped[:_LOGGED_DROPS]:

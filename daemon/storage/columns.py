@@ -26,6 +26,7 @@ from sigmad.daemon.engine.engine import (
     view_of,
 )
 from sigmad.daemon.engine.snapshot import SeriesView
+from sigmad.daemon.ingest.topics import series_text
 from sigmad.estimators import IncompatibleError, Mixture, Regression
 from sigmad.estimators.moments_columns import MomentsColumns, blob, from_blob
 
@@ -58,9 +59,9 @@ class StreamColumns(NamedTuple):
     def n(self) -> int:
         return len(self.labels)
 
-    def where(self, i: int) -> str:
-        """How series i is named when it is dropped (as format 1 named it)."""
-        return f"{self.stream}{list(self.labels[i])}"
+    def where(self, i: int, names: tuple[str, ...] | None = None) -> str:
+        """How series i is named when it is dropped (``topics.series_text``)."""
+        return series_text(self.stream, names, tuple(self.labels[i]))
 
 
 def _get(name: str, series: list) -> list:
@@ -192,7 +193,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     try:
         _check_stream(st, c)
     except IncompatibleError as exc:
-        return [], [(c.where(i), str(exc)) for i in range(c.n)]
+        return [], [(c.where(i, st.cfg.topic.labels), str(exc)) for i in range(c.n)]
     cfg = st.cfg
     name, label_names = st.name, cfg.topic.labels
     keep_outliers = c.thresholds == list(cfg.outlier_sigmas)
@@ -223,7 +224,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
                 s.returns, s.volatility, s.legs = fresh.returns, fresh.volatility, fresh.legs
             restore_extra(s, ext)
         except IncompatibleError as exc:
-            dropped.append((c.where(i), str(exc)))
+            dropped.append((c.where(i, st.cfg.topic.labels), str(exc)))
             continue
         out.append(s)
     return out, dropped

@@ -1,0 +1,58 @@
+"""The README's "Sending data" examples run as written against the configuration
+each names (the embedded default unless it names a file in configs/): a real
+daemon, the real `sigmad send` and the Producer. Only ports are changed, so
+tests never take the well-known ones."""
+
+from __future__ import annotations
+
+import os
+import re
+import subprocess
+import sys
+from importlib import resources
+from pathlib import Path
+
+import pytest
+from harness import ROOT, Sigmad, free_port
+
+SECTION = re.search(r"### Sending data\n(.*?)\n### ", (ROOT / "README.md").read_text(),
+                    re.S).group(1)
+# (language, code, the prose just before it)
+BLOCKS = [(m.group(1), m.group(2), SECTION[:m.start()].rstrip().rsplit("\n\n", 1)[-1])
+          for m in re.finditer(r"(?m)^```(sh|python)\n(.*?)^```", SECTION, re.S)]
+# what each example must leave in the daemon: (stream, labels, observations)
+EXPECTED = {"queue_depth": ("value", {"series": "queue_depth"}, 100),
+            "ms,weight": ("request_latency", {"service": "checkout", "region": "eu"}, 2),
+            "Producer(": ("request_latency", {"service": "checkout", "region": "eu"}, 3)}
+
+
+def _config_text(name: str | None) -> str:
+    if name is None:
+        return resources.files("sigmad.daemon.config").joinpath("default.toml").read_text()
+    return (ROOT / "configs" / name).read_text()
+
+
+@pytest.mark.parametrize("lang, code, before", BLOCKS, ids=[b[1][:30] for b in BLOCKS])
+def test_sending_example_runs_against_the_config_it_names(tmp_path, lang, code, before):
+    named = re.search(r"configs/(\w+\.toml)", code + before)
+    config = _config_text(named.group(1) if named else None)
+    pull, sub = free_port(), free_port()
+    config = config.replace("7410", str(pull)).replace("7412", str(sub))
+    config = re.sub(r'(?m)^http = "127\.0\.0\.1:9410"', 'http = "{HTTP}"', config)
+    example = code.replace("7410", str(pull))
+    if lang == "sh" and "--connect" not in example:
+        example = example.replace("sigmad send", f"sigmad send --connect tcp://127.0.0.1:{pull}")
+    d = Sigmad(tmp_path, config)
+    env = dict(os.environ, PYTHONPATH=str(ROOT),
+               PATH=f"{Path(sys.executable).parent}{os.pathsep}{os.environ['PATH']}")
+    try:
+        cmd = ["sh", "-ec", example] if lang == "sh" else [sys.executable, "-c", example]
+        r = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=60)
+        assert r.returncode == 0, r.stderr
+        stream, labels, n = next(v for k, v in EXPECTED.items() if k in code)
+        d.wait_for("sigmad_observations_total", n, stream=stream, **labels)
+        rejected = [v for (name, _), v in d.metrics().items()
+                    if name == "sigmad_rejected_total"]
+        assert sum(rejected) == 0
+    finally:
+        assert d.stop() == 0
