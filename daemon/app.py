@@ -41,7 +41,8 @@ log = logging.getLogger("sigmad")
 #: (wire.REASONS), the routing's and the rows'; a merger adds MERGE_REASONS.
 REJECT_REASONS: tuple[str, ...] = WIRE_REASONS + (
     "bad_frames", "no_stream", "series_limit", "not_finite", "bad_weight", "bad_time",
-    "clock_skew", "not_positive", "out_of_range")
+    "clock_skew", "future_time", "not_positive", "out_of_range", "late", "stale_leg",
+    "not_json", "bad_payload", "queue_full")
 MERGE_REASONS: tuple[str, ...] = (
     "state_malformed", "state_incompatible", "state_unknown_stream", "state_too_many_shards",
     "state_too_large")

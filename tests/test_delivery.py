@@ -13,6 +13,8 @@ import threading
 import pytest
 from harness import ROOT, Sigmad, free_port
 
+pytestmark = pytest.mark.slow   # scripts and daemons as subprocesses
+
 CONFIG = """
 [daemon]
 http = "{HTTP}"

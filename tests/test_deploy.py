@@ -13,6 +13,8 @@ import pytest
 from conftest import need_binary
 from harness import ROOT, Sigmad, free_port
 
+pytestmark = pytest.mark.slow   # systemd-analyze, promtool and a daemon subprocess
+
 UNIT = ROOT / "configs" / "sigmad.service"
 
 

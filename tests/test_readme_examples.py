@@ -15,6 +15,8 @@ from pathlib import Path
 import pytest
 from harness import ROOT, Sigmad, free_port
 
+pytestmark = pytest.mark.slow   # README's examples against a daemon subprocess
+
 SECTION = re.search(r"### Sending data\n(.*?)\n### ", (ROOT / "README.md").read_text(),
                     re.S).group(1)
 # (language, code, the prose just before it)

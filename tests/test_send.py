@@ -11,6 +11,8 @@ import time
 import pytest
 from harness import ROOT, Sigmad, free_port, value
 
+pytestmark = pytest.mark.slow   # sigmad send and daemons as subprocesses
+
 CONFIG = """
 [daemon]
 http = "{HTTP}"
