@@ -18,8 +18,10 @@ from prometheus_client import (
 )
 from sigmad.daemon.cluster.merge import Merger, ShardCollector
 from sigmad.daemon.cluster.publish import Publisher
+from sigmad.daemon.config.errors import ConfigError
 from sigmad.daemon.config.host import host_problems
-from sigmad.daemon.config.load import Config, ConfigError, split_host_port
+from sigmad.daemon.config.schema import Config
+from sigmad.daemon.config.units import split_host_port
 from sigmad.daemon.engine.allocator import keep_freed_blocks
 from sigmad.daemon.engine.blas import set_threads as set_blas_threads
 from sigmad.daemon.engine.engine import Engine

@@ -9,10 +9,12 @@ import tomllib
 from pathlib import Path
 
 import pytest
-from sigmad.daemon.config.load import (
+from sigmad.daemon.config.describe import describe
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.load import default_config, load_config, parse_config
+from sigmad.daemon.config.schema import (
     RESERVED_LABELS,
     Config,
-    ConfigError,
     DaemonConfig,
     MergeConfig,
     MixtureConfig,
@@ -20,15 +22,10 @@ from sigmad.daemon.config.load import (
     RegressionConfig,
     SourceConfig,
     StreamConfig,
-    default_config,
-    describe,
-    load_config,
-    parse_config,
-    parse_duration,
-    parse_half_life,
     schema_defaults,
     show_default,
 )
+from sigmad.daemon.config.units import parse_duration, parse_half_life
 from sigmad.estimators import HalfLife
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -25,7 +25,8 @@ from harness import Sigmad, free_port, value
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from paho.mqtt.enums import CallbackAPIVersion
-from sigmad.daemon.config.load import ConfigError, parse_config
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.load import parse_config
 from sigmad.daemon.ingest import payloads
 from sigmad.daemon.ingest.payloads import to_body
 from sigmad.daemon.ingest.topics import TopicError, TopicTemplate

@@ -470,7 +470,8 @@ def test_limits_reject_rows_outside_a_fields_range_as_out_of_range():
     ("[0.0, 1.0]", "must be a table"),
 ])
 def test_bad_limits_are_a_config_error_naming_the_key(limits, words):
-    from sigmad.daemon.config.load import ConfigError, parse_config
+    from sigmad.daemon.config.errors import ConfigError
+    from sigmad.daemon.config.load import parse_config
     with pytest.raises(ConfigError) as info:
         parse_config(LIMITS_CONFIG.replace("{ ms = [0.0, 60000.0] }", limits), "site.toml")
     assert words in str(info.value) and "stream[0].limits" in str(info.value)

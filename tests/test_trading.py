@@ -13,7 +13,8 @@ from datetime import UTC
 import numpy as np
 import pytest
 from conftest import need_module
-from sigmad.daemon.config.load import ConfigError, parse_config
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.load import parse_config
 from sigmad.daemon.engine.engine import Engine
 from sigmad.daemon.export.api_state import snapshot_json
 from sigmad.daemon.export.metrics_text import SeriesRenderer

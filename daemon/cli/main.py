@@ -64,8 +64,10 @@ def serve(daemon, duration: float | None = None, tick=None) -> int:
 def _cmd_validate(args: argparse.Namespace) -> int:
     from pathlib import Path
 
+    from sigmad.daemon.config.describe import describe
+    from sigmad.daemon.config.errors import ConfigError
     from sigmad.daemon.config.host import host_problems
-    from sigmad.daemon.config.load import ConfigError, config_problems, describe, load_config
+    from sigmad.daemon.config.load import config_problems, load_config
 
     try:
         config = load_config(args.file)
@@ -214,7 +216,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return EXIT_USER
-    from sigmad.daemon.config.load import ConfigError
+    from sigmad.daemon.config.errors import ConfigError
     from sigmad.daemon.ingest.source import BindError
     from sigmad.daemon.storage.checkpoint import CheckpointError
 

@@ -34,7 +34,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from sigmad.daemon.client import DeliveryError, Producer
-from sigmad.daemon.config.load import check_endpoint
+from sigmad.daemon.config.units import check_endpoint
 from sigmad.daemon.ingest.wire import encode
 
 BATCH = 1000

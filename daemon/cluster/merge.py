@@ -34,7 +34,7 @@ from dataclasses import dataclass
 import zmq
 from prometheus_client.metrics_core import Metric
 from sigmad.daemon.cluster.publish import MAX_STATE_BYTES, STATE_FORMAT, STATE_TOPIC
-from sigmad.daemon.config.load import Config
+from sigmad.daemon.config.schema import Config
 from sigmad.daemon.engine.engine import Series, StreamState, restore_series, series_state, view_of
 from sigmad.daemon.engine.snapshot import Health, SeriesView, Snapshot
 from sigmad.daemon.export.model import METRICS

@@ -24,7 +24,7 @@ import socket as _socket
 
 import msgpack
 import zmq
-from sigmad.daemon.config.load import PublishConfig
+from sigmad.daemon.config.schema import PublishConfig
 from sigmad.daemon.ingest.source import bind_socket
 
 log = logging.getLogger("sigmad.publish")

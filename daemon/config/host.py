@@ -3,7 +3,7 @@
 :func:`~sigmad.daemon.config.load.parse_config` judges the text alone and stops at
 the first mistake. :func:`host_problems` then looks at the machine the daemon is
 about to run on and reports *every* problem it finds, each a
-:class:`~sigmad.daemon.config.load.ConfigError` naming the key, the value and what
+:class:`~sigmad.daemon.config.errors.ConfigError` naming the key, the value and what
 to do: a key or certificate file that cannot be read, a ``curve_allow`` or ``ipc``
 directory that does not exist, an address this host does not have, a host name
 that does not resolve. ``sigmad validate`` prints them all; ``sigmad run`` refuses
@@ -17,7 +17,9 @@ import os
 import socket
 from pathlib import Path
 
-from sigmad.daemon.config.load import Config, ConfigError, split_host_port
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.schema import Config
+from sigmad.daemon.config.units import split_host_port
 
 
 def _readable_file(path: str, key: str) -> ConfigError | None:

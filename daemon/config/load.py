@@ -1,13 +1,13 @@
-"""The daemon's configuration: TOML validated into frozen dataclasses before anything starts.
+"""Reading a configuration: TOML validated into the schema's frozen dataclasses
+(``schema.py``) before anything starts.
 
 Every problem is a :class:`ConfigError` whose message is one sentence naming
 the file, the key path (``stream[2].half_life``; tables of an array count from
 0) and the value. Unknown keys are errors, with a "did you mean" when a known
 key is close.
 
-Durations are strings with a unit: ``"250ms"``, ``"30s"``, ``"1.5s"``,
-``"5m"``, ``"2h"``, ``"1d"``. A half-life may also count observations:
-``"5000 obs"``.
+Durations, half-lives and addresses are read by ``units.py``; ``host.py``
+checks what only this host can tell (files, directories, addresses).
 
 Two streams may not take the same topic: templates with the same number of
 segments and no position where both hold different literals are refused, so
@@ -23,437 +23,37 @@ import difflib
 import ipaddress
 import math
 import re
-import reprlib
 import tomllib
-from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
+from sigmad.daemon.config.errors import MISSING, ConfigError
+from sigmad.daemon.config.schema import (
+    RESERVED_LABELS,
+    Config,
+    DaemonConfig,
+    FeedConfig,
+    MergeConfig,
+    MixtureConfig,
+    MqttConfig,
+    PublishConfig,
+    RegressionConfig,
+    SourceConfig,
+    StreamConfig,
+    schema_defaults,
+)
 from sigmad.daemon.config.session import SessionError, SessionReset
+from sigmad.daemon.config.units import (
+    check_endpoint,
+    parse_duration,
+    parse_half_life,
+    split_host_port,
+)
 from sigmad.daemon.ingest.topics import LABEL_NAME, SEPARATORS, TopicError, TopicTemplate
-from sigmad.estimators import CORRECTIONS, TRANSFORMS, HalfLife
+from sigmad.estimators import CORRECTIONS, TRANSFORMS
 
-#: Labels our metrics set themselves, so a topic template may not capture them
-#: (plus every name starting with ``__``, which Prometheus reserves).
-RESERVED_LABELS: frozenset[str] = frozenset((
-    "stream", "field", "field_b", "q", "quantile", "component", "term", "threshold", "reason",
-    "source", "le", "instance", "job", "correction", "shard", "state",
-))
-_UNITS = {"ms": 1e-3, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
-_DURATION = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(ms|s|m|h|d)\s*")
-_COUNT = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(obs|observations)\s*")
-_ENDPOINT = re.compile(r"(tcp|ipc|inproc)://(.+)")
-_DOTTED = re.compile(r"[0-9.]+")
-_MISSING = object()
 _SCHEMA = object()   # "the default the schema's dataclass declares"
-_SHOW = reprlib.Repr()
-_SHOW.maxstring = 60
-_SHOW.maxother = 60
-_SHOW.maxlist = 6
-_SHOW.maxdict = 4
-
-
-class ConfigError(ValueError):
-    """A configuration problem: one sentence naming the file, the key path and the value.
-
-    Attributes
-    ----------
-    key : str
-        Key path, e.g. ``stream[2].half_life``.
-    value : object
-        The value found (the sentinel for a missing key is shown as "missing").
-    origin : str or None
-        The file (or ``"<string>"``); None until the error reaches the loader.
-    """
-
-    def __init__(self, key: str, value: object, message: str,
-                 origin: str | None = None) -> None:
-        self.key = key
-        self.value = value
-        self.message = message
-        self.origin = origin
-        where = f"{origin}: " if origin else ""
-        if not key:
-            text = f"{where}{message}"
-        elif value is _MISSING:
-            text = f"{where}{key} is missing; {message}"
-        else:
-            text = f"{where}{key} = {_SHOW.repr(value)} {message}"
-        super().__init__(text if text.endswith((".", "?")) else text + ".")
-
-    def with_origin(self, origin: str) -> ConfigError:
-        return ConfigError(self.key, self.value, self.message, origin)
-
-
-# --------------------------------------------------------------------------- dataclasses
-# Each key's default is declared once, here; the table reader and the README's table
-# of keys (checked by tests/test_config.py) take it from these fields.
-
-def _duration(seconds: float | None) -> Any:
-    """A field written in the TOML as a duration string (``"30s"``)."""
-    return field(default=seconds, metadata={"duration": True})
-
-
-@dataclass(frozen=True, slots=True)
-class DaemonConfig:
-    """The ``[daemon]`` table. Durations are in seconds; an ``http`` port of 0 lets the
-    system pick a free one."""
-
-    http: str = "127.0.0.1:9410"
-    state_file: str | None = None
-    checkpoint_every: float = _duration(30.0)
-    tls_cert: str | None = None
-    tls_key: str | None = None
-    tls_client_ca: str | None = None
-    max_message_bytes: int = 1_048_576
-    max_batch_rows: int = 100_000
-    max_topic_bytes: int = 256
-    flush_every: float = _duration(0.05)
-    max_clock_skew: float = _duration(86400.0)
-    max_time_ahead: float = _duration(10.0)
-    max_abs_value: float = 1e100
-    strict_restore: bool = False
-    log_rejected: int = 10
-
-    @property
-    def http_host(self) -> str:
-        return split_host_port(self.http, "daemon.http")[0]
-
-    @property
-    def http_port(self) -> int:
-        return split_host_port(self.http, "daemon.http")[1]
-
-
-@dataclass(frozen=True, slots=True)
-class MqttConfig:
-    """What a ``socket = "mqtt"`` source adds: the broker session (see daemon/ingest/mqtt.py)."""
-
-    host: str = field(metadata={"toml": False})      # from connect
-    port: int = field(metadata={"toml": False})
-    tls: bool = field(metadata={"toml": False})      # mqtts://
-    client_id: str | None = None
-    qos: int = 1
-    shared_group: str | None = None
-    username: str | None = None
-    password_file: str | None = None
-    tls_ca: str | None = None
-    tls_cert: str | None = None
-    tls_key: str | None = None
-    session_expiry: float = _duration(86400.0)
-
-    def subscriptions(self, topics: tuple[str, ...]) -> tuple[str, ...]:
-        """The filters as subscribed: ``$share/<group>/<filter>`` in a shared group."""
-        if self.shared_group is None:
-            return topics
-        return tuple(f"$share/{self.shared_group}/{t}" for t in topics)
-
-
-@dataclass(frozen=True, slots=True)
-class SourceConfig:
-    """One ``[[source]]``: a ZeroMQ socket or an MQTT broker the daemon reads messages from."""
-
-    socket: Literal["pull", "sub", "mqtt"]
-    bind: tuple[str, ...] = ()
-    connect: tuple[str, ...] = ()
-    topics: tuple[str, ...] = ("",)
-    curve_secret: str | None = None
-    curve_allow: str | None = None
-    high_water_mark: int = 10000
-    mqtt: MqttConfig | None = field(default=None, metadata={"toml": False})  # socket = "mqtt"
-
-    @property
-    def endpoints(self) -> tuple[str, ...]:
-        return self.bind or self.connect
-
-
-@dataclass(frozen=True, slots=True)
-class MixtureConfig:
-    """A stream's ``mixture = {...}``: an online-EM Gaussian mixture."""
-
-    components: int
-    log: bool = False
-    covariance: Literal["full", "diag"] = "full"
-    warmup: int = 200
-    seed: int = 0
-
-
-@dataclass(frozen=True, slots=True)
-class RegressionConfig:
-    """A stream's ``regression = {...}``: recursive least squares of y on x."""
-
-    y: str
-    x: tuple[str, ...]
-    intercept: bool = True
-
-
-@dataclass(frozen=True, slots=True)
-class StreamConfig:
-    """One ``[[stream]]``: which topics it takes and what it estimates."""
-
-    name: str
-    topic: TopicTemplate
-    fields: tuple[str, ...]
-    half_life: HalfLife | None = None
-    correction: Literal["none", "frequency", "reliability"] = "reliability"
-    quantiles: tuple[float, ...] = (0.5, 0.9, 0.99)
-    outlier_sigmas: tuple[float, ...] = ()
-    outlier_warmup: int = 30
-    mixture: MixtureConfig | None = None
-    regression: RegressionConfig | None = None
-    max_series: int = 1000
-    idle_expiry: float | None = _duration(None)
-    # per field, in field order: histogram bounds and exceedance thresholds (() = none)
-    thresholds: tuple[tuple[float, ...], ...] = ()
-    transform: tuple[tuple[str, str], ...] | None = None   # (field, "log_return" | ...)
-    volatility_unit: float | None = _duration(None)
-    legs: tuple[tuple[str, TopicTemplate], ...] | None = None   # (field, its topic)
-    max_leg_age: float | None = _duration(None)
-    session_reset: SessionReset | None = None
-    # per field (low, high): rows with a value outside are rejected as out_of_range
-    limits: tuple[tuple[float, float], ...] | None = None
-
-    @property
-    def templates(self) -> tuple[TopicTemplate, ...]:
-        """Every topic template the stream takes: its legs', or its one topic."""
-        return tuple(tpl for _, tpl in self.legs) if self.legs else (self.topic,)
-
-    @property
-    def dim(self) -> int:
-        return len(self.fields)
-
-    @property
-    def transforms(self) -> tuple[str | None, ...]:
-        """Each field's transform, in field order (None: the field passes through)."""
-        kinds = dict(self.transform or ())
-        return tuple(kinds.get(f) for f in self.fields)
-
-
-@dataclass(frozen=True, slots=True)
-class PublishConfig:
-    """``[publish]``: this daemon publishes its state snapshots (a shard)."""
-
-    bind: tuple[str, ...]
-    every: float = _duration(2.0)
-
-
-@dataclass(frozen=True, slots=True)
-class FeedConfig:
-    """``[feed]``: this daemon pushes each changed series' estimates on a PUB socket."""
-
-    bind: tuple[str, ...]
-
-
-@dataclass(frozen=True, slots=True)
-class MergeConfig:
-    """``[merge]``: this daemon pools other daemons' snapshots (a merger)."""
-
-    connect: tuple[str, ...]
-    shard_expiry: float = _duration(30.0)
-
-
-@dataclass(frozen=True, slots=True)
-class Config:
-    """A whole, validated configuration."""
-
-    daemon: DaemonConfig = field(default_factory=DaemonConfig)
-    sources: tuple[SourceConfig, ...] = ()
-    streams: tuple[StreamConfig, ...] = ()
-    publish: PublishConfig | None = None
-    merge: MergeConfig | None = None
-    feed: FeedConfig | None = None
-    origin: str = "<string>"
-
-
-def schema_defaults(schema: type) -> dict[str, object]:
-    """Each key of a table's dataclass and its declared default (a sentinel: required)."""
-    out: dict[str, object] = {}
-    for f in dataclasses.fields(schema):
-        if not f.metadata.get("toml", True):
-            continue    # derived from other keys, not written in the TOML
-        if f.default is not dataclasses.MISSING:
-            out[f.name] = f.default
-        elif f.default_factory is not dataclasses.MISSING:
-            out[f.name] = f.default_factory()
-        else:
-            out[f.name] = _MISSING
-    return out
-
-
-def show_default(schema: type, key: str) -> str:
-    """A key's declared default as the README's table of keys writes it.
-
-    >>> show_default(DaemonConfig, "checkpoint_every"), show_default(StreamConfig, "quantiles")
-    ('"30s"', '[0.5, 0.9, 0.99]')
-    """
-    value = schema_defaults(schema)[key]
-    duration = {f.name: f.metadata.get("duration", False) for f in dataclasses.fields(schema)}
-
-    def show(v: object) -> str:
-        if v is _MISSING:
-            return "required"
-        if v is None:
-            return "none"
-        if duration[key]:
-            return f'"{_show_duration(v)}"'
-        if isinstance(v, bool):
-            return "true" if v else "false"
-        if isinstance(v, str):
-            return f'"{v}"'
-        if isinstance(v, tuple):
-            return "[" + ", ".join(show(x) for x in v) + "]"
-        if isinstance(v, float):
-            return f"{v:g}".replace("e+", "e")
-        return str(v)
-
-    return show(value)
-
-
-# --------------------------------------------------------------------------- scalar parsers
-
-def parse_duration(text: str, key: str) -> float:
-    """Seconds in a duration string such as ``"250ms"``, ``"1.5s"``, ``"5m"``, ``"1d"``.
-
-    Parameters
-    ----------
-    text : str
-        A number and one of the units ms, s, m, h, d.
-    key : str
-        Key path for the error message.
-
-    Returns
-    -------
-    float
-        Seconds, > 0.
-
-    Raises
-    ------
-    ConfigError
-        If text is not a string, has no or an unknown unit, or is zero.
-
-    Examples
-    --------
-    >>> parse_duration("250ms", "x"), parse_duration("1.5s", "x"), parse_duration("2h", "x")
-    (0.25, 1.5, 7200.0)
-    """
-    if isinstance(text, bool) or not isinstance(text, str):
-        hint = f'; write it with a unit, e.g. "{text}s"' if isinstance(text, (int, float)) \
-            and not isinstance(text, bool) else ""
-        raise ConfigError(key, text, f"is not a duration string{hint}")
-    m = _DURATION.fullmatch(text)
-    if m is None:
-        raise ConfigError(key, text, "is not a duration (a number and a unit: "
-                          'ms, s, m, h or d, e.g. "250ms", "30s", "5m")')
-    seconds = float(m.group(1)) * _UNITS[m.group(2)]
-    if not (math.isfinite(seconds) and seconds > 0):
-        raise ConfigError(key, text, "must be longer than zero")
-    return seconds
-
-
-def parse_half_life(text: str, key: str) -> HalfLife:
-    """A half-life in event-time seconds (``"10m"``) or in observations (``"5000 obs"``).
-
-    Returns
-    -------
-    estimators.HalfLife
-
-    Raises
-    ------
-    ConfigError
-
-    Examples
-    --------
-    >>> parse_half_life("10m", "h"), parse_half_life("5000 obs", "h")
-    (HalfLife(length=600.0, unit='seconds'), HalfLife(length=5000.0, unit='observations'))
-    """
-    if isinstance(text, str):
-        m = _COUNT.fullmatch(text)
-        if m is not None:
-            count = float(m.group(1))
-            if count <= 0:
-                raise ConfigError(key, text, "must count more than zero observations")
-            return HalfLife(count, "observations")
-        if _DURATION.fullmatch(text) is None:
-            raise ConfigError(key, text, 'is not a half-life (a duration such as "10m" '
-                              'or a count such as "5000 obs")')
-    return HalfLife(parse_duration(text, key), "seconds")
-
-
-def split_host_port(text: object, key: str = "daemon.http",
-                    bind_any: bool = False) -> tuple[str, int]:
-    """``"host:port"`` or ``"[v6]:port"`` to (host, port); the one parser of both forms.
-
-    An empty host is refused; ``bind_any`` lets a ZeroMQ bind write ``*`` for the
-    port (returned as -1). A dotted-number host must be an IPv4 address (each octet
-    0-255).
-
-    Raises
-    ------
-    ConfigError
-        Naming ``key`` and the text.
-
-    Examples
-    --------
-    >>> split_host_port("[::1]:9410", "k"), split_host_port("localhost:0", "k")
-    (('::1', 9410), ('localhost', 0))
-    """
-    if not isinstance(text, str):
-        raise ConfigError(key, text, 'must be a "host:port" string')
-    if "://" in text:
-        raise ConfigError(key, text, 'must be "host:port" without a scheme, e.g. '
-                          '"127.0.0.1:9410" (HTTPS is turned on by tls_cert and tls_key)')
-    host, sep, port = text.rpartition(":")
-    star = bind_any and port == "*"
-    if not sep or not host or not (star or port.isdigit() and 0 <= int(port) <= 65535):
-        raise ConfigError(key, text, 'must be "host:port" with a port from 0 to 65535, '
-                          'e.g. "127.0.0.1:9410"')
-    if host.startswith("["):
-        if not host.endswith("]"):
-            raise ConfigError(key, text, "has an unclosed [ in its IPv6 address")
-        host = host[1:-1]
-        try:
-            ipaddress.IPv6Address(host)
-        except ValueError:
-            raise ConfigError(key, text, "has an invalid IPv6 address") from None
-    elif ":" in host:
-        raise ConfigError(key, text, 'must write an IPv6 address in brackets, e.g. "[::1]:9410"')
-    elif any(c.isspace() for c in host):
-        raise ConfigError(key, text, "has white space in its host")
-    elif _DOTTED.fullmatch(host):
-        try:
-            ipaddress.IPv4Address(host)
-        except ValueError:
-            raise ConfigError(key, text, "is not an IPv4 address (four numbers from 0 to "
-                              "255, e.g. 127.0.0.1)") from None
-    return host, -1 if star else int(port)
-
-
-def check_endpoint(text: object, key: str, binding: bool) -> str:
-    """A ZeroMQ endpoint's syntax: ``tcp://host:port``, ``ipc://path`` or ``inproc://name``.
-
-    Raises ConfigError naming ``key``; returns the text. Files and addresses are
-    checked against the host by :mod:`sigmad.daemon.config.host`.
-    """
-    if not isinstance(text, str):
-        raise ConfigError(key, text, "must be an endpoint string such as "
-                          '"tcp://127.0.0.1:7410"')
-    m = _ENDPOINT.fullmatch(text)
-    if m is None:
-        raise ConfigError(key, text, "must start with tcp://, ipc:// or inproc://, "
-                          'e.g. "tcp://127.0.0.1:7410"')
-    scheme, rest = m.groups()
-    if scheme == "tcp":
-        if ";" in rest:   # ZeroMQ's source-address form
-            raise ConfigError(key, text, 'must be "tcp://host:port" (no source address)')
-        try:
-            host, port = split_host_port(rest, key, bind_any=binding)
-        except ConfigError as exc:
-            raise ConfigError(key, text, exc.message) from None
-        if port == 0 or (host == "*" and not binding):
-            raise ConfigError(key, text, 'must be "tcp://host:port" with a port from 1 to '
-                              "65535" + (' (or "*")' if binding else "")
-                              + ("" if binding else " and a host to connect to"))
-    return text
 
 
 # --------------------------------------------------------------------------- table reader
@@ -481,10 +81,10 @@ class _Table:
 
     def raw(self, name: str, default: object = _SCHEMA, why: str = "it is required") -> Any:
         if default is _SCHEMA:
-            default = self.defaults.get(name, _MISSING)
+            default = self.defaults.get(name, MISSING)
         value = self.data.get(name, default)
-        if value is _MISSING:
-            raise ConfigError(self.key(name), _MISSING, why)
+        if value is MISSING:
+            raise ConfigError(self.key(name), MISSING, why)
         return value
 
     def string(self, name: str, default: object = _SCHEMA,
@@ -598,7 +198,7 @@ def _daemon(data: object) -> DaemonConfig:
     if (cfg.tls_cert is None) != (cfg.tls_key is None):
         present = "tls_cert" if cfg.tls_cert is not None else "tls_key"
         missing = "tls_key" if present == "tls_cert" else "tls_cert"
-        raise ConfigError(t.key(missing), _MISSING, f"{present} needs it too (HTTPS takes both)")
+        raise ConfigError(t.key(missing), MISSING, f"{present} needs it too (HTTPS takes both)")
     if cfg.tls_client_ca is not None and cfg.tls_cert is None:
         raise ConfigError(t.key("tls_client_ca"), cfg.tls_client_ca,
                           "needs tls_cert and tls_key (client certificates need HTTPS)")
@@ -633,7 +233,7 @@ def _source(data: object, path: str) -> SourceConfig:
     bind = _endpoints(t, "bind", True)
     connect = _endpoints(t, "connect", False)
     if bool(bind) == bool(connect):
-        raise ConfigError(t.key("bind"), list(bind) if bind else _MISSING,
+        raise ConfigError(t.key("bind"), list(bind) if bind else MISSING,
                           "a source needs bind or connect (one of the two)" if not bind else
                           "and connect cannot both be given: a source either binds or connects")
     if "topics" in t.data and socket == "pull":
@@ -777,7 +377,7 @@ def _mqtt_source(t: _Table) -> SourceConfig:
     if (files["tls_cert"] is None) != (files["tls_key"] is None):
         present = "tls_cert" if files["tls_cert"] is not None else "tls_key"
         missing = "tls_key" if present == "tls_cert" else "tls_cert"
-        raise ConfigError(t.key(missing), _MISSING, f"{present} needs it too (a client "
+        raise ConfigError(t.key(missing), MISSING, f"{present} needs it too (a client "
                           "certificate takes both)")
     mqtt = MqttConfig(host=host, port=port, tls=tls, client_id=client_id,
                       qos=_mqtt_qos(t), shared_group=group, username=username,
@@ -1062,13 +662,13 @@ def _build(data: dict) -> Config:
         t = _Table(data["publish"], "publish", PublishConfig)
         bind = _endpoints(t, "bind", True)
         if not bind:
-            raise ConfigError("publish.bind", _MISSING, "a [publish] table needs an endpoint")
+            raise ConfigError("publish.bind", MISSING, "a [publish] table needs an endpoint")
         publish = PublishConfig(bind=bind, every=t.duration("every"))
     if "merge" in data:
         t = _Table(data["merge"], "merge", MergeConfig)
         connect = _endpoints(t, "connect", False)
         if not connect:
-            raise ConfigError("merge.connect", _MISSING, "a [merge] table needs endpoints")
+            raise ConfigError("merge.connect", MISSING, "a [merge] table needs endpoints")
         merge = MergeConfig(connect=connect, shard_expiry=t.duration("shard_expiry"))
 
     feed = None
@@ -1076,15 +676,15 @@ def _build(data: dict) -> Config:
         t = _Table(data["feed"], "feed", FeedConfig)
         bind = _endpoints(t, "bind", True)
         if not bind:
-            raise ConfigError("feed.bind", _MISSING, "a [feed] table needs an endpoint")
+            raise ConfigError("feed.bind", MISSING, "a [feed] table needs an endpoint")
         feed = FeedConfig(bind=bind)
     if not sources and merge is None:
-        raise ConfigError("source", _MISSING, "add a [[source]] (or a [merge] table) so the "
+        raise ConfigError("source", MISSING, "add a [[source]] (or a [merge] table) so the "
                           "daemon has something to read")
     if sources and not streams:
-        raise ConfigError("stream", _MISSING, "add a [[stream]] so messages have somewhere to go")
+        raise ConfigError("stream", MISSING, "add a [[stream]] so messages have somewhere to go")
     if merge is not None and not streams:
-        raise ConfigError("stream", _MISSING, "a merger reads shard states through its "
+        raise ConfigError("stream", MISSING, "a merger reads shard states through its "
                           "[[stream]] tables: copy the shards' [[stream]] tables here")
     seen: dict[str, int] = {}
     for i, s in enumerate(streams):
@@ -1229,115 +829,3 @@ def default_config() -> Config:
     """The embedded default configuration (``daemon/config/default.toml``)."""
     text = resources.files(__package__).joinpath("default.toml").read_text(encoding="utf-8")
     return parse_config(text, "<embedded default.toml>")
-
-
-def _show_duration(seconds: float) -> str:
-    for unit, size in (("d", 86400.0), ("h", 3600.0), ("m", 60.0), ("s", 1.0)):
-        if seconds >= size and (seconds / size).is_integer():
-            return f"{int(seconds / size)}{unit}"
-    return f"{seconds * 1000:g}ms" if seconds < 1 else f"{seconds:g}s"
-
-
-def _show_half_life(h: HalfLife | None) -> str:
-    if h is None:
-        return "none (no forgetting)"
-    if h.by_count:
-        return f"{h.length:g} observations"
-    return f"{_show_duration(h.length)} of event time"
-
-
-def describe(config: Config) -> str:
-    """A human summary of what the daemon would run (``sigmad validate`` prints it).
-
-    Examples
-    --------
-    >>> print(describe(default_config()).splitlines()[0])
-    configuration <embedded default.toml>
-    """
-    d = config.daemon
-    lines = [f"configuration {config.origin}",
-             f"  http        {'https' if d.tls_cert else 'http'}://{d.http}/metrics"
-             + (" (client certificates required)" if d.tls_client_ca else ""),
-             "  state file  " + (f"{d.state_file}, checkpoint every "
-                                 f"{_show_duration(d.checkpoint_every)}"
-                                 if d.state_file else "none (estimates are not persisted)"),
-             f"  limits      messages <= {d.max_message_bytes} bytes, <= {d.max_batch_rows} "
-             f"rows; flush every {_show_duration(d.flush_every)}; event times within "
-             f"{_show_duration(d.max_clock_skew)} of arrival"]
-    lines.append(f"sources ({len(config.sources)})")
-    for s in config.sources:
-        if s.mqtt is not None:
-            m = s.mqtt
-            session = (f"session {m.client_id!r} kept {_show_duration(m.session_expiry)}"
-                       if m.client_id else "no persistent session (no client_id)")
-            group = f" shared group {m.shared_group!r}" if m.shared_group else ""
-            lines.append(f"  mqtt connect {s.connect[0]} topics {', '.join(s.topics)} "
-                         f"qos {m.qos}{group}; {session}")
-            continue
-        how = "bind" if s.bind else "connect"
-        extra = ""
-        if s.socket == "sub":
-            extra = " topics " + ("(everything)" if s.topics == ("",) else
-                                  ", ".join(repr(p) for p in s.topics))
-        if s.curve_secret:
-            extra += " curve " + (f"allow {s.curve_allow}" if s.curve_allow else "any client")
-        lines.append(f"  {s.socket:4} {how} {', '.join(s.endpoints)}{extra}")
-    lines.append(f"streams ({len(config.streams)})")
-    for st in config.streams:
-        labels = ", ".join(st.topic.labels) or "none"
-        topics = ", ".join(repr(tpl.text) for tpl in st.templates)
-        lines.append(f"  {st.name}: {'topics' if st.legs else 'topic'} {topics} "
-                     f"(labels: {labels})")
-        lines.append(f"    fields      {', '.join(st.fields)} (d = {st.dim})")
-        lines.append(f"    half-life   {_show_half_life(st.half_life)}; "
-                     f"correction {st.correction}")
-        estimates = ["moments"]
-        if st.dim > 1:
-            estimates.append("covariance/correlation")
-        if st.mixture:
-            m = st.mixture
-            estimates.append(f"mixture K={m.components} {m.covariance}"
-                             + (" on log values" if m.log else ""))
-        if st.regression:
-            r = st.regression
-            estimates.append(f"regression {r.y} ~ " + " + ".join(
-                (["intercept"] if r.intercept else []) + list(r.x)))
-        lines.append(f"    estimates   {'; '.join(estimates)}")
-        source = "mixture" if st.mixture else "normal model"
-        lines.append("    quantiles   " + (f"{', '.join(f'{q:g}' for q in st.quantiles)} "
-                                         f"(from the {source})" if st.quantiles else "none"))
-        for name, bounds in zip(st.fields, st.thresholds, strict=False):
-            if bounds:
-                lines.append(f"    thresholds  {name} > {', '.join(f'{b:g}' for b in bounds)}"
-                             " (histogram bounds, exceedance shares)")
-        if st.outlier_sigmas:
-            lines.append(f"    outliers    beyond {', '.join(f'{s:g}' for s in st.outlier_sigmas)}"
-                         f" sigma, after {st.outlier_warmup} observations")
-        if st.legs:
-            lines.append("    legs        " + ", ".join(f"{f} <- {tpl.text!r}"
-                                                        for f, tpl in st.legs)
-                         + (f"; a leg older than {_show_duration(st.max_leg_age)} forms no row"
-                            if st.max_leg_age else ""))
-        if st.transform:
-            lines.append("    transform   " + ", ".join(f"{f} -> {k}" for f, k in st.transform)
-                         + (f"; volatility per {_show_duration(st.volatility_unit)}"
-                            if st.volatility_unit else ""))
-        if st.session_reset:
-            lines.append(f"    sessions    reset daily at {st.session_reset.text}, closing "
-                         "values exported")
-        if st.limits:
-            lines.append("    limits      " + ", ".join(
-                f"{f} in [{lo:g}, {hi:g}]" for f, (lo, hi) in zip(st.fields, st.limits,
-                                                                 strict=True)
-                if (lo, hi) != (-math.inf, math.inf)))
-        expiry = _show_duration(st.idle_expiry) if st.idle_expiry else "never"
-        lines.append(f"    series      at most {st.max_series}; idle expiry {expiry}")
-    if config.publish:
-        lines.append(f"publish snapshots on {', '.join(config.publish.bind)} every "
-                     f"{_show_duration(config.publish.every)}")
-    if config.feed:
-        lines.append(f"push estimates on {', '.join(config.feed.bind)} after every flush")
-    if config.merge:
-        lines.append(f"merge snapshots from {', '.join(config.merge.connect)}; shards expire "
-                     f"after {_show_duration(config.merge.shard_expiry)}")
-    return "\n".join(lines)

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from itertools import compress
 
 import numpy as np
-from sigmad.daemon.config.load import Config, StreamConfig
+from sigmad.daemon.config.schema import Config, StreamConfig
 from sigmad.daemon.engine.snapshot import (
     Health,
     LevelsView,

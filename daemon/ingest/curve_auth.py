@@ -21,7 +21,8 @@ from collections.abc import Callable, Iterable
 import zmq
 import zmq.auth
 from prometheus_client.core import CounterMetricFamily
-from sigmad.daemon.config.load import ConfigError, SourceConfig
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.schema import SourceConfig
 from sigmad.daemon.ingest.curve_keys import load_server_keys
 from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message

@@ -6,7 +6,7 @@ import os
 from pathlib import Path
 
 import zmq.auth
-from sigmad.daemon.config.load import ConfigError
+from sigmad.daemon.config.errors import ConfigError
 
 
 def keygen(directory: str | os.PathLike, name: str = "sigmad") -> tuple[Path, Path]:

@@ -45,7 +45,8 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.subscribeoptions import SubscribeOptions
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
-from sigmad.daemon.config.load import ConfigError, SourceConfig
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.schema import SourceConfig
 from sigmad.daemon.ingest.payloads import is_msgpack_map, to_body
 from sigmad.daemon.ingest.wire import WireError
 

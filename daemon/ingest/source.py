@@ -5,7 +5,8 @@ from __future__ import annotations
 import errno
 
 import zmq
-from sigmad.daemon.config.load import ConfigError, SourceConfig
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.schema import SourceConfig
 
 # A socket is drained until empty, this many messages or this many frame bytes, so
 # that one busy source cannot starve the others or grow a flush without bound.

@@ -18,7 +18,8 @@ from collections.abc import Callable
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
 from prometheus_client import CONTENT_TYPE_LATEST
-from sigmad.daemon.config.load import ConfigError, split_host_port
+from sigmad.daemon.config.errors import ConfigError
+from sigmad.daemon.config.units import split_host_port
 
 log = logging.getLogger("sigmad.http")
 
