@@ -28,7 +28,7 @@ import warnings
 from collections.abc import Callable
 
 import numpy as np
-from sigmad.estimators.mixture import Mixture
+from sigmad.estimators import Mixture
 
 CONFIGS = ((3, 1), (4, 4))
 BATCH = 1_000

@@ -12,7 +12,7 @@ import argparse
 import time
 
 import numpy as np
-from sigmad.estimators.moments import Moments
+from sigmad.estimators import Moments
 
 
 def _best(fn, repeat: int) -> float:

@@ -17,8 +17,7 @@ import argparse
 import time
 
 import numpy as np
-from sigmad.estimators.forgetting import HalfLife
-from sigmad.estimators.regression import Regression
+from sigmad.estimators import HalfLife, Regression
 
 
 def best_of(repeats: int, run) -> float:

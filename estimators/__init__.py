@@ -5,6 +5,7 @@ times=None)`` on batches, ``merge(other)``, ``decay_to(t)``,
 ``to_dict()``/``from_dict()`` and named read-outs.
 """
 
+from .curves import ellipse, line_band, mixture_density, normal_density, normal_tail_rate
 from .errors import (
     DomainError,
     EstimatorError,
@@ -15,13 +16,16 @@ from .errors import (
     TimeError,
     WeightError,
 )
-from .forgetting import HalfLife
+from .forgetting import HalfLife, sums_at
 from .legs import Joined, Legs
 from .mixture import Mixture
+from .model_tail import nominal_rate, outlier_counts
 from .moments import CORRECTIONS, Moments
+from .moments_columns import MomentsColumns, blob, from_blob
 from .regression import Regression
 from .returns import TRANSFORMS, Returns, Stepped
-from .validation import check_batch, clean_batch
+from .thresholds import Thresholds, mixture_exceedance, normal_exceedance
+from .validation import check_batch, clean_batch, limit_batch, screen_batch
 from .volatility import Volatility
 
 __all__ = [
@@ -34,6 +38,7 @@ __all__ = [
     "Legs",
     "Mixture",
     "Moments",
+    "MomentsColumns",
     "NonFiniteError",
     "RangeError",
     "Regression",
@@ -41,9 +46,24 @@ __all__ = [
     "ShapeError",
     "Stepped",
     "TRANSFORMS",
+    "Thresholds",
     "TimeError",
     "Volatility",
     "WeightError",
+    "blob",
     "check_batch",
     "clean_batch",
+    "ellipse",
+    "from_blob",
+    "limit_batch",
+    "line_band",
+    "mixture_density",
+    "mixture_exceedance",
+    "nominal_rate",
+    "normal_density",
+    "normal_exceedance",
+    "normal_tail_rate",
+    "outlier_counts",
+    "screen_batch",
+    "sums_at",
 ]

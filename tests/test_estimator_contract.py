@@ -25,3 +25,23 @@ def test_merge_means_the_same_in_every_estimator(make):
     assert a.merge(b) is a
     assert a.weight_sum == pytest.approx(w_a + w_b, rel=1e-15)
     assert msgpack.packb(b.to_dict()) == msgpack.packb(before)
+
+
+def test_the_daemon_uses_only_what_the_estimators_export():
+    # STYLE.md: the public API is __all__ and nothing else; the shell reaches only into it
+    import ast
+    from pathlib import Path
+
+    import sigmad.estimators
+
+    root = Path(__file__).resolve().parent.parent / "daemon"
+    seen = 0
+    for path in root.rglob("*.py"):
+        for node in ast.walk(ast.parse(path.read_text())):
+            if isinstance(node, ast.ImportFrom) and (node.module or "").startswith(
+                    "sigmad.estimators"):
+                assert node.module == "sigmad.estimators", (path.name, node.module)
+                for alias in node.names:
+                    assert alias.name in sigmad.estimators.__all__, (path.name, alias.name)
+                    seen += 1
+    assert seen > 10   # the daemon does use the estimators

@@ -33,11 +33,15 @@ from sigmad.estimators import (
     Moments,
     Regression,
     Returns,
+    Thresholds,
     Volatility,
+    limit_batch,
+    mixture_exceedance,
+    nominal_rate,
+    normal_exceedance,
+    outlier_counts,
+    screen_batch,
 )
-from sigmad.estimators.model_tail import nominal_rate, outlier_counts
-from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
-from sigmad.estimators.validation import limit_batch, screen_batch
 
 log = logging.getLogger("sigmad.engine")
 

@@ -10,8 +10,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-from sigmad.estimators import HalfLife
-from sigmad.estimators.forgetting import sums_at
+from sigmad.estimators import HalfLife, sums_at
 
 
 @dataclass(frozen=True, slots=True)

@@ -471,8 +471,7 @@ def describe_checkpoint(cp: Checkpoint, path: str | os.PathLike) -> str:
 def _describe_series(d: dict, corrections: dict) -> list[str]:
     """The lines of one series of ``describe_checkpoint``; a state that cannot be read
     (a damaged file) is named, never raised."""
-    from sigmad.estimators import Mixture, Moments, Regression
-    from sigmad.estimators.thresholds import Thresholds
+    from sigmad.estimators import Mixture, Moments, Regression, Thresholds
 
     name = d.get("stream")
     labels = d.get("labels") or []

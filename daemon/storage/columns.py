@@ -27,8 +27,14 @@ from sigmad.daemon.engine.engine import (
 )
 from sigmad.daemon.engine.snapshot import SeriesView
 from sigmad.daemon.ingest.topics import series_text
-from sigmad.estimators import IncompatibleError, Mixture, Regression
-from sigmad.estimators.moments_columns import MomentsColumns, blob, from_blob
+from sigmad.estimators import (
+    IncompatibleError,
+    Mixture,
+    MomentsColumns,
+    Regression,
+    blob,
+    from_blob,
+)
 
 _LE_F8 = np.dtype("<f8")
 _LE_I8 = np.dtype("<i8")

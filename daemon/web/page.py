@@ -18,7 +18,7 @@ from sigmad.daemon.engine.snapshot import SeriesView, Snapshot
 from sigmad.daemon.web.history import History
 from sigmad.daemon.web.plots import COMPONENTS, TOTAL, series_figure
 from sigmad.daemon.web.svg import esc, num, sparkline
-from sigmad.estimators.curves import normal_tail_rate
+from sigmad.estimators import normal_tail_rate
 
 REFRESH = 5          # seconds between reloads
 LIMIT = 30           # series cards per page

@@ -31,7 +31,7 @@ from sigmad.daemon.web.svg import (
     xaxis,
     yaxis,
 )
-from sigmad.estimators.curves import ellipse, line_band, mixture_density, normal_density
+from sigmad.estimators import ellipse, line_band, mixture_density, normal_density
 
 W, H = 400, 180
 LEFT, RIGHT, TOP, BOTTOM = 44, 12, 18, 34
