@@ -134,11 +134,6 @@ class RunningDaemon:
         self._get("/")
         self._get("/api/state")
 
-    def scrape_seconds(self) -> float:
-        t0 = time.perf_counter()
-        self._get("/metrics")
-        return time.perf_counter() - t0
-
     def rss(self) -> int:
         return rss_of(self.proc.pid)
 

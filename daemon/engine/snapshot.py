@@ -152,9 +152,3 @@ class Snapshot:
     health: Health = field(default_factory=Health)
     # per stream with sessions: (stream, boundary unix seconds, read-outs at the close)
     closed: tuple[tuple[str, float, tuple[SeriesView, ...]], ...] = ()
-
-    def by_stream(self) -> dict[str, list[SeriesView]]:
-        out: dict[str, list[SeriesView]] = {}
-        for view in self.series.values():
-            out.setdefault(view.stream, []).append(view)
-        return out
