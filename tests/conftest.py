@@ -79,3 +79,15 @@ thresholds = { a = [0.0] }
 def latency_and_pair() -> str:
     """TOML of :data:`LATENCY_AND_PAIR` (never bound: the tests drive the engine directly)."""
     return LATENCY_AND_PAIR
+
+
+#: The head of an end-to-end configuration: the harness's HTTP port ("{HTTP}"), quick
+#: flushes, and one PULL source on the port the test passes as ``%(pull)d``.
+PULL_DAEMON = """[daemon]
+http = "{HTTP}"
+flush_every = "20ms"
+
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:%(pull)d"
+"""

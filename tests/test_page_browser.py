@@ -13,7 +13,7 @@ import xml.etree.ElementTree as ET
 import numpy as np
 import pytest
 from browser import console_messages, run_chromium
-from conftest import need_binary
+from conftest import PULL_DAEMON, need_binary
 from harness import Sigmad, free_port, scrape
 from sigmad.daemon.client import Producer
 
@@ -54,14 +54,7 @@ def test_console_check_catches_a_script_error(broken_server):
     assert any("Uncaught ReferenceError" in m and "notDefinedAnywhere" in m for m in found)
 
 
-CONFIG = """
-[daemon]
-http = "{HTTP}"
-flush_every = "20ms"
-
-[[source]]
-socket = "pull"
-bind = "tcp://127.0.0.1:%(pull)d"
+CONFIG = PULL_DAEMON + """
 
 [[stream]]
 name = "lat"

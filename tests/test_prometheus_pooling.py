@@ -13,21 +13,14 @@ import time
 import numpy as np
 import pytest
 import zmq
-from conftest import need_binary
+from conftest import PULL_DAEMON, need_binary
 from fleet import Prometheus, fan_out, start_shards, stop_all, wait_total
 from harness import Sigmad, free_port, value
 from sigmad.daemon.ingest.wire import encode
 
 pytestmark = pytest.mark.slow   # a real Prometheus
 
-CONFIG = """
-[daemon]
-http = "{HTTP}"
-flush_every = "20ms"
-
-[[source]]
-socket = "pull"
-bind = "tcp://127.0.0.1:%(pull)d"
+CONFIG = PULL_DAEMON + """
 
 [[stream]]
 name = "lat"

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import need_binary
+from conftest import PULL_DAEMON, need_binary
 from fleet import Prometheus, fan_out, start_shards, stop_all, wait_total
 from sigmad.daemon.ingest.wire import encode
 
@@ -19,14 +19,7 @@ pytestmark = pytest.mark.slow   # a real Prometheus
 
 SLO_RULES = Path(__file__).resolve().parent.parent / "configs" / "prometheus" \
     / "sigmad-slo.rules.yml"
-CONFIG = """
-[daemon]
-http = "{HTTP}"
-flush_every = "20ms"
-
-[[source]]
-socket = "pull"
-bind = "tcp://127.0.0.1:%(pull)d"
+CONFIG = PULL_DAEMON + """
 
 [[stream]]
 name = "request_latency"

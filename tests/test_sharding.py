@@ -15,6 +15,7 @@ import time
 
 import numpy as np
 import pytest
+from conftest import PULL_DAEMON
 from fleet import fan_out, start_shards, stop_all, total, wait_total
 from harness import Sigmad, free_port, value
 from sigmad.daemon.client import Producer
@@ -71,15 +72,7 @@ def test_topic_prefix_sharding_puts_each_series_on_one_daemon(tmp_path):
         stop_all([eu, us])
 
 
-PULL = """
-[daemon]
-http = "{HTTP}"
-flush_every = "20ms"
-
-[[source]]
-socket = "pull"
-bind = "tcp://127.0.0.1:%(pull)d"
-""" + STREAM
+PULL = PULL_DAEMON + "\n" + STREAM
 
 
 def test_push_fan_out_deals_every_message_to_exactly_one_daemon(tmp_path):
