@@ -180,6 +180,22 @@ def take_batch(state, n: int, times: np.ndarray | None,
     return rf if weights is None else weights * rf
 
 
+
+def merge_clocks(state, other):
+    """Bring ``other`` to ``state``'s footing before the two are pooled, and count its
+    rows in: a copy of ``other`` aged to the later clock (``state`` is aged too); with
+    count-based forgetting each is taken as of its own latest row and the clocks add.
+    Returns the aged copy; ``other`` itself is not changed. O(state)."""
+    o = other.copy()
+    if state.half_life is not None and state.half_life.by_count:
+        state.clock = (state.clock or 0.0) + (o.clock or 0.0)
+    elif o.clock is not None:
+        state.decay_to(o.clock)
+        o.decay_to(state.clock)
+    state.count += o.count
+    return o
+
+
 def age_to(state, t: float) -> None:
     """Age ``state`` (the shape ``take_batch`` describes) to event time t, never
     backwards. Count-based forgetting and none do not move with time. O(state)."""

@@ -15,6 +15,7 @@ from .forgetting import (
     age_to,
     batch_exponent,
     ldexp,
+    merge_clocks,
     rescale_exponent,
     scale_step,
     take_batch,
@@ -256,13 +257,7 @@ class Moments:
                 or other.half_life != self.half_life:
             raise IncompatibleError("other", getattr(other, "dim", other),
                                     "must be Moments of the same dimension and half-life")
-        o = other.copy()
-        if self.half_life is not None and self.half_life.by_count:
-            self.clock = (self.clock or 0.0) + (o.clock or 0.0)
-        elif o.clock is not None:
-            self.decay_to(o.clock)
-            o.decay_to(self.clock)
-        self.count += o.count
+        o = merge_clocks(self, other)
         if o.W > 0.0:
             self._combine(o.W, o.W2, o._mean, o._lo, o._scatter, o.E)
         return self

@@ -13,6 +13,7 @@ from .forgetting import (
     age_to,
     batch_exponent,
     ldexp,
+    merge_clocks,
     rescale_exponent,
     scale_step,
     take_batch,
@@ -248,13 +249,7 @@ class Regression:
                 or other.half_life != self.half_life:
             raise IncompatibleError("other", getattr(other, "p", other),
                                     "must be a Regression of the same p, intercept and half-life")
-        o = other.copy()
-        if self.half_life is not None and self.half_life.by_count:
-            self.clock = (self.clock or 0.0) + (o.clock or 0.0)
-        elif o.clock is not None:
-            self.decay_to(o.clock)
-            o.decay_to(self.clock)
-        self.count += o.count
+        o = merge_clocks(self, other)
         self._fit = None
         if o.W > 0.0:
             self._add(o._R, o.W, o.W2, o.E)

@@ -20,7 +20,7 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, age_to, take_batch
+from .forgetting import HalfLife, age_to, merge_clocks, take_batch
 from .validation import check_batch, check_saved
 
 __all__ = ["Thresholds", "mixture_exceedance", "normal_exceedance"]
@@ -148,13 +148,7 @@ class Thresholds:
                 or not np.array_equal(other.bounds, self.bounds):
             raise IncompatibleError("other", getattr(other, "bounds", other),
                                     "must be Thresholds of the same bounds and half-life")
-        o = other.copy()
-        if self.half_life is not None and self.half_life.by_count:
-            self.clock = (self.clock or 0.0) + (o.clock or 0.0)
-        elif o.clock is not None:
-            self.decay_to(o.clock)
-            o.decay_to(self.clock)
-        self.count += o.count
+        o = merge_clocks(self, other)
         self._cumulative = self._cumulative + o._cumulative
         self.value_sum += o.value_sum
         self.W += o.W
