@@ -277,3 +277,25 @@ def test_series_beyond_max_series_are_refused_in_order_of_first_arrival():
     one, many = _feed_both([drain, drain])
     _assert_same(one, many)
     assert one.rejected["series_limit"] == 32   # a.3 and a.4: 8 messages each, twice
+
+
+def test_a_full_table_keeps_the_layouts_in_use_and_drops_the_rest(monkeypatch):
+    # issue 15: caches keyed by sender bytes are bounded in bytes and evict the least
+    # recently used; a flood of one-off layouts must not cost a busy producer its layout
+    import sigmad.daemon.ingest.layouts as layouts_module
+
+    monkeypatch.setattr(layouts_module, "_TABLE_LIMIT", 50)
+    table = LayoutTable(1)
+    hot = encode({"v": 1.0}, source="busy", seq=7)
+    table.add(b"hot", learn(hot, ("v",), 64), "route")
+    for i in range(500):                     # one-off topics, each a layout of its own
+        cold = encode({"v": float(i)}, source="flood")
+        table.add(b"cold.%d" % i, learn(cold, ("v",), 64), "route")
+        if i % 10 == 0:                      # the busy producer sends now and then
+            row = table.find((b"hot",), np.array([len(hot)]))
+            assert row[0] >= 0, i           # ...and always finds its layout
+            assert table.read(len(hot), row, [hot]).ok.tolist() == [True]
+    assert len(table) <= 50
+    # a layout not used since the table last filled is gone
+    first = encode({"v": 0.0}, source="flood")
+    assert table.find((b"cold.0",), np.array([len(first)]))[0] == -1

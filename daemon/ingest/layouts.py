@@ -43,7 +43,7 @@ _SIGNED_VIEW = {I1: np.int8, I2: np.int16, I4: np.int32, I8: np.int64, FIXNEG: n
 _UNSIGNED_VIEW = {I1: np.uint8, I2: np.uint16, I4: np.uint32, I8: np.uint64,
                   FIXNEG: np.uint8}
 _MAX_DEPTH = 32          # nesting accepted inside ignored keys
-_TABLE_LIMIT = 65_536    # layouts kept before the table starts afresh
+_TABLE_LIMIT = 65_536    # layouts kept; a full table keeps only those used since it last filled
 _TABLE_BYTES = 16 << 20  # ... or bytes of layouts (each keeps its fixed bytes and mask)
 
 
@@ -357,6 +357,11 @@ class LayoutTable:
         self._source_ids: dict[str, int] = {}
         self._keys = self._values = np.zeros(0, np.int64)   # _rows, sorted, for numpy
         self._bytes = 0                     # fixed bytes and masks kept, forgotten included
+        # what each kept layout was added with, and whether it was found since the table
+        # last filled: a full table keeps those (least recently used go first)
+        self._added: dict[int, tuple[bytes, Layout, object]] = {}
+        self._used: set[int] = set()        # keys found, from earlier sorted arrays
+        self._hits = np.zeros(0, bool)      # found, beside the sorted keys (no Python per hit)
 
     def __len__(self) -> int:
         return len(self._rows)
@@ -366,9 +371,9 @@ class LayoutTable:
         Amortised O(len(layout) + layouts kept), as the lookup arrays are rebuilt."""
         length = len(layout.fixed)
         if (sum(g.n for g in self._groups.values()) >= _TABLE_LIMIT
-                or self._bytes + 2 * length > _TABLE_BYTES):
-            self.__init__(self.width)    # type: ignore[misc]   # bounded: relearn what recurs
-        self._bytes += 2 * length
+                or self._bytes + 3 * length > _TABLE_BYTES):
+            self._keep_used()
+        self._bytes += 3 * length   # its fixed bytes and mask, and the Layout kept to re-add
         group = self._groups.get(length)
         if group is None:
             group = self._groups[length] = _Group(length, self.width + 3)
@@ -384,14 +389,38 @@ class LayoutTable:
             if source_id == len(self.sources):
                 self.sources.append(layout.source)
         topic_id = self._topic_ids.setdefault(topic, len(self._topic_ids))
-        self._rows[topic_id << 32 | length] = group.add(layout, slots, route_id, source_id)
-        self._keys = None
+        key = topic_id << 32 | length
+        self._rows[key] = group.add(layout, slots, route_id, source_id)
+        self._added[key] = (topic, layout, route)
+        self._stale()
+
+    def _keep_used(self) -> None:
+        """Start the table afresh with only the layouts found since it last filled (all
+        of them dropped when those alone would fill it). O(layouts kept)."""
+        self._fold_hits()
+        kept = [self._added[k] for k in self._used if k in self._rows]
+        self.__init__(self.width)    # type: ignore[misc]
+        if kept and sum(3 * len(layout.fixed) for _, layout, _ in kept) * 2 <= _TABLE_BYTES \
+                and len(kept) * 2 <= _TABLE_LIMIT:
+            for topic, layout, route in kept:
+                self.add(topic, layout, route)
 
     def forget(self, topic: bytes, length: int) -> None:
         """Drop the layout of ``topic`` at ``length`` (the next body of it is learnt anew)."""
         topic_id = self._topic_ids.get(topic)
         if topic_id is not None and self._rows.pop(topic_id << 32 | length, None) is not None:
-            self._keys = None
+            self._added.pop(topic_id << 32 | length, None)
+            self._stale()
+
+    def _fold_hits(self) -> None:
+        if self._keys is not None and self._hits.any():
+            self._used.update(self._keys[self._hits].tolist())
+            self._hits[:] = False
+
+    def _stale(self) -> None:
+        """The sorted arrays no longer match the kept layouts: keep what they found."""
+        self._fold_hits()
+        self._keys = None
 
     def find(self, topics: tuple[bytes, ...], lengths: np.ndarray) -> np.ndarray:
         """Each message's layout row in its length's group, -1 for none. O(n log L)."""
@@ -400,12 +429,15 @@ class LayoutTable:
             order = np.argsort(keys)
             self._keys = keys[order]
             self._values = np.fromiter(self._rows.values(), np.int64, len(self._rows))[order]
+            self._hits = np.zeros(self._keys.size, bool)
         if not self._keys.size:
             return np.full(lengths.shape[0], -1, np.int64)
         ids = np.fromiter(map(self._topic_ids.get, topics, repeat(-1)), np.int64, len(topics))
         code = ids << 32 | lengths
         at = np.minimum(np.searchsorted(self._keys, code), self._keys.size - 1)
-        return np.where((self._keys[at] == code) & (ids >= 0), self._values[at], -1)
+        hit = (self._keys[at] == code) & (ids >= 0)
+        self._hits[at[hit]] = True
+        return np.where(hit, self._values[at], -1)
 
     def read(self, length: int, rows: np.ndarray, bodies: list[bytes]) -> Readout:
         """Check ``bodies`` (each ``length`` bytes, with layout rows ``rows`` of that
