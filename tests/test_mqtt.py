@@ -302,31 +302,40 @@ def test_two_daemons_in_one_shared_group_split_the_load_and_pool_to_the_whole(
     group = 'shared_group = "sigmad"'
     a = start(tmp_path, config(broker.url, "gw-a", extra_source=group), broker.url, "a.toml")
     b = start(tmp_path, config(broker.url, "gw-b", extra_source=group), broker.url, "b.toml")
+    whole = start(tmp_path, config(broker.url, "gw-whole"), broker.url, "whole.toml")
     try:
         xs = np.random.default_rng(3).gamma(2.0, 3.0, size=400)
         for x in xs:
             publisher.send("tank/south/level", repr(float(x)))
         wait_until(lambda: observations(a, "level", tank="south")
                    + observations(b, "level", tank="south") >= 400, what="all 400")
-        pa, pb = a.metrics(), b.metrics()
+        wait_until(lambda: observations(whole, "level", tank="south") >= 400,
+                   what="all 400 at the daemon outside the group")
+        lab = dict(stream="level", tank="south")
         parts = []
-        for p in (pa, pb):
-            lab = dict(stream="level", tank="south")
+        for p in (a.metrics(), b.metrics(), whole.metrics()):
             parts.append((value(p, "sigmad_observations_total", **lab),
                           value(p, "sigmad_weight", **lab),
+                          value(p, "sigmad_weight_squared", **lab),
                           value(p, "sigmad_mean", field="cm", **lab),
                           value(p, "sigmad_scatter", field="cm", **lab)))
-        (na, wa, ma, sa), (nb, wb, mb, sb) = parts
+        (na, wa, qa, ma, sa), (nb, wb, qb, mb, sb), (nw, ww, qw, mw, sw) = parts
         assert na + nb == 400 and na > 0 and nb > 0   # each took part, none twice
-        # pooled as the recording rules do (Chan, Golub & LeVeque 1983 pairwise update)
+        # pooled as configs/prometheus/sigmad-pooling.rules.yml does (Chan, Golub &
+        # LeVeque 1983 pairwise update), against one daemon that saw every reading
         w = wa + wb
         mean = (wa * ma + wb * mb) / w
-        scatter = sa + sb + wa * wb / w * (ma - mb) ** 2
+        scatter = sa + wa * (ma - mean) ** 2 + sb + wb * (mb - mean) ** 2
+        assert nw == 400
+        assert w == pytest.approx(ww, rel=1e-12) and qa + qb == pytest.approx(qw, rel=1e-12)
+        assert mean == pytest.approx(mw, rel=1e-12)
+        assert scatter == pytest.approx(sw, rel=1e-9)
         assert mean == pytest.approx(np.mean(xs), rel=1e-12)                  # numpy.mean
         assert scatter / (w - 1) == pytest.approx(np.var(xs, ddof=1), rel=1e-9)  # numpy.var
     finally:
         a.stop()
         b.stop()
+        whole.stop()
 
 
 def test_a_restarted_broker_is_reconnected_and_resubscribed(tmp_path, broker):
