@@ -55,7 +55,9 @@ table{border-collapse:collapse;width:100%;font-size:13px;font-variant-numeric:ta
 th{text-align:left;color:var(--muted);font-weight:500;font-size:11px;
 border-bottom:1px solid var(--line)}
 td{padding:3px 6px 3px 0;vertical-align:middle}
-td.big{font-size:14px;font-weight:600;white-space:nowrap}
+td.big{font-size:14px;font-weight:600}
+td.big span{white-space:nowrap}
+td svg{max-width:100%;height:auto}
 .q{display:block;white-space:nowrap;font-size:12px}
 .up{color:var(--amber)}.calm{color:var(--muted)}
 .extra{font-size:12px;color:var(--ink);margin:6px 0}
@@ -117,7 +119,8 @@ def _field_rows(v: SeriesView, points, shifts: list[float]) -> str:
             f'<tr class="field" data-field="{esc(f)}">'
             f'<td>{esc(f)}</td>'
             f'<td class="big"><span class="mean" data-value="{v.mean[i]!r}">{num(v.mean[i])}'
-            f'</span> ± <span class="sd" data-value="{v.stddev[i]!r}">{num(v.stddev[i])}</span>'
+            f'</span> <span>± <span class="sd" data-value="{v.stddev[i]!r}">'
+            f'{num(v.stddev[i])}</span></span>'
             f'</td><td>{qs or "–"}</td><td>{spark}</td><td class="{cls}">{shift}</td></tr>')
     return ("<table><thead><tr><th>field</th><th>mean ± σ</th><th>quantiles</th>"
             "<th>mean, recent</th><th>drift</th></tr></thead><tbody>"

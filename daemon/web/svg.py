@@ -117,9 +117,14 @@ def xaxis(scale: Scale, y: float, values: Sequence[float], label: str = "") -> s
              f'stroke="{MUTED}" stroke-width="1"/>']
     for v in values:
         x = float(scale(v))
+        text = num(v, 3)
+        half = 2.8 * len(text)   # about half the label's width at font-size 10
+        # a label centred on a tick near an end would be cut off by the plot's edge
+        anchor = "end" if x + half > scale.p1 + 8 else "start" if x - half < scale.p0 - 8 \
+            else "middle"
         parts.append(f'<line x1="{x:.1f}" y1="{y:.1f}" x2="{x:.1f}" y2="{y + 4:.1f}" '
                      f'stroke="{MUTED}"/><text x="{x:.1f}" y="{y + 15:.1f}" font-size="10" '
-                     f'fill="{MUTED}" text-anchor="middle">{num(v, 3)}</text>')
+                     f'fill="{MUTED}" text-anchor="{anchor}">{text}</text>')
     if label:
         parts.append(f'<text x="{scale.p1:.1f}" y="{y + 27:.1f}" font-size="10" '
                      f'fill="{MUTED}" text-anchor="end">{esc(label)}</text>')
