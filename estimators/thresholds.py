@@ -20,7 +20,7 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, age_to, merge_clocks, take_batch
+from .forgetting import HalfLife, age_to, ldexp, merge_clocks, scale_step, take_batch
 from .validation import check_batch, check_saved
 
 __all__ = ["Thresholds", "mixture_exceedance", "normal_exceedance"]
@@ -73,7 +73,7 @@ class Thresholds:
     """
 
     __slots__ = ("bounds", "half_life", "clock", "count", "_cumulative", "value_sum",
-                 "W", "_above")
+                 "W", "_above", "E")
     kind = "thresholds"
     version = 1
 
@@ -84,8 +84,9 @@ class Thresholds:
         self.count = 0                              # rows, undecayed
         self._cumulative = np.zeros(self.bounds.size + 1)
         self.value_sum = 0.0
-        self.W = 0.0                                # decayed weight sum
-        self._above = np.zeros(self.bounds.size)    # decayed weight above each bound
+        self.W = 0.0                                # decayed weight sum, in units of 2**E
+        self._above = np.zeros(self.bounds.size)    # decayed weight above each bound, too
+        self.E = 0                                  # scale exponent: silence never underflows
 
     # ------------------------------------------------------------------ updates
     def update(self, x: object, weights: object = None, times: object = None) -> None:
@@ -99,6 +100,7 @@ class Thresholds:
         if n == 0:
             return
         v = take_batch(self, n, t, w)
+        self._rebase(0)     # new rows weigh about 1: the old sums join them in plain units
         # "x <= b_j" for the bounds and +inf (the total): k + 1 comparisons and a product
         # beat a binary search per row for small k; blocks keep the masks in cache
         ext = np.append(self.bounds, np.inf)
@@ -122,16 +124,21 @@ class Thresholds:
         self._above += decayed[-1] - decayed[:-1]
 
     def _age(self, g: float) -> None:
-        """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol). A
-        silence long enough to underflow them empties the state (it keeps no scale)."""
-        self._scale(2.0 ** g)
-
-    def _scale(self, f: float) -> None:
+        """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol): the
+        scale exponent takes what would underflow them, so the shares survive any
+        silence unchanged. O(k)."""
+        k, f = scale_step(self.W, g)
+        self.E += k
         self.W *= f
         self._above = self._above * f
-        if not self.W > 0.0:
-            self.W = 0.0
-            self._above = np.zeros(self.bounds.size)
+
+    def _rebase(self, e: int) -> None:
+        """Express the decayed sums in units of 2**e (what is below float64 at that
+        scale was outweighed by far). O(k)."""
+        if e != self.E:
+            self.W = math.ldexp(self.W, max(-2200, min(2200, self.E - e)))
+            self._above = ldexp(self._above, self.E - e)
+            self.E = e
 
     def decay_to(self, t: float) -> Thresholds:
         """Age the decayed sums to event time t (never backwards); returns self. O(k)."""
@@ -149,6 +156,9 @@ class Thresholds:
             raise IncompatibleError("other", getattr(other, "bounds", other),
                                     "must be Thresholds of the same bounds and half-life")
         o = merge_clocks(self, other)
+        e = max(self.E if self.W > 0.0 else o.E, o.E if o.W > 0.0 else self.E)
+        self._rebase(e)
+        o._rebase(e)
         self._cumulative = self._cumulative + o._cumulative
         self.value_sum += o.value_sum
         self.W += o.W
@@ -187,7 +197,8 @@ class Thresholds:
                 "half_life": None if self.half_life is None else self.half_life.to_dict(),
                 "clock": self.clock, "count": self.count,
                 "cumulative": self._cumulative.tolist(), "value_sum": self.value_sum,
-                "W": self.W, "above": self._above.tolist()}
+                "W": self.W, "above": self._above.tolist()} | (
+                    {"scale_exponent": self.E} if self.E else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Thresholds:
@@ -203,6 +214,10 @@ class Thresholds:
             new.count = int(d["count"])
             new.value_sum = float(d["value_sum"])
             new.W = float(d["W"])
+            e = d.get("scale_exponent", 0)
+            if type(e) is not int or abs(e) > 1 << 40:
+                raise ValueError(f"scale_exponent {e!r} is not a whole number in range")
+            new.E = e
         except (KeyError, TypeError, ValueError) as exc:
             raise IncompatibleError("thresholds", type(exc).__name__,
                                     f"malformed state: {exc}") from None

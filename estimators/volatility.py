@@ -7,7 +7,7 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, age_to, catch_up, take_batch
+from .forgetting import HalfLife, age_to, scale_step, take_batch
 
 
 class Volatility:
@@ -70,7 +70,7 @@ class Volatility:
     ([0.25], [1.0])
     """
 
-    __slots__ = ("dim", "half_life", "clock", "count", "W", "rate")
+    __slots__ = ("dim", "half_life", "clock", "count", "W", "rate", "E")
     kind = "volatility"
     version = 1
 
@@ -81,7 +81,8 @@ class Volatility:
         self.half_life = half_life
         self.clock: float | None = None
         self.count = 0
-        self.W = 0.0
+        self.W = 0.0      # decayed weight sum, in units of 2**E
+        self.E = 0        # scale exponent: a silence of any length never underflows W
         self.rate = np.zeros(dim)     # decayed weighted mean of r**2 / dt
 
     def update(self, r: object, spans: object, weights: object = None,
@@ -111,6 +112,7 @@ class Volatility:
         if n == 0:
             return
         v = take_batch(self, n, t, w)
+        self._rebase(0)   # new rows weigh about 1: the old weight joins them in plain units
         rates = r * r / dt[:, None]
         if v is None:
             wb, batch = float(n), rates.mean(axis=0)
@@ -124,15 +126,24 @@ class Volatility:
         self.W = total
 
     def _age(self, g: float) -> None:
-        """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol). A
-        silence long enough to underflow them empties the state (it keeps no scale)."""
-        self._scale(2.0 ** g)
-
-    def _scale(self, f: float) -> None:
+        """Multiply the weight sum by 2**g (``forgetting.take_batch``'s protocol); the
+        scale exponent takes what would underflow it, so the rate is kept. O(1)."""
+        k, f = scale_step(self.W, g)
+        self.E += k
         self.W *= f
-        if not self.W > 0.0:
-            self.W = 0.0
-            self.rate = np.zeros(self.dim)
+
+    def _rebase(self, e: int) -> None:
+        """Express W in units of 2**e (below float64 there it was outweighed). O(1)."""
+        if e != self.E:
+            self.W = math.ldexp(self.W, max(-2200, min(2200, self.E - e)))
+            self.E = e
+
+    def copy(self) -> Volatility:
+        new = Volatility.__new__(Volatility)
+        for name in self.__slots__:
+            value = getattr(self, name)
+            setattr(new, name, value.copy() if isinstance(value, np.ndarray) else value)
+        return new
 
     def decay_to(self, t: float) -> Volatility:
         """Age the state to event time t (never backwards); returns self. O(d)."""
@@ -146,18 +157,18 @@ class Volatility:
         """
         if other.dim != self.dim or other.half_life != self.half_life:
             raise IncompatibleError("other", other.dim, "dimension or half-life differs")
+        o = other.copy()
         if self.half_life is not None and not self.half_life.by_count:
-            later = max((c for c in (self.clock, other.clock) if c is not None), default=None)
+            later = max((c for c in (self.clock, o.clock) if c is not None), default=None)
             if later is not None:
                 self.decay_to(later)
-                _, f = catch_up(self.half_life, other.clock, later)
-                w_other = other.W * f
-            else:
-                w_other = other.W
-        else:
-            w_other = other.W
-            if self.clock is not None or other.clock is not None:
-                self.clock = max(c for c in (self.clock, other.clock) if c is not None)
+                o.decay_to(later)
+        elif self.clock is not None or o.clock is not None:
+            self.clock = max(c for c in (self.clock, o.clock) if c is not None)
+        e = max(self.E if self.W > 0.0 else o.E, o.E if o.W > 0.0 else self.E)
+        self._rebase(e)
+        o._rebase(e)
+        w_other = o.W
         total = self.W + w_other
         if total > 0.0:
             self.rate = self.rate + (other.rate - self.rate) * (w_other / total)
@@ -167,7 +178,8 @@ class Volatility:
 
     @property
     def weight_sum(self) -> float:
-        return self.W
+        """Decayed W (0.0 once it is below float64, though the state keeps its rate)."""
+        return math.ldexp(self.W, max(-2200, min(2200, self.E)))
 
     def volatility(self, unit: float = 1.0) -> np.ndarray:
         """sqrt(rate * unit) per field, (d,); NaN before the first return."""
@@ -180,7 +192,7 @@ class Volatility:
         return {"kind": self.kind, "version": self.version, "dim": self.dim,
                 "half_life": None if self.half_life is None else self.half_life.to_dict(),
                 "clock": self.clock, "count": self.count, "W": self.W,
-                "rate": self.rate.tolist()}
+                "rate": self.rate.tolist()} | ({"scale_exponent": self.E} if self.E else {})
 
     @classmethod
     def from_dict(cls, d: dict) -> Volatility:
@@ -195,6 +207,10 @@ class Volatility:
             v.clock = None if d["clock"] is None else float(d["clock"])
             v.count = int(d["count"])
             v.W = float(d["W"])
+            e = d.get("scale_exponent", 0)
+            if type(e) is not int or abs(e) > 1 << 40:
+                raise ValueError(f"scale_exponent {e!r} is not a whole number in range")
+            v.E = e
             v.rate = np.asarray(d["rate"], dtype=np.float64).reshape(v.dim)
             if not (math.isfinite(v.W) and v.W >= 0.0 and np.isfinite(v.rate).all()
                     and (v.rate >= 0.0).all()):

@@ -153,3 +153,26 @@ def test_zero_time_steps_are_skipped() -> None:
     v.update([[0.5], [0.1]], spans=[0.0, 1.0])
     assert v.rate.tolist() == pytest.approx([0.01])
     assert v.count == 1
+
+
+def test_volatility_survives_any_silence_and_then_follows_new_returns():
+    # issue 16: a silence of 10,000 half-lives (W far below float64) changes no estimate,
+    # and the rows after it outweigh the old ones entirely (a fresh state's figure)
+    rng = np.random.default_rng(12)
+    t = np.cumsum(rng.exponential(1.0, 500))
+    r = rng.normal(0.0, 0.01, (500, 1)) * np.sqrt(np.diff(t, prepend=0.0))[:, None]
+    v = Volatility(1, HalfLife(30.0))
+    v.update(r[1:], np.diff(t)[:, None].ravel(), times=t[1:])
+    before = v.volatility(86400.0)
+    v.decay_to(t[-1] + 30.0 * 10_000)
+    np.testing.assert_allclose(v.volatility(86400.0), before, rtol=1e-12)
+    again = Volatility.from_dict(v.to_dict())
+    np.testing.assert_allclose(again.volatility(86400.0), before, rtol=1e-12)
+    later = t[-1] + 30.0 * 10_000 + np.arange(1.0, 21.0)
+    rr = rng.normal(0.0, 0.02, (20, 1))
+    fresh = Volatility(1, HalfLife(30.0))
+    fresh.update(rr, np.ones(20), times=later)
+    v.update(rr, np.ones(20), times=later)
+    np.testing.assert_allclose(v.volatility(86400.0), fresh.volatility(86400.0), rtol=1e-12)
+    np.testing.assert_allclose(again.merge(fresh).volatility(86400.0),
+                               fresh.volatility(86400.0), rtol=1e-12)

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 
+import msgpack
 import numpy as np
 import pytest
 from conftest import need_module
@@ -229,3 +230,29 @@ def test_two_field_tail_with_one_component_is_the_normal_rule():
     delta = x - m.means[0]
     d2 = np.einsum("ij,jk,ik->i", delta, np.linalg.inv(m.covariances[0]), delta)
     np.testing.assert_allclose(tail_probability(m, x), stats.chi2.sf(d2, 2), rtol=1e-9)
+
+
+def test_the_observed_share_survives_any_silence_and_weight_scale():
+    # issue 16: decaying every observation by the same factor changes no estimate; a
+    # silence of 10,000 half-lives (far past float64's range) keeps the shares exact
+    rng = np.random.default_rng(8)
+    x, w = rng.lognormal(3.0, 0.6, 2000), rng.uniform(0.5, 2.0, 2000)
+    t = np.sort(rng.uniform(0.0, 100.0, 2000))
+    th = Thresholds([10.0, 30.0], HalfLife(60.0))
+    th.update(x, weights=w, times=t)
+    share = th.observed_share
+    th.decay_to(100.0 + 60.0 * 10_000)
+    np.testing.assert_allclose(th.observed_share, share, rtol=1e-12)
+    again = Thresholds.from_dict(msgpack.unpackb(msgpack.packb(th.to_dict())))
+    np.testing.assert_allclose(again.observed_share, share, rtol=1e-12)
+    # new rows after the silence outweigh the old ones entirely: a fresh state's shares
+    y = rng.lognormal(3.0, 0.6, 50)
+    later = 100.0 + 60.0 * 10_000 + np.arange(50.0)
+    fresh = Thresholds([10.0, 30.0], HalfLife(60.0))
+    fresh.update(y, times=later)
+    th.update(y, times=later)
+    np.testing.assert_allclose(th.observed_share, fresh.observed_share, rtol=1e-12)
+    # and merging a long-silent state with a live one keeps the live one's shares
+    silent = Thresholds.from_dict(again.to_dict())
+    np.testing.assert_allclose(silent.merge(fresh).observed_share, fresh.observed_share,
+                               rtol=1e-12)
