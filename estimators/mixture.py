@@ -8,7 +8,7 @@ from typing import Literal
 import numpy as np
 
 from .errors import DomainError, IncompatibleError, ShapeError
-from .forgetting import HalfLife, age_to, take_batch
+from .forgetting import HalfLife, age_to, scale_step, take_batch
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
 from .mixture_moves import proposals
 from .mixture_reduce import runnalls_reduce
@@ -158,7 +158,7 @@ class Mixture:
     __slots__ = ("components", "dim", "covariance", "log", "half_life", "warmup", "seed",
                  "n_init", "init_iter", "min_weight", "reg", "recent", "clock", "count", "W",
                  "W2", "L", "LW", "reseeds", "warm", "_pi", "_mu", "_mu_lo", "_cov", "_floor",
-                 "_buf", "_buf_w", "_recent", "_prep", "_since_check", "_quiet")
+                 "_buf", "_buf_w", "_recent", "_prep", "_since_check", "_quiet", "E")
     kind = "mixture"
     version = 1
 
@@ -206,6 +206,7 @@ class Mixture:
         self._recent = np.zeros((0, dim))              # re-seeding candidates, fitted space
         self._prep: tuple | None = None                # cached log-density constants
         self._since_check = 0                          # rows since the last move check
+        self.E = 0      # W, L, LW and buffered weights are in units of 2**E, W2 of 2**(2 E)
         self._quiet = 0                                # move checks in a row that kept the fit
 
     # ------------------------------------------------------------------ updates
@@ -229,6 +230,7 @@ class Mixture:
             return
         y = np.log(x) if self.log else x
         v = take_batch(self, n, t, w)
+        self._rebase(0)           # new rows weigh about 1: the old sums join them in plain units
         if v is None:
             v = np.ones(n)
         vsum = float(v.sum())
@@ -333,16 +335,23 @@ class Mixture:
     def _age(self, g: float) -> None:
         """Age every weight by 2**g; the parameters are ratios of weights and do not
         change."""
-        f = 2.0 ** g
+        k, f = scale_step(self.W, g)      # the exponent takes what would underflow
+        self.E += k
         self.W *= f
         self.W2 *= f * f
         self.L *= f
         self.LW *= f
         self._buf_w = self._buf_w * f
-        if not self.W > 0.0:      # decayed past what float64 holds: nothing is remembered
-            self.W = self.W2 = self.L = self.LW = 0.0
-            self._buf = np.zeros((0, self.dim))
-            self._buf_w = np.zeros(0)
+
+    def _rebase(self, e: int) -> None:
+        """Express the weight sums in units of 2**e (what falls below float64 there was
+        outweighed by far). O(buffered rows)."""
+        if e != self.E:
+            k = max(-2200, min(2200, self.E - e))
+            self.W, self.L, self.LW = (math.ldexp(x, k) for x in (self.W, self.L, self.LW))
+            self.W2 = math.ldexp(self.W2, 2 * k)
+            self._buf_w = np.ldexp(self._buf_w, k)
+            self.E = e
 
     def decay_to(self, t: float) -> Mixture:
         """Age the state to event time t (never backwards); returns self.
@@ -514,6 +523,9 @@ class Mixture:
             if a.clock is not None:
                 b.decay_to(a.clock)
             clock = a.clock
+        e = max(a.E if a.W > 0.0 else b.E, b.E if b.W > 0.0 else a.E)
+        a._rebase(e)
+        b._rebase(e)
         if not a.warm and not b.warm:
             out = a
             out._buf = np.concatenate((a._buf, b._buf))
@@ -533,7 +545,7 @@ class Mixture:
             out.L, out.LW = a.L + b.L, a.LW + b.LW
         out.clock = clock
         out.count = a.count + b.count
-        out.W, out.W2 = a.W + b.W, a.W2 + b.W2
+        out.W, out.W2, out.E = a.W + b.W, a.W2 + b.W2, e
         out.reseeds = a.reseeds + b.reseeds
         out._recent = np.concatenate((a._recent, b._recent))[-self.recent:]
         out._prep = None
@@ -568,7 +580,7 @@ class Mixture:
         pi, mu, cov = runnalls_reduce(self._pi, self._mu, self._cov, np.diag(self._floor),
                                       components, diag)
         out = self._like(components, max(self.warmup, components))
-        for name in ("clock", "count", "W", "W2", "L", "LW", "reseeds", "warm"):
+        for name in ("clock", "count", "W", "W2", "L", "LW", "E", "reseeds", "warm"):
             setattr(out, name, getattr(self, name))
         out._pi, out._mu, out._cov = pi / pi.sum(), mu, cov
         out._floor = self._floor.copy()
@@ -592,8 +604,9 @@ class Mixture:
     # ---------------------------------------------------------------- read-outs
     @property
     def weight_sum(self) -> float:
-        """Decayed sum of weights W (the pooling weight)."""
-        return self.W
+        """Decayed sum of weights W (the pooling weight; 0.0 once below float64, though
+        the state keeps its fit)."""
+        return math.ldexp(self.W, max(-2200, min(2200, self.E)))
 
     @property
     def effective_samples(self) -> float:
@@ -778,6 +791,7 @@ class Mixture:
             "recent_rows": self._recent.tolist(),
         } | ({"mu_lo": self._mu_lo.tolist()} if self._mu_lo.any() else {}) \
             | ({"since_check": self._since_check} if self._since_check else {}) \
+            | ({"scale_exponent": self.E} if self.E else {}) \
             | ({"quiet_checks": self._quiet} if self._quiet else {})
 
     @classmethod
@@ -796,6 +810,9 @@ class Mixture:
             m._pi = np.asarray(d["pi"], dtype=np.float64).reshape(k)
             m._mu = np.asarray(d["mu"], dtype=np.float64).reshape(k, dim)
             m._since_check = int(d.get("since_check", 0))
+            m.E = d.get("scale_exponent", 0)
+            if type(m.E) is not int or abs(m.E) > 1 << 40:
+                raise ValueError(f"scale_exponent {m.E!r} is not a whole number in range")
             m._quiet = min(max(int(d.get("quiet_checks", 0)), 0), _MOVE_BACKOFF)
             if "mu_lo" in d:
                 m._mu_lo = np.asarray(d["mu_lo"], dtype=np.float64).reshape(k, dim)

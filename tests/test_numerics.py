@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 
+import msgpack
 import numpy as np
 import pytest
 from scipy import stats
@@ -603,3 +604,23 @@ def test_daemon_counts_values_whose_squares_would_overflow_as_out_of_range():
     (state,) = e.export_state()
     assert state["moments"]["count"] == 2
     assert state["moments"]["mean"] == [6.0, 4.0]
+
+
+def test_a_mixture_survives_any_silence_with_its_fit_and_effective_samples():
+    # issue 16: after 10,000 half-lives of silence (W far below float64) the fit, the
+    # effective sample size and the average log-likelihood read as before the silence
+    rng = np.random.default_rng(21)
+    x = np.concatenate([rng.lognormal(2.0, 0.4, 3000), rng.lognormal(4.0, 0.3, 1000)])
+    t = np.arange(x.size, dtype=float)
+    m = Mixture(2, log=True, half_life=HalfLife(600.0))
+    m.update(rng.permutation(x), times=t)
+    before = (m.quantile(0.5), m.quantile(0.99), m.effective_samples, m.average_loglik)
+    m.decay_to(t[-1] + 600.0 * 10_000)
+    after = (m.quantile(0.5), m.quantile(0.99), m.effective_samples, m.average_loglik)
+    np.testing.assert_allclose(after, before, rtol=1e-12)
+    again = Mixture.from_dict(msgpack.unpackb(msgpack.packb(m.to_dict())))
+    np.testing.assert_allclose((again.quantile(0.99), again.effective_samples),
+                               before[1:3], rtol=1e-12)
+    # rows after the silence are folded in plain units, and nothing overflows
+    m.update(rng.lognormal(2.0, 0.4, 200), times=t[-1] + 600.0 * 10_000 + np.arange(200.0))
+    assert np.isfinite(m.quantile(0.5)) and 0 < m.effective_samples <= 200 + 1e-9
