@@ -8,7 +8,7 @@ from typing import Literal
 import numpy as np
 
 from .errors import DomainError, IncompatibleError, ShapeError
-from .forgetting import HalfLife, age_to, scale_step, take_batch
+from .forgetting import HalfLife, age_to, batch_exponent, scale_step, take_batch
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
 from .mixture_moves import proposals
 from .mixture_reduce import runnalls_reduce
@@ -230,9 +230,14 @@ class Mixture:
             return
         y = np.log(x) if self.log else x
         v = take_batch(self, n, t, w)
-        self._rebase(0)           # new rows weigh about 1: the old sums join them in plain units
+        # the sums take the larger of the state's scale and the rows' (rows of weight near
+        # 1 join in plain units; rows of 1e300 in units where their squares fit)
+        k = 0 if v is None else batch_exponent(v)
+        self._rebase(max(self.E, k) if self.W > 0.0 else k)
         if v is None:
             v = np.ones(n)
+        if self.E:
+            v = np.ldexp(v, -max(-2200, min(2200, self.E)))
         vsum = float(v.sum())
         if not vsum > 0.0:        # every row has decayed to nothing
             return

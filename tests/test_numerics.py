@@ -624,3 +624,19 @@ def test_a_mixture_survives_any_silence_with_its_fit_and_effective_samples():
     # rows after the silence are folded in plain units, and nothing overflows
     m.update(rng.lognormal(2.0, 0.4, 200), times=t[-1] + 600.0 * 10_000 + np.arange(200.0))
     assert np.isfinite(m.quantile(0.5)) and 0 < m.effective_samples <= 200 + 1e-9
+
+
+@pytest.mark.parametrize("scale", [1e-300, 1e300])
+def test_a_mixture_reads_the_same_for_weights_scaled_by_1e300_either_way(scale):
+    # issue 16: W, W2 and the corrections are scale-invariant for weights in [1e-300, 1e300]
+    rng = np.random.default_rng(22)
+    x = rng.lognormal(2.0, 0.5, 3000)
+    w = rng.uniform(0.5, 2.0, 3000)
+    plain, scaled = Mixture(2, log=True), Mixture(2, log=True)
+    for part in np.array_split(np.arange(3000), 3):
+        plain.update(x[part], weights=w[part])
+        scaled.update(x[part], weights=w[part] * scale)
+    for read in (lambda m: m.quantile(0.5), lambda m: m.quantile(0.99),
+                 lambda m: m.effective_samples, lambda m: m.average_loglik):
+        assert read(scaled) == pytest.approx(read(plain), rel=1e-12)
+    assert scaled.weight_sum == pytest.approx(plain.weight_sum * scale, rel=1e-12)
