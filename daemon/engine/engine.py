@@ -22,6 +22,7 @@ from sigmad.daemon.engine.snapshot import (
     RegressionView,
     SeriesView,
     Snapshot,
+    series_view,
 )
 from sigmad.daemon.ingest.layouts import LayoutTable, Readout, learn, runs
 from sigmad.daemon.ingest.wire import Reader, Single, WireError
@@ -516,7 +517,7 @@ def view_of(s: Series) -> SeriesView:
         strict=True))
     means, variances = _floats(m.mean), _floats(m.variance(corr))
     # positional, in SeriesView's field order: 22 keywords cost 2 us a view
-    return SeriesView(
+    return series_view(
         st.name, s.key[1], st.fields, s.version, s.observations, s.last_update, m.clock,
         cfg.half_life, m.weight_sum, m.weight_sq_sum, m.effective_samples, means,
         variances, covariance, correlation, st.quantile_at, quantiles,
