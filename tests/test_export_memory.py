@@ -42,3 +42,17 @@ def test_api_state_in_blocks_is_byte_for_byte_the_whole_document(n_series, block
     history.record(snap, 10.0)
     want = json_bytes(snapshot_json(snap, 12.5, history))
     assert snapshot_json_bytes(snap, 12.5, history, block=block) == want
+
+
+def test_cached_metrics_text_is_byte_for_byte_prometheus_clients(latency_and_pair):
+    # the cache keeps one text per series and splits it by line counts at each scrape
+    import sigmad.daemon.export.metrics_text as render
+    from test_render import _engine, _reference
+
+    e = _engine(latency_and_pair)
+    r = render.SeriesRenderer()
+    r.render(e.snapshot, 120.0)
+    assert r.render(e.snapshot, 125.0).decode() == _reference(e.snapshot, 125.0)
+    e.ingest(b"px.east", encode({"a": [1.0, 2.0], "b": [2.0, 3.0]}), 126.0)
+    e.flush(126.0)
+    assert r.render(e.snapshot, 127.0).decode() == _reference(e.snapshot, 127.0)

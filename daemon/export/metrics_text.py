@@ -47,32 +47,58 @@ def _header(family: str) -> str:
     return f"# HELP {name} {doc}\n# TYPE {name} {kind}\n"
 
 
+#: (family, lines) tuples shared by the series of one shape (bounded: few shapes exist)
+_SHAPES: dict[tuple, tuple] = {}
+
+
+def _cached(view: object, lines: dict[str, str]) -> tuple:
+    """(view, one text in UTF-8, its shape: (family, number of lines) in order): one string per
+    series rather than a map of one string per family (1,310 against 752 B a scalar
+    series, tracemalloc). A label value holds no raw newline (``_escape``), so the
+    lines split the text exactly."""
+    shape = tuple((family, text.count("\n")) for family, text in lines.items())
+    if len(_SHAPES) < 256:
+        shape = _SHAPES.setdefault(shape, shape)
+    return view, "".join(lines.values()).encode(), shape
+
+
 class SeriesRenderer:
     """Renders the per-series part of /metrics. Safe to call from several threads:
     the cache is replaced whole at the end of each render."""
 
     def __init__(self) -> None:
-        self._cache: dict = {}   # series key -> (view, {family: text})
+        self._cache: dict = {}   # series key -> (view, text, shape) (see ``_cached``)
 
     def render(self, snap: Snapshot, now: float) -> bytes:
         """Exposition text of every series in ``snap`` as of ``now``. O(changed series
-        * samples + series)."""
+        * samples + series).
+
+        Each family's lines are appended to one growing buffer of bytes: no string
+        per line per scrape (at 100,000 series those pieces and the list holding them
+        made the scrape's peak, and the process keeps its high-water mark)."""
         old = self._cache
         cache = {}
-        per_family: dict[str, list[str]] = {name: [] for name in SERIES}
+        per_family: dict[str, bytearray] = {name: bytearray() for name in SERIES}
         for key, v in snap.series.items():
             hit = old.get(key)
             if hit is None or hit[0] is not v:    # views are immutable: a new one = a change
-                hit = (v, _lines(static_samples(v)))
+                hit = _cached(v, _lines(static_samples(v)))
             cache[key] = hit
-            for family, text in hit[1].items():
-                per_family[family].append(text)
-            for family, text in _lines(dynamic_samples(v, now)).items():
-                per_family[family].append(text)
+            _, text, shape = hit
+            find = text.find
+            start = 0
+            for family, count in shape:
+                end = start
+                for _ in range(count):
+                    end = find(b"\n", end) + 1
+                per_family[family] += text[start:end]
+                start = end
+            for family, lines in _lines(dynamic_samples(v, now)).items():
+                per_family[family] += lines.encode()
         self._cache = cache
         parts = []
-        for family, texts in per_family.items():
-            if texts:
-                parts.append(_header(family))
-                parts.extend(texts)
-        return "".join(parts).encode()
+        for family, buf in per_family.items():
+            if buf:
+                parts.append(_header(family).encode())
+                parts.append(buf)
+        return b"".join(parts)
