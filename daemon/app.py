@@ -178,7 +178,7 @@ class Daemon:
         return self.merger.snapshot if self.merger is not None else self.engine.snapshot
 
     def _metrics(self) -> bytes:
-        return self.renderer.render(self.snapshot, time.time()) + generate_latest(self.registry)
+        return self.renderer.render(self.snapshot, time.time(), generate_latest(self.registry))
 
     def _page(self) -> bytes:
         return render_page(self.snapshot, time.time(), self.history)

@@ -118,7 +118,7 @@ def _dumps(obj: object) -> str:
 
 
 def snapshot_json_bytes(snap: Snapshot, now: float, history: History | None = None,
-                        block: int = 500) -> bytes:
+                        block: int = 500) -> bytearray:
     """``json_bytes(snapshot_json(...))``, byte for byte, built ``block`` series at a
     time: the per-series dicts of the whole document never exist at once (at 100,000
     series they held about 2 KB each, and the process kept that high-water mark).
@@ -126,10 +126,12 @@ def snapshot_json_bytes(snap: Snapshot, now: float, history: History | None = No
     head = _dumps(snapshot_json(dataclasses.replace(snap, series={}), now, history))
     if not head.endswith('"series":[]}'):
         raise AssertionError("the series list must be the document's last key")
-    parts = [head[:-2].encode()]
+    out = bytearray(head[:-2].encode())   # one growing buffer: no second copy at the end
     views = list(snap.series.values())
     for i in range(0, len(views), block):
         text = _dumps([series_json(v, now, history) for v in views[i:i + block]])
-        parts.append(text[1:-1].encode() if i == 0 else b"," + text[1:-1].encode())
-    parts.append(b"]}")
-    return b"".join(parts)
+        if i:
+            out += b","
+        out += text[1:-1].encode()
+    out += b"]}"
+    return out

@@ -69,9 +69,10 @@ class SeriesRenderer:
     def __init__(self) -> None:
         self._cache: dict = {}   # series key -> (view, text, shape) (see ``_cached``)
 
-    def render(self, snap: Snapshot, now: float) -> bytes:
-        """Exposition text of every series in ``snap`` as of ``now``. O(changed series
-        * samples + series).
+    def render(self, snap: Snapshot, now: float, tail: bytes = b"") -> bytearray:
+        """Exposition text of every series in ``snap`` as of ``now``, then ``tail`` (the
+        rest of the page: appended here rather than by ``+``, which would copy the whole
+        page once more). O(changed series * samples + series).
 
         Each family's lines are appended to one growing buffer of bytes: no string
         per line per scrape (at 100,000 series those pieces and the list holding them
@@ -96,9 +97,12 @@ class SeriesRenderer:
             for family, lines in _lines(dynamic_samples(v, now)).items():
                 per_family[family] += lines.encode()
         self._cache = cache
-        parts = []
-        for family, buf in per_family.items():
+        out = bytearray()
+        for family in SERIES:   # each family's buffer is let go once copied: one copy lives
+            buf = per_family.pop(family)
             if buf:
-                parts.append(_header(family).encode())
-                parts.append(buf)
-        return b"".join(parts)
+                out += _header(family).encode()
+                out += buf
+            del buf
+        out += tail
+        return out
