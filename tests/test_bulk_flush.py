@@ -115,3 +115,17 @@ def test_long_silence_takes_the_series_path_and_agrees(monkeypatch):
             e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], now)
             e.flush(now)
         _same(bulk, single)
+
+
+def test_a_series_keeps_at_most_a_block_of_rows_alive(monkeypatch):
+    # written-back means are views of 8-row copies: a sender that lets one series of a
+    # large flush go quiet cannot pin that flush's whole arrays
+    bulk, _ = _engines('["a"]', "", monkeypatch)
+    msgs = [(f"s.k{k}".encode(), encode({"a": float(k)})) for k in range(1000)]
+    bulk.ingest_many([t for t, _ in msgs], [b for _, b in msgs], 10.0)
+    bulk.flush(10.0)
+    states = [s.moments for s in bulk.streams[0].series.values()]
+    assert all(s.count == 1 for s in states)
+    for m in states:
+        for a in (m._mean, m._lo, m._scatter):
+            assert a.base is None or a.base.shape[0] <= 8
