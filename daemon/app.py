@@ -25,7 +25,7 @@ from sigmad.daemon.config.units import split_host_port
 from sigmad.daemon.engine.allocator import keep_freed_blocks
 from sigmad.daemon.engine.blas import set_threads as set_blas_threads
 from sigmad.daemon.engine.engine import Engine
-from sigmad.daemon.export.api_state import snapshot_json
+from sigmad.daemon.export.api_state import snapshot_json_bytes
 from sigmad.daemon.export.feed import EstimateFeed
 from sigmad.daemon.export.metrics_text import SeriesRenderer
 from sigmad.daemon.export.model import HealthCollector
@@ -35,7 +35,7 @@ from sigmad.daemon.ingest.wire import REASONS as WIRE_REASONS
 from sigmad.daemon.storage.checkpoint import Checkpointer
 from sigmad.daemon.web.history import History
 from sigmad.daemon.web.page import render_page
-from sigmad.daemon.web.server import HttpServer, json_bytes
+from sigmad.daemon.web.server import HttpServer
 
 log = logging.getLogger("sigmad")
 
@@ -182,13 +182,13 @@ class Daemon:
         return self.merger.snapshot if self.merger is not None else self.engine.snapshot
 
     def _metrics(self) -> bytes:
-        return self.renderer.render(self.snapshot, time.time()) + generate_latest(self.registry)
+        return self.renderer.render(self.snapshot, time.time(), generate_latest(self.registry))
 
     def _page(self) -> bytes:
         return render_page(self.snapshot, time.time(), self.history)
 
     def _state(self) -> bytes:
-        return json_bytes(snapshot_json(self.snapshot, time.time(), self.history))
+        return snapshot_json_bytes(self.snapshot, time.time(), self.history)
 
     # ------------------------------------------------------------ lifecycle
     def start(self) -> None:

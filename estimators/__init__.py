@@ -21,21 +21,31 @@ from .legs import Joined, Legs
 from .mixture import Mixture
 from .model_tail import nominal_rate, outlier_counts
 from .moments import CORRECTIONS, Moments
-from .moments_columns import MomentsColumns, blob, from_blob
+from .moments_columns import Folded, MomentsColumns, blob, fold_rows, from_blob, row_views
 from .regression import Regression
 from .returns import TRANSFORMS, Returns, Stepped
 from .thresholds import Thresholds, mixture_exceedance, normal_exceedance
-from .validation import check_batch, clean_batch, limit_batch, screen_batch
+from .validation import (
+    MAX_WEIGHT,
+    MIN_WEIGHT,
+    check_batch,
+    clean_batch,
+    limit_batch,
+    screen_batch,
+)
 from .volatility import Volatility
 
 __all__ = [
     "CORRECTIONS",
     "DomainError",
     "EstimatorError",
+    "Folded",
     "HalfLife",
     "IncompatibleError",
     "Joined",
     "Legs",
+    "MAX_WEIGHT",
+    "MIN_WEIGHT",
     "Mixture",
     "Moments",
     "MomentsColumns",
@@ -54,6 +64,7 @@ __all__ = [
     "check_batch",
     "clean_batch",
     "ellipse",
+    "fold_rows",
     "from_blob",
     "limit_batch",
     "line_band",
@@ -64,6 +75,7 @@ __all__ = [
     "normal_exceedance",
     "normal_tail_rate",
     "outlier_counts",
+    "row_views",
     "screen_batch",
     "sums_at",
 ]

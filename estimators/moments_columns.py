@@ -287,3 +287,141 @@ class MomentsColumns(NamedTuple):
                    else np.zeros(n, np.int64),
                    from_blob(d, "mean_lo", _LE_F8, (n, dim)) if "mean_lo" in d
                    else np.zeros((n, dim)))
+
+
+class Folded(NamedTuple):
+    """What ``fold_rows`` gives: the new columns, which rows it folded exactly (the others
+    must take ``Moments`` one by one: their states are not in ``columns`` as folded), and
+    the outlier distance of each row under its state before the fold."""
+
+    columns: MomentsColumns
+    ok: np.ndarray
+    distance: np.ndarray
+
+
+def _powers_of_two(g: np.ndarray) -> np.ndarray:
+    """2**g elementwise as Python's float power computes it (numpy's ``power`` differs in
+    the last bit for about one g in twenty here; the states must match ``Moments``)."""
+    return np.array([2.0 ** v for v in g.tolist()]) if g.size else np.ones(0)
+
+
+def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
+              times: np.ndarray | None, correction: str = "reliability") -> Folded:
+    """Fold one checked row into each of n states at once, as ``Moments._fold`` does for
+    a batch of one row per state, to the same float64 bits.
+
+    Parameters
+    ----------
+    cols : MomentsColumns
+        The n states before the fold (left unchanged).
+    x : ndarray, shape (n, dim)
+        One row per state, already checked (finite, within bounds).
+    weights : ndarray, shape (n,), or None
+        Row weights (None: all 1).
+    times : ndarray, shape (n,), or None
+        Event times; NaN where a row has none (None: no row has one).
+    correction : str
+        The covariance correction of the outlier distance.
+
+    Notes
+    -----
+    Per state, the pairwise (West / Chan) update of ``Moments``: age W, W2 and C by
+    f = 2**g (g from the half-life and the clocks, ``forgetting.advance``), then with
+    the row's weight w, delta = x - mu, total = W + w: the mean moves by
+    delta w / total from the heavier side (kept as mean + lo), C gains
+    delta delta^T W w / total, W becomes total and W2 gains w**2. The same IEEE
+    operations in the same order per element, so the bits agree. A state outside
+    the common case (a scale exponent E other than 0, a weight or a new weight sum
+    outside [2**-100, 2**100], an aging that would move the scale, a row weight that
+    decayed to 0) is marked not ok and left to ``Moments``. ``distance`` is
+    ``Moments.mahalanobis`` of each row under its state before the fold (d = 1;
+    NaN for d > 1, which the caller computes itself). O(n d**2), a few numpy calls
+    and one Python float power per aged state.
+
+    References
+    ----------
+    West, D. H. D. (1979). Updating mean and variance estimates: an improved
+    method. Communications of the ACM 22(9), 532-535.
+    Chan, T. F., Golub, G. H., LeVeque, R. J. (1983). Algorithms for computing
+    the sample variance: analysis and recommendations. The American
+    Statistician 37(3), 242-247.
+
+    Examples
+    --------
+    >>> a, b = Moments(), Moments()
+    >>> a.update([1.0, 2.0, 3.0]); b.update([10.0, 20.0])
+    >>> out = fold_rows(MomentsColumns.of([a, b], 1, None), np.array([[4.0], [30.0]]),
+    ...                 None, None)
+    >>> out.ok.tolist(), out.columns.means()[:, 0].tolist()
+    ([True, True], [2.5, 20.0])
+    """
+    n, dim = x.shape
+    hl = cols.half_life
+    W, W2, scatter = cols.W, cols.W2, cols.scatter
+    ok = cols.E == 0
+    # the outlier distance under the state before the fold (Moments.mahalanobis, d = 1)
+    if dim == 1:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cov = cols.covariances(correction)[:, 0, 0]
+            dist = np.where((W > 0.0) & (cov > 0.0),
+                            np.abs(x[:, 0] - cols.mean[:, 0]) / np.sqrt(cov), np.nan)
+    else:
+        dist = np.full(n, np.nan)
+    clock, has_clock = cols.clock, cols.has_clock
+    g = None
+    v = weights
+    if hl is None:
+        if times is not None:
+            timed = ~np.isnan(times)
+            clock = np.where(timed, np.where(has_clock, np.maximum(clock, times), times),
+                             clock)
+            has_clock = has_clock | timed
+    elif hl.by_count:
+        clock = np.where(has_clock, clock, 0.0) + 1
+        has_clock = np.ones(n, bool)
+        g = np.full(n, -1 / hl.length)
+    else:
+        new_clock = np.where(has_clock, np.maximum(clock, times), times)
+        g = np.where(has_clock, -(new_clock - clock) / hl.length, 0.0)
+        rf = np.exp2(-(new_clock - times) / hl.length)
+        v = rf if weights is None else weights * rf
+        clock, has_clock = new_clock, np.ones(n, bool)
+    if g is not None:
+        aged = g != 0.0
+        # scale_step keeps the scale while the aged sum stays above 2**-100
+        ok &= ~aged | (np.frexp(W)[1] + g > -100)
+        f = np.ones(n)
+        f[aged] = _powers_of_two(g[aged])
+        W, W2, scatter = W * f, W2 * (f * f), scatter * f[:, None, None]
+    wb = np.ones(n) if v is None else v
+    ok &= (wb >= 2.0 ** -100) & (wb <= 2.0 ** 100)
+    total = W + wb
+    fresh = W == 0.0
+    mean, lo = cols.mean, cols.lo
+    delta = (x - mean) - lo
+    light = (wb <= W)[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        part = np.where(light, lo + delta * (wb / total)[:, None],
+                        -(delta * (W / total)[:, None]))
+        base = np.where(light, mean, x)
+        new = base + part
+        new_lo = part - (new - base)
+        spread = (delta[:, :, None] * delta[:, None, :]) * (W * wb / total)[:, None, None]
+    mean = np.where(fresh[:, None], x, new)
+    lo = np.where(fresh[:, None], 0.0, new_lo)
+    scatter = np.where(fresh[:, None, None], 0.0, scatter + spread)
+    W2 = W2 + wb * wb
+    ok &= (total >= 2.0 ** -100) & (total <= 2.0 ** 100)
+    out = MomentsColumns(dim, hl, has_clock, clock, cols.count + 1, total, W2, mean, scatter,
+                         cols.E, lo)
+    return Folded(out, ok, dist)
+
+
+def row_views(a: np.ndarray, block: int = 8) -> list[np.ndarray]:
+    """The rows of ``a`` as arrays that share a copy per ``block`` rows: one view object
+    per row, and a state that keeps its row keeps at most ``block`` rows alive (a view
+    of one large array would keep all of it). O(n)."""
+    out: list[np.ndarray] = []
+    for i in range(0, a.shape[0], block):
+        out.extend(a[i:i + block].copy())
+    return out

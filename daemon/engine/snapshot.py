@@ -8,6 +8,7 @@ half-applied update and never takes a lock.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 from sigmad.estimators import HalfLife, sums_at
@@ -152,3 +153,21 @@ class Snapshot:
     health: Health = field(default_factory=Health)
     # per stream with sessions: (stream, boundary unix seconds, read-outs at the close)
     closed: tuple[tuple[str, float, tuple[SeriesView, ...]], ...] = ()
+
+
+def _positional_maker(cls: type) -> Callable[..., object]:
+    """A constructor of the frozen, slotted dataclass ``cls`` that takes every field
+    positionally and sets the slots through their descriptors: about half the time of
+    the generated ``__init__`` (which calls ``object.__setattr__`` per field), paid at
+    every flush of every series. The same object: equal to ``cls(*args)``."""
+    names = cls.__slots__
+    args = ", ".join(f"a{i}" for i in range(len(names)))
+    body = "".join(f"    s{i}(o, a{i})\n" for i in range(len(names)))
+    scope = {"new": object.__new__, "cls": cls,
+             **{f"s{i}": getattr(cls, n).__set__ for i, n in enumerate(names)}}
+    exec(f"def make({args}):\n    o = new(cls)\n{body}    return o\n", scope)  # noqa: S102
+    return scope["make"]
+
+
+#: ``SeriesView(*every_field)``, faster (see ``_positional_maker``): all 24 fields, in order
+series_view = _positional_maker(SeriesView)

@@ -25,7 +25,7 @@ from sigmad.daemon.engine.engine import (
     thresholds_state,
     view_of,
 )
-from sigmad.daemon.engine.snapshot import SeriesView
+from sigmad.daemon.engine.snapshot import SeriesView, series_view
 from sigmad.daemon.ingest.topics import series_text
 from sigmad.estimators import (
     IncompatibleError,
@@ -265,11 +265,11 @@ def views(st: StreamState, series: list[Series],
     name, fields, half_life = st.name, st.fields, cfg.half_life
     quantile_at, thresholds = st.quantile_at, cfg.outlier_sigmas
     # positional, in SeriesView's field order (as view_of): keywords cost 2 us a view
-    return [SeriesView(
+    return [series_view(
         name, s.key[1], fields, s.version, s.observations, s.last_update, s.moments.clock,
         half_life, s.moments.weight_sum, s.moments.weight_sq_sum, effective[k], tuple(means[k]),
         tuple(variances[k]), covariance[k], correlation[k], quantile_at, tuple(quantiles[k]),
-        thresholds, tuple(s.outliers), None, None, tuple(scatters[k]))
+        thresholds, tuple(s.outliers), None, None, tuple(scatters[k]), None, ())
         for k, s in enumerate(series)]
 
 

@@ -1,0 +1,131 @@
+"""Many series folded at once at a flush (``Engine._fold_many``) against one by one.
+
+The reference is the per-series path itself (``Engine._fold`` and ``view_of``, whose
+maths ``tests/test_moments.py`` checks against numpy): the same drains fed to an
+engine with the bulk path switched off must give the same views and states, bit for
+bit (``repr`` of a float is exact).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from sigmad.daemon.config.load import parse_config
+from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.ingest.wire import encode
+
+BASE = """
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:7410"
+[[stream]]
+name = "s"
+topic = "s.{k}"
+fields = FIELDS
+outlier_sigmas = [1.0, 3.0]
+outlier_warmup = 3
+quantiles = [0.1, 0.5, 0.99]
+EXTRA
+"""
+
+
+def _engines(fields: str, extra: str, monkeypatch) -> tuple[Engine, Engine]:
+    text = BASE.replace("FIELDS", fields).replace("EXTRA", extra)
+    bulk, single = Engine(parse_config(text)), Engine(parse_config(text))
+    monkeypatch.setattr(single, "_fold_many", lambda dirty, now: {})
+    return bulk, single
+
+
+def _drains(dim: int, n_series: int, flushes: int, seed: int, timed: bool, weighted: bool,
+            bad: bool):
+    """Per flush, (topic, body) pairs: mostly one observation per series, a few series
+    with two, some with a time or a weight, and (``bad``) rows the flush must reject."""
+    rng = np.random.default_rng(seed)
+    names = ["a", "b", "c"][:dim]
+    for f in range(flushes):
+        now = 1000.0 + 3.7 * f
+        msgs = []
+        for k in range(n_series):
+            if rng.random() < 0.15:
+                continue                      # quiet this flush
+            reps = 2 if rng.random() < 0.1 else 1
+            for _ in range(reps):
+                v = rng.normal(5.0 * k, 1.0 + k % 3, dim)
+                if bad and rng.random() < 0.05:
+                    v[0] = math.nan if rng.random() < 0.5 else 1e300
+                kw = {}
+                if timed and rng.random() < 0.7:
+                    kw["time"] = now - rng.uniform(0.0, 5.0)
+                if weighted and rng.random() < 0.5:
+                    kw["weight"] = float(rng.choice([0.5, 2.0, 1e-40, 3.0]) if bad
+                                         else rng.choice([0.5, 2.0, 3.0]))
+                msgs.append((f"s.k{k}".encode(),
+                             encode({n: float(x) for n, x in zip(names, v, strict=True)},
+                                    **kw)))
+        yield now, msgs
+
+
+def _same(bulk: Engine, single: Engine) -> None:
+    assert bulk.snapshot.series.keys() == single.snapshot.series.keys()
+    for key, view in single.snapshot.series.items():
+        assert repr(bulk.snapshot.series[key]) == repr(view), key
+    for st_b, st_s in zip(bulk.streams, single.streams, strict=True):
+        for labels, s in st_s.series.items():
+            assert repr(st_b.series[labels].moments.to_dict()) == repr(s.moments.to_dict())
+    assert bulk.rejected == single.rejected
+
+
+@pytest.mark.parametrize("dim", [1, 2])
+@pytest.mark.parametrize("half_life", ["", 'half_life = "6s"', 'half_life = "4 obs"'])
+@pytest.mark.parametrize("weighted,bad", [(False, False), (True, False), (True, True)])
+def test_bulk_flush_equals_series_by_series(dim, half_life, weighted, bad, monkeypatch):
+    fields = '["a"]' if dim == 1 else '["a", "b"]'
+    bulk, single = _engines(fields, half_life, monkeypatch)
+    calls = []
+    real = bulk._fold_group
+    monkeypatch.setattr(bulk, "_fold_group",
+                        lambda *a: calls.append(len(a[0])) or real(*a))
+    for now, msgs in _drains(dim, 60, 12, seed=dim * 7 + len(half_life),
+                             timed=True, weighted=weighted, bad=bad):
+        for e in (bulk, single):
+            e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], now)
+            e.flush(now)
+        _same(bulk, single)
+    assert sum(calls) > 300     # the bulk path did fold most of the rows
+
+
+def test_bulk_flush_with_limits_and_untimed_rows(monkeypatch):
+    bulk, single = _engines('["a"]', "limits = { a = [-50.0, 250.0] }", monkeypatch)
+    for now, msgs in _drains(1, 80, 8, seed=3, timed=False, weighted=False, bad=False):
+        for e in (bulk, single):
+            e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], now)
+            e.flush(now)
+        _same(bulk, single)
+    assert bulk.rejected   # some rows were outside the limits: both paths counted them
+
+
+def test_long_silence_takes_the_series_path_and_agrees(monkeypatch):
+    # 500 half-lives of silence moves the scale exponent: fold_rows leaves it to Moments
+    bulk, single = _engines('["a"]', 'half_life = "1s"', monkeypatch)
+    for now in (100.0, 101.0, 600.0, 601.0):
+        msgs = [(f"s.k{k}".encode(), encode({"a": float(k)}, time=now)) for k in range(5)]
+        for e in (bulk, single):
+            e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], now)
+            e.flush(now)
+        _same(bulk, single)
+
+
+def test_a_series_keeps_at_most_a_block_of_rows_alive(monkeypatch):
+    # written-back means are views of 8-row copies: a sender that lets one series of a
+    # large flush go quiet cannot pin that flush's whole arrays
+    bulk, _ = _engines('["a"]', "", monkeypatch)
+    msgs = [(f"s.k{k}".encode(), encode({"a": float(k)})) for k in range(1000)]
+    bulk.ingest_many([t for t, _ in msgs], [b for _, b in msgs], 10.0)
+    bulk.flush(10.0)
+    states = [s.moments for s in bulk.streams[0].series.values()]
+    assert all(s.count == 1 for s in states)
+    for m in states:
+        for a in (m._mean, m._lo, m._scatter):
+            assert a.base is None or a.base.shape[0] <= 8
