@@ -1,4 +1,4 @@
-"""A short tour of the estimators on invented data: ``python -m estimators``.
+"""A short tour of the estimators on invented data: ``python -m sigmad.estimators``.
 
 The scenario is our own: a bakery's oven thermometer that reads every few
 seconds, drifts warmer after noon, and is trusted less when its battery is low.
