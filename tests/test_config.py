@@ -546,3 +546,23 @@ def test_topic_and_time_ahead_bounds_have_defaults_and_are_checked():
         "daemon.max_topic_bytes"
     assert error(minimal(head='[daemon]\nmax_time_ahead = "soon"\n')).key == \
         "daemon.max_time_ahead"
+
+
+def test_config_problems_lists_every_bad_key_of_one_table():
+    # issue 14: validate reports every problem, not only the first of each table
+    from sigmad.daemon.config.load import config_problems
+
+    text = minimal("half_life = 5\ncorrection = \"sometimes\"\nmax_series = 0\n",
+                   head="[daemon]\nflush_every = 5\nlog_rejected = -1\nhtpp = 'x:1'\n")
+    keys = [p.key for p in config_problems(text)]
+    assert sorted(keys) == sorted(["daemon.flush_every", "daemon.log_rejected", "daemon.htpp",
+                                   "stream[0].half_life", "stream[0].correction",
+                                   "stream[0].max_series"])
+
+
+def test_config_problems_does_not_invent_a_missing_key_after_a_bad_required_one():
+    from sigmad.daemon.config.load import config_problems
+
+    text = minimal('correction = "sometimes"').replace('name = "lat"', 'name = "a b"')
+    keys = [p.key for p in config_problems(text)]
+    assert keys == ["stream[0].name"]     # a bad required key ends that table's report

@@ -772,8 +772,9 @@ def parse_config(text: str, origin: str = "<string>") -> Config:
 def config_problems(text: str, origin: str = "<string>") -> list[ConfigError]:
     """Every problem :func:`parse_config` would raise one at a time, as far as they can
     be told apart: the ``[daemon]`` table and each ``[[source]]`` and ``[[stream]]``
-    are checked on their own (each reports its first problem), then, if they are
-    all sound, the whole (cross-checks). ``sigmad validate`` prints them all.
+    are checked on their own (each again without a key found bad, so every bad key is
+    reported), then, if they are all sound, the whole (cross-checks). ``sigmad
+    validate`` prints them all.
 
     Examples
     --------
@@ -793,16 +794,36 @@ def config_problems(text: str, origin: str = "<string>") -> list[ConfigError]:
         except ConfigError as exc:
             problems.append(exc.with_origin(origin))
 
+    def attempt_each_key(check, table: object, path: str, schema: type) -> None:
+        """Check a table, and after each problem with an optional key check it again
+        without that key, so every bad key of the table is reported (a problem with a
+        required key, or one naming no key of this table, ends its report)."""
+        required = {k for k, v in schema_defaults(schema).items() if v is MISSING}
+        table = dict(table) if isinstance(table, dict) else table
+        for _ in range(64):
+            try:
+                check(table) if path == "daemon" else check(table, path)
+                return
+            except ConfigError as exc:
+                problems.append(exc.with_origin(origin))
+                name = exc.key[len(path) + 1:].split(".")[0].split("[")[0] \
+                    if exc.key.startswith(path + ".") else ""
+                if not isinstance(table, dict) or name not in table or name in required \
+                        or exc.value is MISSING:
+                    return
+                del table[name]
+
     attempt(_Table, data, "", _TOP_KEYS)
-    attempt(_daemon, data.get("daemon", {}))
-    for name, check in (("source", _source), ("stream", _stream)):
+    attempt_each_key(_daemon, data.get("daemon", {}), "daemon", DaemonConfig)
+    for name, check, schema in (("source", _source, SourceConfig),
+                                ("stream", _stream, StreamConfig)):
         try:
             tables = _array_of_tables(data, name)
         except ConfigError as exc:
             problems.append(exc.with_origin(origin))
             continue
         for i, table in enumerate(tables):
-            attempt(check, table, f"{name}[{i}]")
+            attempt_each_key(check, table, f"{name}[{i}]", schema)
     if not problems:
         attempt(parse_config, text, origin)
     return problems
