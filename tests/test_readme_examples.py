@@ -1,7 +1,10 @@
-"""The README's "Sending data" examples run as written against the configuration
-each names (the embedded default unless it names a file in configs/): a real
-daemon, the real `sigmad send` and the Producer. Only ports are changed, so
-tests never take the well-known ones."""
+"""The README's examples run as written against the configuration each names (the
+embedded default unless it names a file in configs/): the "Sending data" ones
+against a real daemon with the real `sigmad send` and the Producer, the library
+example on its own, and the MQTT ones with the real `mosquitto_pub` against
+configs/gateway.toml and a real broker. Only ports are changed, so tests never take
+the well-known ones. (The synopsis of verbs and the fragments about other hosts are
+not run: they name files and hosts that are placeholders.)"""
 
 from __future__ import annotations
 
@@ -58,3 +61,45 @@ def test_sending_example_runs_against_the_config_it_names(tmp_path, lang, code, 
         assert sum(rejected) == 0
     finally:
         assert d.stop() == 0
+
+
+def _block_after(heading: str, lang: str) -> str:
+    """The first ``lang`` fenced block of the README section under ``heading``."""
+    text = (ROOT / "README.md").read_text()
+    section = text[text.index(heading):]
+    return re.search(rf"(?m)^```{lang}\n(.*?)^```", section, re.S).group(1)
+
+
+def test_the_library_example_runs_as_written():
+    code = _block_after("### The estimators as a library", "python")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                       timeout=60)
+    assert r.returncode == 0, r.stderr
+
+
+def test_the_mosquitto_pub_examples_reach_the_gateway_configuration(tmp_path):
+    # the README's MQTT examples, as written, against configs/gateway.toml and a real
+    # broker (only the broker's and HTTP ports change, and the state file's place)
+    from conftest import need_binary
+    from test_mqtt import Broker
+
+    pub = need_binary("mosquitto_pub")
+    broker = Broker(tmp_path)
+    code = _block_after("mosquitto_pub` (Debian package", "sh")
+    config = (ROOT / "configs" / "gateway.toml").read_text()
+    config = config.replace("mqtt://127.0.0.1:1883", broker.url)
+    config = re.sub(r'(?m)^http = "127\.0\.0\.1:9410"', 'http = "{HTTP}"', config)
+    config = re.sub(r'(?m)^state_file = "[^"]*"', f'state_file = "{tmp_path}/gw.state"', config)
+    d = Sigmad(tmp_path, config)
+    try:
+        d.wait_for("sigmad_source_connected", 1, endpoint=f"mqtt {broker.url}")
+        example = code.replace("mosquitto_pub ", f"{pub} -p {broker.port} ")
+        r = subprocess.run(["sh", "-ec", example], capture_output=True, text=True, timeout=60)
+        assert r.returncode == 0, r.stderr
+        d.wait_for("sigmad_observations_total", 2, stream="environment", bed="bed-3")
+        d.wait_for("sigmad_observations_total", 1, stream="tank_level", tank="north")
+        rejected = [v for (name, _), v in d.metrics().items() if name == "sigmad_rejected_total"]
+        assert sum(rejected) == 0
+    finally:
+        assert d.stop() == 0
+        broker.stop()
