@@ -10,8 +10,10 @@ from __future__ import annotations
 
 import os
 import re
+import select
 import subprocess
 import sys
+import time
 from importlib import resources
 from pathlib import Path
 
@@ -103,3 +105,36 @@ def test_the_mosquitto_pub_examples_reach_the_gateway_configuration(tmp_path):
     finally:
         assert d.stop() == 0
         broker.stop()
+
+
+def test_the_subscriber_example_prints_the_spread_of_the_trading_configuration(tmp_path):
+    # README's push-feed example, as written but for ports, against configs/trading.toml:
+    # it prints each change of the pair's series (labels, residual z) as legs tick
+    from sigmad.daemon.client import Producer
+
+    code = _block_after("- **Push feed**", "python")
+    pull, feed = free_port(), free_port()
+    config = (ROOT / "configs" / "trading.toml").read_text()
+    config = config.replace("7420", str(pull)).replace("7422", str(feed))
+    config = config.replace("ipc:///tmp/sigmad-trading.ipc", f"ipc://{tmp_path}/t.ipc")
+    config = re.sub(r'(?m)^http = "127\.0\.0\.1:9411"', 'http = "{HTTP}"', config)
+    config = re.sub(r'(?m)^state_file = "[^"]*"', f'state_file = "{tmp_path}/t.state"', config)
+    d = Sigmad(tmp_path, config)
+    example = subprocess.Popen([sys.executable, "-u", "-c", code.replace("7422", str(feed))],
+                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        with Producer(f"tcp://127.0.0.1:{pull}") as p:
+            deadline, i, ready = time.monotonic() + 20.0, 0, []
+            while not ready and time.monotonic() < deadline:   # a live feed keeps ticking
+                p.send("px.kappa", {"kappa": 100.0 + 0.01 * i})
+                p.send("px.lambda", {"lambda": 50.0 + 0.02 * i + 0.001 * (i % 7)})
+                i += 1
+                ready = select.select([example.stdout], [], [], 0.02)[0]
+        assert ready, "the example printed nothing: " + (example.poll() is not None and
+                                                           example.stderr.read() or "")
+        line = example.stdout.readline()        # the example's first print
+        assert line.startswith("{") and line.rstrip().split()[-1] not in ("", "None"), line
+    finally:
+        example.kill()
+        example.wait(10)
+        assert d.stop() == 0
