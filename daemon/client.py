@@ -44,6 +44,7 @@ import msgpack
 import zmq
 import zmq.auth
 from sigmad.daemon.ingest.wire import encode
+from zmq.utils.monitor import parse_monitor_message
 
 _SOCKETS = {"push": zmq.PUSH, "pub": zmq.PUB}
 #: Seconds ``wait_ready`` gives a SUB's subscription to follow the handshake when a
@@ -51,6 +52,11 @@ _SOCKETS = {"push": zmq.PUSH, "pub": zmq.PUB}
 #: XPUB, so they cannot be seen; on loopback they follow within 2 ms (measured).
 SUBSCRIPTION_GRACE = 0.25
 
+
+
+#: the monitor events a producer reads: a peer let it in, or refused its handshake
+_HANDSHAKE_EVENTS = (zmq.EVENT_HANDSHAKE_SUCCEEDED | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
+                     | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
 
 class DeliveryError(RuntimeError):
     """``close()`` ran out of time before every message sent had left."""
@@ -141,10 +147,11 @@ class Producer:
         self._socket.setsockopt(zmq.SNDHWM, high_water_mark)
         self._socket.setsockopt(zmq.LINGER, int(linger * 1000))   # if dropped unclosed
         self._ready = False
+        self._refused = False     # a daemon refused our handshake (CurveZMQ) and none let us in
         self._monitor = None
         self._grace = SUBSCRIPTION_GRACE if socket == "pub" else 0.0
-        if kind != zmq.XPUB:   # told when a peer finishes the handshake (wait_ready)
-            self._monitor = self._socket.get_monitor_socket(zmq.EVENT_HANDSHAKE_SUCCEEDED)
+        if kind != zmq.XPUB:   # told when a peer finishes, or refuses, the handshake
+            self._monitor = self._socket.get_monitor_socket(_HANDSHAKE_EVENTS)
         if send_timeout is not None:
             self._socket.setsockopt(zmq.SNDTIMEO, int(send_timeout * 1000))
         try:
@@ -187,14 +194,27 @@ class Producer:
             left = deadline - _time.monotonic()
             if left <= 0:
                 return False
-            watched = self._monitor if self._monitor is not None else self._socket
-            if watched.poll(int(left * 1000) + 1):
-                frame = watched.recv_multipart()[0]
-                # a monitor event, or a subscription (first byte 1) on the XPUB
-                self._ready = self._monitor is not None or frame[:1] == b"\x01"
-                if self._ready and self._monitor is not None and self._grace:
+            if self._monitor is not None:
+                if self._read_handshakes(left) and self._ready and self._grace:
                     _time.sleep(self._grace)
+            elif self._socket.poll(int(left * 1000) + 1):
+                # a subscription (first byte 1) on the XPUB
+                self._ready = self._socket.recv_multipart()[0][:1] == b"\x01"
         return True
+
+    def _read_handshakes(self, wait: float) -> bool:
+        """Read the monitor's handshake events, waiting up to ``wait`` s for the first:
+        a success makes the producer ready, a failure marks it refused. Whether any
+        event came."""
+        came = False
+        while self._monitor.poll(int(wait * 1000) + 1 if not came else 0):
+            came = True
+            event = parse_monitor_message(self._monitor.recv_multipart())["event"]
+            if event == zmq.EVENT_HANDSHAKE_SUCCEEDED:
+                self._ready = True
+            else:
+                self._refused = True
+        return came
 
     def send(self, topic: str, values: object, *, weight: object = None,
              time: object = None) -> None:
@@ -233,6 +253,13 @@ class Producer:
         """
         if self._socket.closed:
             return
+        if self._monitor is not None and self._own_context:
+            self._read_handshakes(0.0)
+            if self._refused and not self._ready:    # nothing can have left: say so now
+                self._abandon()
+                raise DeliveryError(
+                    f"{self.endpoint} refused this producer's handshake (a CurveZMQ key "
+                    f"it does not allow, or none); seq 0..{self.seq - 1} were not sent")
         self._close_monitor()
         if not self._own_context:
             self._socket.close()
