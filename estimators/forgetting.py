@@ -181,6 +181,19 @@ def take_batch(state, n: int, times: np.ndarray | None,
 
 
 
+
+def copy_state(state):
+    """A copy of a slotted estimator state: every slot, numpy arrays copied (the
+    shape ``take_batch`` describes; read-only values such as HalfLife are shared).
+    O(state)."""
+    cls = type(state)
+    new = cls.__new__(cls)
+    for name in cls.__slots__:
+        value = getattr(state, name)
+        setattr(new, name, value.copy() if isinstance(value, np.ndarray) else value)
+    return new
+
+
 def merge_clocks(state, other):
     """Bring ``other`` to ``state``'s footing before the two are pooled, and count its
     rows in: a copy of ``other`` aged to the later clock (``state`` is aged too); with

@@ -8,7 +8,7 @@ from typing import Literal
 import numpy as np
 
 from .errors import DomainError, IncompatibleError, ShapeError
-from .forgetting import HalfLife, age_to, batch_exponent, scale_step, take_batch
+from .forgetting import HalfLife, age_to, batch_exponent, copy_state, scale_step, take_batch
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
 from .mixture_moves import proposals
 from .mixture_reduce import runnalls_reduce
@@ -600,11 +600,7 @@ class Mixture:
                        recent=self.recent)
 
     def copy(self) -> Mixture:
-        new = Mixture.__new__(Mixture)
-        for name in self.__slots__:
-            value = getattr(self, name)
-            setattr(new, name, value.copy() if isinstance(value, np.ndarray) else value)
-        return new
+        return copy_state(self)
 
     # ---------------------------------------------------------------- read-outs
     @property

@@ -20,7 +20,7 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, age_to, ldexp, merge_clocks, scale_step, take_batch
+from .forgetting import HalfLife, age_to, copy_state, ldexp, merge_clocks, scale_step, take_batch
 from .validation import check_batch, check_saved
 
 __all__ = ["Thresholds", "mixture_exceedance", "normal_exceedance"]
@@ -166,11 +166,7 @@ class Thresholds:
         return self
 
     def copy(self) -> Thresholds:
-        new = Thresholds.__new__(Thresholds)
-        for name in self.__slots__:
-            value = getattr(self, name)
-            setattr(new, name, value.copy() if isinstance(value, np.ndarray) else value)
-        return new
+        return copy_state(self)
 
     # ---------------------------------------------------------------- read-outs
     @property

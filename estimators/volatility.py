@@ -7,7 +7,7 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, age_to, scale_step, take_batch
+from .forgetting import HalfLife, age_to, copy_state, scale_step, take_batch
 
 
 class Volatility:
@@ -139,11 +139,7 @@ class Volatility:
             self.E = e
 
     def copy(self) -> Volatility:
-        new = Volatility.__new__(Volatility)
-        for name in self.__slots__:
-            value = getattr(self, name)
-            setattr(new, name, value.copy() if isinstance(value, np.ndarray) else value)
-        return new
+        return copy_state(self)
 
     def decay_to(self, t: float) -> Volatility:
         """Age the state to event time t (never backwards); returns self. O(d)."""
