@@ -302,7 +302,7 @@ class Daemon:
             s.drain(engine, time.time())
         self._flush(time.time())
         if self.checkpointer is not None:
-            self.checkpointed_series = sum(1 for _ in engine.all_series())
+            self.checkpointed_series = engine.series_count()
             self.checkpoint_written = self.checkpointer.final(engine, time.time())
 
     def _flush(self, now: float) -> None:

@@ -21,7 +21,15 @@ from .legs import Joined, Legs
 from .mixture import Mixture
 from .model_tail import nominal_rate, outlier_counts
 from .moments import CORRECTIONS, Moments
-from .moments_columns import Folded, MomentsColumns, blob, fold_rows, from_blob, row_views
+from .moments_columns import (
+    Folded,
+    MomentsColumns,
+    blob,
+    fold_rows,
+    from_blob,
+    mahalanobis_rows,
+    row_views,
+)
 from .regression import Regression
 from .returns import TRANSFORMS, Returns, Stepped
 from .thresholds import Thresholds, mixture_exceedance, normal_exceedance
@@ -32,6 +40,7 @@ from .validation import (
     clean_batch,
     limit_batch,
     screen_batch,
+    screen_rows,
 )
 from .volatility import Volatility
 
@@ -75,7 +84,9 @@ __all__ = [
     "normal_exceedance",
     "normal_tail_rate",
     "outlier_counts",
+    "mahalanobis_rows",
     "row_views",
     "screen_batch",
+    "screen_rows",
     "sums_at",
 ]

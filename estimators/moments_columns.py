@@ -26,6 +26,8 @@ from .validation import check_saved
 
 _LE_F8 = np.dtype("<f8")
 _LE_I8 = np.dtype("<i8")
+# the array fields of MomentsColumns, in order
+_ARRAYS = ("has_clock", "clock", "count", "W", "W2", "mean", "scatter", "E", "lo")
 
 
 def _get(name: str, states: Sequence[Moments]) -> list:
@@ -163,6 +165,56 @@ class MomentsColumns(NamedTuple):
         lo = _stack(_get("_lo", states), (n, dim))
         return cls(dim, half_life, has_clock, clock, count, W, W2, mean, scatter, E, lo)
 
+    @classmethod
+    def zeros(cls, n: int, dim: int, half_life: HalfLife | None) -> MomentsColumns:
+        """n empty states (as ``Moments(dim, half_life)``). O(n d**2)."""
+        return cls(dim, half_life, np.zeros(n, bool), np.zeros(n), np.zeros(n, np.int64),
+                   np.zeros(n), np.zeros(n), np.zeros((n, dim)), np.zeros((n, dim, dim)),
+                   np.zeros(n, np.int64), np.zeros((n, dim)))
+
+    def take(self, idx: np.ndarray | slice) -> MomentsColumns:
+        """The rows ``idx`` (an index array: copies; a slice: views). O(len(idx) d**2)."""
+        return self._replace(has_clock=self.has_clock[idx], clock=self.clock[idx],
+                             count=self.count[idx], W=self.W[idx], W2=self.W2[idx],
+                             mean=self.mean[idx], scatter=self.scatter[idx], E=self.E[idx],
+                             lo=self.lo[idx])
+
+    def put(self, idx: np.ndarray | slice, other: MomentsColumns) -> None:
+        """Overwrite rows ``idx`` with the rows of ``other`` (in place). O(len(idx) d**2)."""
+        for name in _ARRAYS:
+            getattr(self, name)[idx] = getattr(other, name)
+
+    def copy(self, n: int | None = None) -> MomentsColumns:
+        """A copy of the first ``n`` rows (all: None), sharing no memory. O(n d**2)."""
+        part = slice(None) if n is None else slice(0, n)
+        return self._replace(**{name: getattr(self, name)[part].copy() for name in _ARRAYS})
+
+    def resized(self, n: int) -> MomentsColumns:
+        """The first min(n, self.n) rows in new arrays of n rows, the rest empty states
+        (the live form's capacity). O(n d**2)."""
+        out = MomentsColumns.zeros(n, self.dim, self.half_life)
+        k = min(n, self.n)
+        out.put(slice(0, k), self.take(slice(0, k)))
+        return out
+
+    def state(self, i: int) -> Moments:
+        """Row i as a ``Moments`` of its own (no memory shared), bit for bit. O(d**2)."""
+        m = Moments.__new__(Moments)
+        m.dim, m.half_life = self.dim, self.half_life
+        m.clock = float(self.clock[i]) if self.has_clock[i] else None
+        m.count, m.W, m.W2, m.E = int(self.count[i]), float(self.W[i]), float(self.W2[i]), \
+            int(self.E[i])
+        m._mean, m._lo, m._scatter = self.mean[i].copy(), self.lo[i].copy(), \
+            self.scatter[i].copy()
+        return m
+
+    def set_state(self, i: int, m: Moments) -> None:
+        """Write ``m`` (of this dimension and half-life) into row i, bit for bit. O(d**2)."""
+        self.has_clock[i] = m.clock is not None
+        self.clock[i] = 0.0 if m.clock is None else m.clock
+        self.count[i], self.W[i], self.W2[i], self.E[i] = m.count, m.W, m.W2, m.E
+        self.mean[i], self.lo[i], self.scatter[i] = m._mean, m._lo, m._scatter
+
     def states(self) -> list[Moments]:
         """One ``Moments`` per row, equal bit for bit to the stacked ones. O(n d**2).
 
@@ -193,6 +245,15 @@ class MomentsColumns(NamedTuple):
         """E clipped to what ldexp takes (beyond +-2,200 every float64 has under- or
         overflowed anyway)."""
         return np.clip(self.E, -2200, 2200)
+
+    def weight_sums(self) -> tuple[np.ndarray, np.ndarray]:
+        """(W, W2) of every row in plain units, as ``Moments.weight_sum`` and
+        ``weight_sq_sum`` (inf where they overflow float64, 0 where they underflow)."""
+        if not self.E.any():
+            return self.W.copy(), self.W2.copy()
+        e = np.clip(self.E, -4400, 4400)
+        with np.errstate(over="ignore", under="ignore"):
+            return np.ldexp(self.W, e), np.ldexp(self.W2, 2 * e)
 
     def means(self) -> np.ndarray:
         """Weighted means (n, d); NaN rows where W is 0, as ``Moments.mean``."""
@@ -415,6 +476,50 @@ def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
     out = MomentsColumns(dim, hl, has_clock, clock, cols.count + 1, total, W2, mean, scatter,
                          cols.E, lo)
     return Folded(out, ok, dist)
+
+
+def mahalanobis_rows(cols: MomentsColumns, x: np.ndarray,
+                     correction: str = "reliability") -> np.ndarray:
+    """``Moments.mahalanobis`` of row k of ``x`` (n, d) under state k of ``cols``, for
+    every k at once, to the same bits: NaN where W is 0 or the covariance is undefined
+    or singular. O(n d**3) in a few batched numpy calls.
+
+    Examples
+    --------
+    >>> a = Moments(2)
+    >>> a.update([[0.0, 0.0], [2.0, 0.0], [0.0, 2.0], [2.0, 2.0]])
+    >>> cols = MomentsColumns.of([a], 2, None)
+    >>> bool(mahalanobis_rows(cols, np.array([[3.0, 1.0]]), "none")[0]
+    ...      == a.mahalanobis([[3.0, 1.0]], "none")[0])
+    True
+    """
+    n, dim = x.shape
+    out = np.full(n, np.nan)
+    live = cols.W > 0.0
+    if not live.any():
+        return out
+    at = np.flatnonzero(live)
+    part = cols.take(at)
+    diff = x[at] - part.mean
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cov = part.covariances(correction)
+    if dim == 1:
+        c = cov[:, 0, 0]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[at] = np.where(c > 0, np.abs(diff[:, 0]) / np.sqrt(c), np.nan)
+        return out
+    good = np.isfinite(cov).all(axis=(1, 2))
+    try:
+        chol = np.linalg.cholesky(np.where(good[:, None, None], cov, np.eye(dim)))
+    except np.linalg.LinAlgError:   # some covariance is singular: those rows one by one
+        chol = None
+    if chol is None:
+        for i in at.tolist():
+            out[i] = cols.state(i).mahalanobis(x[i:i + 1], correction)[0]
+        return out
+    z = np.linalg.solve(chol, diff[:, :, None])[:, :, 0]
+    out[at] = np.where(good, np.sqrt((z * z).sum(axis=1)), np.nan)
+    return out
 
 
 def row_views(a: np.ndarray, block: int = 8) -> list[np.ndarray]:

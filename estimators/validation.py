@@ -219,6 +219,49 @@ def screen_batch(x: object, dim: int, weights: object = None, times: object = No
     return batch, dropped
 
 
+def screen_rows(x: np.ndarray, weights: np.ndarray | None, times: np.ndarray | None,
+                given: np.ndarray | None, max_abs: float = MAX_ABS_VALUE,
+                min_weight: float = MIN_WEIGHT,
+                max_weight: float = MAX_WEIGHT) -> tuple[np.ndarray, list[tuple[str, np.ndarray]]]:
+    """``screen_batch`` as masks over rows (n, d) that belong to many series at once:
+    which rows to keep, and the rows dropped for each reason (each row under the first
+    that applies, in ``screen_batch``'s order: not_finite, bad_weight, bad_time,
+    out_of_range). ``times`` counts only where ``given`` is True (None: everywhere);
+    elsewhere a row has no time of its own and is never a bad_time. O(n d).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> keep, why = screen_rows(np.array([[1.0], [np.nan], [1e308]]), None, None, None)
+    >>> keep.tolist(), [(r, m.tolist()) for r, m in why]
+    ([True, False, False], [('not_finite', [False, True, False]), \
+('out_of_range', [False, False, True])])
+    """
+    n = x.shape[0]
+    with np.errstate(invalid="ignore"):
+        if n and np.abs(x).max() <= max_abs and (
+                weights is None or (weights.min() >= min_weight
+                                    and weights.max() <= max_weight)) and (
+                times is None or np.isfinite(times if given is None else times[given]).all()):
+            return np.ones(n, bool), []
+        bad_x = ~np.isfinite(x).all(axis=1)
+        bad_w = np.zeros(n, bool) if weights is None else \
+            ~(np.isfinite(weights) & (weights > 0)) & ~bad_x
+        bad_t = np.zeros(n, bool)
+        if times is not None:
+            bad_t = ~np.isfinite(times) & ~bad_x & ~bad_w
+            if given is not None:
+                bad_t &= given
+        dropped = bad_x | bad_w | bad_t
+        far = (np.abs(x) > max_abs).any(axis=1) & ~dropped
+        if weights is not None:
+            bad_w |= ((weights < min_weight) | (weights > max_weight)) & ~dropped & ~far
+    why = [(reason, mask) for reason, mask in (("not_finite", bad_x), ("bad_weight", bad_w),
+                                               ("bad_time", bad_t), ("out_of_range", far))
+           if mask.any()]
+    return ~(dropped | far | bad_w), why
+
+
 def check_xy(x: object, y: object, dim: int, weights: object = None,
              times: object = None) -> Batch:
     """Validate a regression batch: design rows X (n, dim) and responses y (n,).

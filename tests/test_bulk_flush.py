@@ -1,9 +1,9 @@
-"""Many series folded at once at a flush (``Engine._fold_many``) against one by one.
+"""Plain streams held in columns (``store.ColumnStore``) against series as objects.
 
-The reference is the per-series path itself (``Engine._fold`` and ``view_of``, whose
+The reference is the per-series object path (``Engine._fold`` and ``view_of``, whose
 maths ``tests/test_moments.py`` checks against numpy): the same drains fed to an
-engine with the bulk path switched off must give the same views and states, bit for
-bit (``repr`` of a float is exact).
+engine with columns switched off (``Engine(config, columns=False)``) must give the
+same views and states, bit for bit (``repr`` of a float is exact).
 """
 
 from __future__ import annotations
@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 from sigmad.daemon.config.load import parse_config
 from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.engine.store import ColumnStore
 from sigmad.daemon.ingest.wire import encode
 
 BASE = """
@@ -33,8 +34,8 @@ EXTRA
 
 def _engines(fields: str, extra: str, monkeypatch) -> tuple[Engine, Engine]:
     text = BASE.replace("FIELDS", fields).replace("EXTRA", extra)
-    bulk, single = Engine(parse_config(text)), Engine(parse_config(text))
-    monkeypatch.setattr(single, "_fold_many", lambda dirty, now: {})
+    bulk, single = Engine(parse_config(text)), Engine(parse_config(text), columns=False)
+    assert bulk.streams[0].store is not None and single.streams[0].store is None
     return bulk, single
 
 
@@ -83,17 +84,18 @@ def _same(bulk: Engine, single: Engine) -> None:
 def test_bulk_flush_equals_series_by_series(dim, half_life, weighted, bad, monkeypatch):
     fields = '["a"]' if dim == 1 else '["a", "b"]'
     bulk, single = _engines(fields, half_life, monkeypatch)
-    calls = []
-    real = bulk._fold_group
-    monkeypatch.setattr(bulk, "_fold_group",
-                        lambda *a: calls.append(len(a[0])) or real(*a))
+    calls = []   # series folded one by one (several rows in a flush, or a rare state)
+    real = ColumnStore._fold_one
+    monkeypatch.setattr(ColumnStore, "_fold_one",
+                        lambda self, r, p, *a: calls.append(len(p)) or real(self, r, p, *a))
     for now, msgs in _drains(dim, 60, 12, seed=dim * 7 + len(half_life),
                              timed=True, weighted=weighted, bad=bad):
         for e in (bulk, single):
             e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], now)
             e.flush(now)
         _same(bulk, single)
-    assert sum(calls) > 300     # the bulk path did fold most of the rows
+    rows = sum(v.observations for v in bulk.snapshot.series.values())
+    assert 0 < sum(calls) < rows / 3   # most rows were folded in columns, some one by one
 
 
 def test_bulk_flush_with_limits_and_untimed_rows(monkeypatch):
@@ -117,15 +119,13 @@ def test_long_silence_takes_the_series_path_and_agrees(monkeypatch):
         _same(bulk, single)
 
 
-def test_a_series_keeps_at_most_a_block_of_rows_alive(monkeypatch):
-    # written-back means are views of 8-row copies: a sender that lets one series of a
-    # large flush go quiet cannot pin that flush's whole arrays
+def test_quiet_series_live_in_columns_not_objects(monkeypatch):
     bulk, _ = _engines('["a"]', "", monkeypatch)
     msgs = [(f"s.k{k}".encode(), encode({"a": float(k)})) for k in range(1000)]
     bulk.ingest_many([t for t, _ in msgs], [b for _, b in msgs], 10.0)
     bulk.flush(10.0)
-    states = [s.moments for s in bulk.streams[0].series.values()]
-    assert all(s.count == 1 for s in states)
-    for m in states:
-        for a in (m._mean, m._lo, m._scatter):
-            assert a.base is None or a.base.shape[0] <= 8
+    store = bulk.streams[0].store
+    assert store.n == 1000 and store.observations[:1000].tolist() == [1] * 1000
+    assert store.moments.mean[:1000, 0].tolist() == [float(k) for k in range(1000)]
+    assert len(bulk.snapshot.series) == 1000
+    assert bulk.snapshot.series[("s", (("k", "k7"),))].mean == (7.0,)

@@ -129,8 +129,11 @@ def test_round_trip_is_exact_for_many_scalar_series_with_odd_states(tmp_path):
         e.ingest(f"p.{i}".encode(), encode({"a": rows[:, 0], "b": rows[:, 1],
                                             "c": rows[:, 2]}), NOW)
     e.flush(NOW)
-    old = next(s for s in e.all_series() if s.labels == ("0",))
-    old.moments.decay_to(NOW + 1e9)      # every weight decays to nothing: W = 0
+    store = e.stream("m").store          # the stream's series live in columns
+    i = store.index[("0",)]
+    old = store.moments.state(i)
+    old.decay_to(NOW + 1e9)              # every weight decays to nothing: W = 0
+    store.moments.set_state(i, old)
     e.flush(NOW)
     fresh = Engine(e.config)
     restored, dropped = restore_checkpoint(fresh, decode_checkpoint(checkpoint_bytes(e)), NOW)

@@ -6,11 +6,10 @@ state, so the hot path takes no locks. Readers get immutable ``Snapshot``s.
 
 from __future__ import annotations
 
-import gc
 import logging
 import math
 from collections import Counter
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from itertools import compress
 
@@ -21,33 +20,29 @@ from sigmad.daemon.engine.snapshot import (
     LevelsView,
     MixtureView,
     RegressionView,
+    SeriesTable,
     SeriesView,
     Snapshot,
     series_view,
 )
+from sigmad.daemon.engine.store import ColumnStore
 from sigmad.daemon.ingest.layouts import LayoutTable, Readout, learn, runs
 from sigmad.daemon.ingest.topics import series_text
 from sigmad.daemon.ingest.wire import Reader, Single, WireError
 from sigmad.estimators import (
-    MAX_WEIGHT,
-    MIN_WEIGHT,
-    Folded,
     IncompatibleError,
     Legs,
     Mixture,
     Moments,
-    MomentsColumns,
     Regression,
     Returns,
     Thresholds,
     Volatility,
-    fold_rows,
     limit_batch,
     mixture_exceedance,
     nominal_rate,
     normal_exceedance,
     outlier_counts,
-    row_views,
     screen_batch,
 )
 
@@ -63,6 +58,7 @@ _ROUTE_ENTRY_BYTES = 300
 _NOT_LEARNT_LIMIT = 16_384
 _UNSEEN = object()
 _MAX_PRODUCERS = 100_000            # sequence numbers tracked for at most this many sources
+_NO_ROW = np.iinfo(np.int64).min    # a message refused: its stream's max_series is reached
 # Byte layouts (ingest_many): drains shorter than LAYOUT_MIN_MESSAGES are decoded
 # message by message, and so is a drain that misfits cut into more than MAX_RUNS
 # blocks. A drain of n messages learns at most max(LEARN_PER_DRAIN, n // 8) layouts
@@ -220,6 +216,7 @@ class LegState:
         self.fields = (field,)
         self.dim = 1
         self.series: dict[tuple[str, ...], LegSeries] = {}
+        self.store = None   # a leg's rows go to the joined stream's series, never columns
 
     def new_series(self, labels: tuple[str, ...]) -> LegSeries:
         return LegSeries(self, labels, None, None, None, [], leg=self)
@@ -272,6 +269,20 @@ class StreamState:
             legs != self.field_list else None
         self.limits = None if cfg.limits is None else \
             (np.array([lo for lo, _ in cfg.limits]), np.array([hi for _, hi in cfg.limits]))
+        self.store: ColumnStore | None = None   # plain streams: series live in columns
+
+    def keep_in_columns(self) -> None:
+        """Hold this stream's series in a ``ColumnStore`` (``plain`` streams only)."""
+        self.store = ColumnStore(self)
+        self.series = StoreSeries(self)
+
+    @property
+    def plain(self) -> bool:
+        """Whether the series keep only moments and outlier counts: no regression,
+        mixture, transform, legs, thresholds or sessions (what columns hold)."""
+        cfg = self.cfg
+        return cfg.regression is None and cfg.mixture is None and cfg.transform is None \
+            and not cfg.legs and not self.threshold_at and cfg.session_reset is None
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
         cfg = self.cfg
@@ -298,6 +309,45 @@ class StreamState:
 
     def new_thresholds(self) -> list[Thresholds] | tuple:
         return [Thresholds(b, self.cfg.half_life) for _, b in self.threshold_at] or ()
+
+
+class StoreSeries(Mapping):
+    """``StreamState.series`` of a stream in columns: label values -> a ``Series``
+    built from its row, detached (changing it changes nothing live). O(d**2) a read."""
+
+    def __init__(self, st: StreamState) -> None:
+        self.st = st
+
+    def __getitem__(self, labels: tuple[str, ...]) -> Series:
+        store = self.st.store
+        i = store.index.get(labels)
+        if i is None:
+            raise KeyError(labels)
+        return self._series(i)
+
+    def _series(self, i: int) -> Series:
+        st, store = self.st, self.st.store
+        labels = store.labels[i]
+        return Series(st, labels, store.moments.state(i), None, None,
+                      store.outliers[i].tolist(), int(store.observations[i]),
+                      int(store.version[i]), float(store.last_update[i]),
+                      (st.name, tuple(zip(st.cfg.topic.labels, labels, strict=True))))
+
+    def __contains__(self, labels) -> bool:
+        return labels in self.st.store.index
+
+    def __iter__(self):
+        store = self.st.store
+        return iter(store.labels[:store.n])
+
+    def __len__(self) -> int:
+        return self.st.store.n
+
+    def values(self):   # type: ignore[override]
+        return [self._series(i) for i in range(self.st.store.n)]
+
+    def items(self):   # type: ignore[override]
+        return [(s.labels, s) for s in self.values()]
 
 
 def _kinds(cfg: StreamConfig) -> list[str]:
@@ -556,24 +606,6 @@ def _levels(s: Series, means: tuple, variances: tuple) -> LevelsView:
                       tuple(tuple(th.observed_share.tolist()) for th in ths))
 
 
-def _bulk_stream(st) -> bool:
-    """Whether a stream's series keep only moments and outlier counts (``_fold_many``)."""
-    ok = getattr(st, "bulk", None)
-    if ok is None:
-        cfg = st.cfg
-        ok = st.bulk = isinstance(st, StreamState) and cfg.regression is None \
-            and cfg.mixture is None and cfg.transform is None and not cfg.legs \
-            and not st.threshold_at
-    return ok
-
-
-def _take(c: MomentsColumns, idx: np.ndarray) -> MomentsColumns:
-    """The rows ``idx`` of some columns."""
-    return c._replace(has_clock=c.has_clock[idx], clock=c.clock[idx], count=c.count[idx],
-                      W=c.W[idx], W2=c.W2[idx], mean=c.mean[idx], scatter=c.scatter[idx],
-                      E=c.E[idx], lo=c.lo[idx])
-
-
 class Engine:
     """Routes, validates and folds observations; builds snapshots.
 
@@ -581,9 +613,12 @@ class Engine:
     ----------
     config : Config
         The validated configuration.
+    columns : bool
+        Hold plain streams' series in columns (``store.ColumnStore``); False keeps
+        every series an object (the reference the column path is tested against).
     """
 
-    def __init__(self, config: Config) -> None:
+    def __init__(self, config: Config, columns: bool = True) -> None:
         self.config = config
         d = config.daemon
 
@@ -592,6 +627,10 @@ class Engine:
 
         self.streams = [StreamState(s, None if s.legs else reader(s.fields))
                         for s in config.streams]
+        for st in self.streams:
+            if columns and st.plain:
+                st.keep_in_columns()
+        self._stores: dict[int, ColumnStore] = {}    # stores with rows waiting, by id
         # what topics route to: plain streams, and each leg of a joined one
         self._routable = [st for st in self.streams if st.topic is not None] + [
             LegState(st, i, f, tpl, self, reader((f,))) for st in self.streams
@@ -620,6 +659,11 @@ class Engine:
         self._max_skew = d.max_clock_skew
         self._max_ahead = d.max_time_ahead
         self._layouts = LayoutTable(max(st.dim for st in self.streams) if self.streams else 1)
+        # per layout route id: its series' row in its stream's store (-1: not known yet)
+        # and the store's number in self.streams (-1: the route's series is an object)
+        self._route_rows = np.zeros(0, np.int64)
+        self._route_store = np.zeros(0, np.int64)
+        self._route_list: list | None = None
         self._not_learnt: dict[tuple[bytes, int], int] = {}
         self._drains = 0
 
@@ -814,6 +858,15 @@ class Engine:
         at = np.arange(start, stop) if keep is None else np.flatnonzero(keep) + start
         if not at.size:
             return 0
+        queued = 0
+        store_of = self._sync_routes()[r.route[at]]
+        in_columns = store_of >= 0
+        if in_columns.any():
+            queued = self._queue_columns(r, at[in_columns], store_of[in_columns], now)
+            at = at[~in_columns]
+            if not at.size:
+                self.pending_rows += queued
+                return queued
         order, ids, starts, counts = runs(r.route[at])
         rows = at[order]   # grouped by series, arrival order kept within each
         # gathered once for the whole run; each series takes slices (views), so a
@@ -824,7 +877,6 @@ class Engine:
         timed = np.add.reduceat(has_t, starts).tolist() if has_t.any() else None
         weights = np.where(has_w, r.weight[rows], 1.0) if weighted else None
         times = np.where(has_t, r.time[rows], now) if timed else None
-        queued = 0
         routes, dirty = self._layouts.routes, self._dirty
         for k, (rid, begin, count) in enumerate(zip(ids.tolist(), starts.tolist(),
                                                     counts.tolist(), strict=True)):
@@ -844,6 +896,74 @@ class Engine:
             dirty[id(series)] = series
             queued += count
         self.pending_rows += queued
+        return queued
+
+    def _sync_routes(self) -> np.ndarray:
+        """Per layout route id, the number of its stream in self.streams when that
+        stream holds its series in columns, else -1 (kept in step with the table, whose
+        ids start afresh when it fills). Amortised O(new routes)."""
+        routes = self._layouts.routes
+        if routes is not self._route_list:
+            self._route_list = routes
+            self._route_rows = np.zeros(0, np.int64)
+            self._route_store = np.zeros(0, np.int64)
+        have = self._route_store.shape[0]
+        if len(routes) > have:
+            number = {id(st): i for i, st in enumerate(self.streams) if st.store is not None}
+            new = [number.get(id(route[0]), -1) for route in routes[have:]]
+            self._route_store = np.r_[self._route_store, np.array(new, np.int64)]
+            self._route_rows = np.r_[self._route_rows, np.full(len(new), -1, np.int64)]
+        return self._route_store
+
+    def _queue_columns(self, r: Readout, at: np.ndarray, store_of: np.ndarray,
+                       now: float) -> int:
+        """``_queue_fitting`` for the messages ``at`` whose streams keep columns: one
+        chunk per stream, the series' rows found through ``_route_rows``; Python only
+        for a route seen for the first time. Returns the rows queued. O(messages)."""
+        queued = 0
+        routes = self._layouts.routes
+        for number in np.unique(store_of).tolist():
+            sel = at if store_of[0] == store_of[-1] and (store_of == number).all() \
+                else at[store_of == number]
+            st = self.streams[number]
+            store = st.store
+            rids = r.route[sel]
+            rows = self._route_rows[rids]
+            unknown = rows < 0
+            if unknown.any():   # new routes, or series not created yet (provisional rows)
+                ids, first = np.unique(rids[unknown], return_index=True)
+                found = np.empty(ids.shape[0], np.int64)
+                full = []
+                for k in np.argsort(first).tolist():   # series in order of first arrival
+                    rid = int(ids[k])
+                    row = store.row_for(routes[rid][1])
+                    if row is None:
+                        full.append(k)
+                        row = _NO_ROW
+                    elif row >= 0:
+                        self._route_rows[rid] = row
+                    found[k] = row
+                rows = rows.copy()
+                rows[unknown] = found[np.searchsorted(ids, rids[unknown])]
+                if full:
+                    over = rows == _NO_ROW
+                    for k in full:
+                        rid = int(ids[k])
+                        self.reject("series_limit", int(np.count_nonzero(rids == rid)),
+                                    topic=_route_name(routes[rid]), now=now)
+                    sel, rows = sel[~over], rows[~over]
+                    if not sel.size:
+                        continue
+            w = t = given = None
+            has_w = r.has_weight[sel]
+            if has_w.any():
+                w = np.where(has_w, r.weight[sel], 1.0)
+            has_t = r.has_time[sel]
+            if has_t.any():
+                t, given = np.where(has_t, r.time[sel], math.nan), has_t
+            store.queue(rows, r.values[sel, :st.dim], w, t, given, now)
+            self._stores[id(store)] = store
+            queued += sel.shape[0]
         return queued
 
     def _count_gaps(self, source: np.ndarray, seq: np.ndarray) -> None:
@@ -890,6 +1010,7 @@ class Engine:
         max_skew, max_ahead, count_gap = self._max_skew, self._max_ahead, self._count_gap
         isfinite = math.isfinite
         touched: dict[int, Series] = {}
+        stores: dict[int, ColumnStore] = {}
         queued = 0
         for topic, body in zip(topics, bodies, strict=True):
             route = routes.get(topic, _UNSEEN)
@@ -923,6 +1044,20 @@ class Engine:
                 n = dec.values.shape[0]
                 if n == 0:
                     continue
+            store = st.store
+            if store is not None:
+                at = store.row_for(labels)
+                if at is None:
+                    reject("series_limit", n, topic=topic, now=now)
+                    continue
+                if single:
+                    store.add_single(at, row[0] if st.dim == 1 else row, weight, when)
+                else:
+                    store.queue(np.full(n, at, np.int64), dec.values, dec.weights, dec.times,
+                                None, now)
+                stores[id(store)] = store
+                queued += n
+                continue
             series = st.series.get(labels)
             if series is None:
                 if len(st.series) >= st.cfg.max_series:
@@ -945,7 +1080,10 @@ class Engine:
             queued += n
         for series in touched.values():
             series.seal_rows(now)
+        for store in stores.values():
+            store.seal(now)
         self._dirty.update(touched)
+        self._stores.update(stores)
         self.messages[endpoint] += len(bodies)
         self.pending_rows += queued
         return queued
@@ -990,30 +1128,14 @@ class Engine:
         if self._sessions:
             self._reset_sessions(now)
         dirty, self._dirty = self._dirty, {}
+        stores, self._stores = self._stores, {}
         self.pending_rows = 0
         views = self._views
         changed = False
-        folded = {}
-        if len(dirty) > 1:
-            # the cyclic collector paused while thousands of views are built: each young
-            # collection during the flush counts toward a full one, which walks every
-            # live series (about half the flush's time at 10,000 quiet series here)
-            was = gc.isenabled()
-            gc.disable()
-            try:
-                folded = self._fold_many(dirty, now)
-            finally:
-                if was:
-                    gc.enable()
         for series in dirty.values():
             if series.moments is None:   # a leg: its rows went to the joined series
                 continue
-            view = folded.get(id(series))
-            if view is not None:
-                views = views if changed else dict(views)
-                changed = True
-                views[series.key] = view
-            elif self._fold(series, now):
+            if self._fold(series, now):
                 views = views if changed else dict(views)
                 changed = True
                 views[series.key] = view_of(series)
@@ -1025,6 +1147,15 @@ class Engine:
                 st = series.stream
                 if st.series.get(series.labels) is series:
                     del st.series[series.labels]
+        max_abs = self.config.daemon.max_abs_value
+        for store in stores.values():
+            st = store.st
+
+            def reject(reason: str, count: int, labels: tuple, st=st) -> None:
+                self.reject(reason, count, topic=series_text(st.name, st.cfg.topic.labels,
+                                                             labels), now=now)
+            if store.flush(now, max_abs, reject):
+                store.freeze()
         if changed or self.snapshot.taken_at == 0.0:
             self._views = views
         self.flushes += 1
@@ -1062,118 +1193,6 @@ class Engine:
             st.series = fresh
             self._views = {k: v for k, v in views.items() if k[0] != st.name}
             st.next_reset = reset.next_after(now)
-
-    def _fold_many(self, dirty: dict[int, Series], now: float) -> dict[int, SeriesView]:
-        """Fold the series that wait with exactly one row each, a stream at a time, in a
-        few numpy operations per stream (``moments_columns.fold_rows``), and build their
-        views at once (``columns.views``); returns id(series) -> view. A series is left
-        to ``_fold`` (and gets no entry) when its stream keeps more than moments and
-        outliers (regression, mixture, transform, legs, thresholds), when its row needs a
-        rejection or a limit, or when its state is outside ``fold_rows``' common case:
-        the states and counts come out the same either way. O(series (d**2 + quantiles))."""
-        from sigmad.daemon.storage.columns import views as bulk_views
-
-        groups: dict[int, list[Series]] = {}
-        for series in dirty.values():
-            st = series.stream
-            if not _bulk_stream(st):
-                continue
-            p = series.pending
-            if len(p) == 1 and p[0][0].shape[0] == 1:
-                group = groups.get(id(st))
-                if group is None:
-                    group = groups[id(st)] = []
-                group.append(series)
-        out: dict[int, SeriesView] = {}
-        for group in groups.values():
-            if len(group) > 1:
-                self._fold_group(group, now, out, bulk_views)
-        return out
-
-    def _fold_group(self, group: list[Series], now: float, out: dict, bulk_views) -> None:
-        """``_fold_many`` for the series of one stream (see there)."""
-        st = group[0].stream
-        cfg = st.cfg
-        chunks = [s.pending[0] for s in group]
-        x = np.concatenate([c[0] for c in chunks]).astype(np.float64, copy=False)
-        n = x.shape[0]
-        w = t = None
-        if any(c[1] is not None for c in chunks):
-            w = np.array([1.0 if c[1] is None else float(c[1][0]) for c in chunks])
-        given = None
-        if st.time_based or any(c[2] is not None for c in chunks):
-            # a row without a time: its arrival where the stream forgets by time, else
-            # NaN, which fold_rows reads as "no time" (a sent NaN is screened out below)
-            given = np.array([c[2] is not None for c in chunks])
-            none = math.nan
-            t = np.array([(c[3] if st.time_based else none) if c[2] is None
-                          else float(c[2][0]) for c in chunks])
-        # the rows screen_batch (and limit_batch) pass whole; others take _fold and its
-        # rejection counts
-        with np.errstate(invalid="ignore"):
-            good = (np.abs(x) <= self.config.daemon.max_abs_value).all(axis=1)
-            if w is not None:
-                good &= (w >= MIN_WEIGHT) & (w <= MAX_WEIGHT)
-            if t is not None:
-                good &= np.isfinite(t) | ~given
-            if st.limits is not None:
-                good &= ((x >= st.limits[0]) & (x <= st.limits[1])).all(axis=1)
-        if not good.all():
-            idx = np.flatnonzero(good)
-            group = [group[i] for i in idx.tolist()]
-            x = x[idx]
-            w = None if w is None else w[idx]
-            t = None if t is None else t[idx]
-            n = len(group)
-            if n < 2:
-                return
-        before = MomentsColumns.of([s.moments for s in group], st.dim, cfg.half_life)
-        res = fold_rows(before, x, w, t, cfg.correction)
-        ok = res.ok
-        if not ok.all():
-            idx = np.flatnonzero(ok)
-            group = [group[i] for i in idx.tolist()]
-            x = x[idx]
-            before = _take(before, idx)
-            res = Folded(_take(res.columns, idx), ok[idx], res.distance[idx])
-            if len(group) < 2:
-                return
-        cols = res.columns
-        sigmas = cfg.outlier_sigmas
-        counts = None
-        if sigmas:
-            warm = before.count >= cfg.outlier_warmup
-            if warm.any():
-                dist = res.distance
-                if st.dim > 1:   # Mahalanobis by Cholesky: per series, under the old state
-                    dist = np.array([float(s.moments.mahalanobis(x[k:k + 1], cfg.correction)[0])
-                                     if wk else math.nan
-                                     for k, (s, wk) in enumerate(zip(group, warm.tolist(),
-                                                                     strict=True))])
-                with np.errstate(invalid="ignore"):
-                    counts = [((dist > k) & warm).tolist() for k in sigmas]
-        clocks = cols.clock.tolist() if cfg.half_life is not None else \
-            [c if h else None for c, h in zip(cols.clock.tolist(), cols.has_clock.tolist(),
-                                              strict=True)]
-        means, los, scatters = row_views(cols.mean), row_views(cols.lo), \
-            row_views(cols.scatter)
-        for k, (s, clock, count, total, w2) in enumerate(zip(
-                group, clocks, cols.count.tolist(), cols.W.tolist(), cols.W2.tolist(),
-                strict=True)):
-            s.pending = ()
-            m = s.moments
-            m.clock, m.count, m.W, m.W2 = clock, count, total, w2
-            m._mean, m._lo, m._scatter = means[k], los[k], scatters[k]
-            if counts is not None:
-                o = s.outliers
-                for i, c in enumerate(counts):
-                    if c[k]:
-                        o[i] += 1
-            s.observations += 1
-            s.version += 1
-            s.last_update = now
-        for s, view in zip(group, bulk_views(st, group, cols), strict=True):
-            out[id(s)] = view
 
     def _fold(self, series: Series, now: float) -> bool:
         chunks, series.pending = series.pending, ()
@@ -1305,7 +1324,9 @@ class Engine:
                         rejected=tuple(sorted(self.rejected.items())),
                         sequence_gaps=tuple(sorted(self.gaps.items())),
                         flushes=self.flushes)
-        return Snapshot(taken_at=now, series=self._views,
+        blocks = tuple(st.store.block for st in self.streams
+                       if st.store is not None and st.store.block is not None)
+        return Snapshot(taken_at=now, series=SeriesTable(self._views, blocks),
                         series_per_stream=tuple((st.name, len(st.series))
                                                 for st in self.streams),
                         health=health, closed=tuple(
@@ -1314,9 +1335,22 @@ class Engine:
     def expire_idle(self, now: float) -> int:
         """Drop series idle for longer than their stream's idle_expiry; returns how many."""
         gone = set()
-        for st in self.streams:
+        dropped = 0
+        for number, st in enumerate(self.streams):
             limit = st.cfg.idle_expiry
             if limit is None:
+                continue
+            store = st.store
+            if store is not None:
+                n = store.n
+                stale = now - store.last_update[:n] > limit
+                if store.waiting and stale.any():
+                    stale[store.waiting_rows()] = False
+                if stale.any():
+                    dropped += int(stale.sum())
+                    store.keep_only(~stale)
+                    self._route_rows[self._sync_routes() == number] = -1
+                    store.freeze()
                 continue
             stale = [k for k, s in st.series.items()
                      if now - s.last_update > limit and not s.pending]
@@ -1324,8 +1358,13 @@ class Engine:
                 gone.add(st.series.pop(labels).key)
         if gone:
             self._views = {k: v for k, v in self._views.items() if k not in gone}
+        if gone or dropped:
             self.snapshot = self._make_snapshot(now)
-        return len(gone)
+        return len(gone) + dropped
+
+    def series_count(self) -> int:
+        """Live series in every stream. O(streams)."""
+        return sum(len(st.series) for st in self.streams)
 
     def all_series(self):
         for st in self.streams:
@@ -1366,13 +1405,21 @@ class Engine:
         because their stream's max_series is reached. O(len(series) + live series)."""
         refused = []
         fresh = {}
+        stores: dict[int, list[Series]] = {}
         for s, v in zip(series, views, strict=True):
             st = s.stream
+            if st.store is not None:
+                stores.setdefault(id(st), []).append(s)
+                continue
             if s.labels not in st.series and len(st.series) >= st.cfg.max_series:
                 refused.append(s)
                 continue
             st.series[s.labels] = s
             fresh[s.key] = v
+        for group in stores.values():
+            store = group[0].stream.store
+            refused += store.adopt(group)
+            store.freeze()
         self._views = {**self._views, **fresh}
         self.snapshot = self._make_snapshot(now)
         return refused

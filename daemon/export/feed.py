@@ -51,12 +51,14 @@ class EstimateFeed:
             raise
 
     def send_changes(self, snap: Snapshot, now: float) -> int:
-        """Send every series of ``snap`` whose read-out changed since the last call (views
-        are immutable: a new object is a change). Returns the messages sent. O(series)."""
+        """Send every series of ``snap`` whose read-out changed since the last call (its
+        version, last update or count moved). Returns the messages sent. O(series)."""
         last, sent = self._last, 0
         send = self.socket.send_multipart
+        seen = {}
         for key, view in snap.series.items():
-            if last.get(key) is view:
+            stamp = seen[key] = (view.version, view.last_update, view.observations)
+            if last.get(key) == stamp:
                 continue
             body = msgpack.packb({"format": FEED_FORMAT, "sent_at": now,
                                   "series": series_json(view, now)}, use_bin_type=True)
@@ -65,7 +67,7 @@ class EstimateFeed:
                 sent += 1
             except zmq.Again:
                 self.dropped += 1
-        self._last = snap.series
+        self._last = seen
         self.sent += sent
         return sent
 

@@ -60,7 +60,9 @@ class History:
             fresh: dict[Key, deque[Point]] = {}
             items = snap.series.items()
             if len(snap.series) > self.max_series:
-                items = heapq.nlargest(self.max_series, items, key=_last_update)
+                latest = getattr(snap.series, "latest", None)   # a SeriesTable
+                items = latest(self.max_series) if latest is not None else \
+                    heapq.nlargest(self.max_series, items, key=_last_update)
             for key, view in items:
                 buf = old.get(key)
                 if buf is None:

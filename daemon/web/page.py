@@ -187,7 +187,9 @@ def _card(v: SeriesView, history: History | None, now: float) -> str:
 def _shown(snap: Snapshot, limit: int) -> list[SeriesView]:
     views = snap.series.values()
     if len(snap.series) > limit:
-        views = heapq.nlargest(limit, views, key=lambda v: v.last_update)
+        latest = getattr(snap.series, "latest", None)   # a SeriesTable: without every view
+        views = [v for _, v in latest(limit)] if latest is not None else \
+            heapq.nlargest(limit, views, key=lambda v: v.last_update)
     return sorted(views, key=lambda v: v.key)
 
 

@@ -1,0 +1,346 @@
+"""The live form of a plain stream: every series one row of column arrays.
+
+A stream that keeps only moments and outlier counts (no thresholds, regression,
+mixture, transform, legs or sessions) holds its series here rather than as one
+object each: a series costs its row of a few arrays, its label values and one
+dict slot, and a drain of many quiet series is queued and folded in a few numpy
+operations per stream (``moments_columns.fold_rows``), with no Python per series.
+Readers get a frozen copy (``snapshot.SeriesBlock``) whose views are built when
+read.
+
+Rows wait in ``chunks`` until the flush. A series is created only at the flush,
+for rows that passed every check: until then a new label set has a provisional
+row (negative), so rejected input leaves no series behind. Rows of a series
+that sends one row per flush are folded together in columns; a series with
+several rows in one flush (or a state outside ``fold_rows``' common case) is
+folded as a ``Moments`` of its own, exactly as an object series would be.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+
+import numpy as np
+from sigmad.daemon.engine.snapshot import SeriesBlock
+from sigmad.estimators import MomentsColumns, fold_rows, mahalanobis_rows, screen_rows
+
+
+def _grown(a: np.ndarray, n: int) -> np.ndarray:
+    out = np.zeros((n, *a.shape[1:]), a.dtype)
+    out[:a.shape[0]] = a
+    return out
+
+
+class ColumnStore:
+    """The series of one plain stream ``st`` (an engine ``StreamState``) as columns.
+
+    Attributes
+    ----------
+    index : dict
+        Label values -> row. Only appended to; replaced whole when series leave.
+    labels : list
+        Label values per row (the same discipline).
+    n : int
+        Live series (rows ``0 .. n-1``); arrays hold ``capacity`` rows.
+    """
+
+    def __init__(self, st) -> None:
+        cfg = st.cfg
+        self.st = st
+        self.dim = st.dim
+        self.index: dict[tuple[str, ...], int] = {}
+        self.labels: list[tuple[str, ...]] = []
+        self.n = 0
+        self.capacity = 0
+        self.moments = MomentsColumns.zeros(0, st.dim, cfg.half_life)
+        self.observations = np.zeros(0, np.int64)
+        self.version = np.zeros(0, np.int64)
+        self.last_update = np.zeros(0)
+        self.outliers = np.zeros((0, len(cfg.outlier_sigmas)), np.int64)
+        self.fresh: dict[tuple[str, ...], int] = {}   # provisional rows: -1, -2, ...
+        self.fresh_labels: list[tuple[str, ...]] = []
+        # (rows, x (m, d), weights | None, times | None, given | None, arrival); times
+        # count only where ``given`` (None: all given)
+        self.chunks: list[tuple] = []
+        self.singles: list = []      # rows of single observations waiting to be sealed
+        self.values: list = []
+        self.extras: list = []       # (position, weight | None, time | None)
+        self.block: SeriesBlock | None = None
+
+    # ------------------------------------------------------------------ rows
+    def row_for(self, labels: tuple[str, ...]) -> int | None:
+        """The row of ``labels``: live (>= 0), provisional (< 0, created at the flush
+        if a row survives), or None when the stream's max_series is reached. O(1)."""
+        r = self.index.get(labels)
+        if r is not None:
+            return r
+        r = self.fresh.get(labels)
+        if r is not None:
+            return r
+        if self.n + len(self.fresh) >= self.st.cfg.max_series:
+            return None
+        r = self.fresh[labels] = -len(self.fresh_labels) - 1
+        self.fresh_labels.append(labels)
+        return r
+
+    def labels_of(self, row: int) -> tuple[str, ...]:
+        return self.labels[row] if row >= 0 else self.fresh_labels[-row - 1]
+
+    def _rows_of(self, labels: list[tuple[str, ...]]) -> np.ndarray:
+        """The rows of ``labels``, new ones appended (a label set restored while its
+        rows waited is live already). O(k)."""
+        index = self.index
+        if not any(values in index for values in labels):
+            return self._append(labels)
+        new = [values for values in dict.fromkeys(labels) if values not in index]
+        self._append(new)
+        return np.array([index[values] for values in labels], np.int64)
+
+    def adopt(self, series: list) -> list:
+        """Make restored series (engine ``Series`` of this stream) live, each replacing
+        a live one of the same labels; returns those refused because max_series is
+        reached. O(len(series) d**2)."""
+        refused = []
+        limit = self.st.cfg.max_series
+        for s in series:
+            i = self.index.get(s.labels)
+            if i is None:
+                if self.n >= limit:
+                    refused.append(s)
+                    continue
+                i = int(self._append([s.labels])[0])
+            self.moments.set_state(i, s.moments)
+            self.observations[i], self.version[i] = s.observations, s.version
+            self.last_update[i] = s.last_update
+            self.outliers[i] = s.outliers
+        return refused
+
+    def _append(self, labels: list[tuple[str, ...]]) -> np.ndarray:
+        """New empty rows for ``labels`` (in order); their row numbers. Amortised O(k)."""
+        first, need = self.n, self.n + len(labels)
+        if need > self.capacity:
+            cap = max(need, 2 * self.capacity, 64)
+            self.moments = self.moments.resized(cap)
+            self.observations = _grown(self.observations, cap)
+            self.version = _grown(self.version, cap)
+            self.last_update = _grown(self.last_update, cap)
+            self.outliers = _grown(self.outliers, cap)
+            self.capacity = cap
+        index = self.index
+        for i, values in enumerate(labels, first):
+            index[values] = i
+        self.labels.extend(labels)
+        self.n = need
+        return np.arange(first, need)
+
+    # ----------------------------------------------------------------- queue
+    def add_single(self, row: int, value, weight: float | None, when: float | None) -> None:
+        """Queue one observation (``value``: a float, or d floats)."""
+        if weight is not None or when is not None:
+            self.extras.append((len(self.singles), weight, when))
+        self.singles.append(row)
+        self.values.append(value)
+
+    def seal(self, arrival: float) -> None:
+        """Turn the waiting single observations into one chunk (arrival order kept)."""
+        if not self.singles:
+            return
+        rows = np.array(self.singles, np.int64)
+        x = np.array(self.values, dtype=np.float64).reshape(rows.shape[0], self.dim)
+        w = t = given = None
+        if self.extras:
+            at, ws, ts = zip(*self.extras, strict=True)
+            at = list(at)
+            if any(v is not None for v in ws):
+                w = np.ones(rows.shape[0])
+                w[at] = [1.0 if v is None else v for v in ws]
+            if any(v is not None for v in ts):
+                t = np.full(rows.shape[0], math.nan)
+                given = np.zeros(rows.shape[0], bool)
+                t[at] = [math.nan if v is None else v for v in ts]
+                given[at] = [v is not None for v in ts]
+        self.chunks.append((rows, x, w, t, given, arrival))
+        self.singles, self.values, self.extras = [], [], []
+
+    def queue(self, rows: np.ndarray, x: np.ndarray, w, t, given, arrival: float) -> None:
+        self.seal(arrival)
+        self.chunks.append((rows, x, w, t, given, arrival))
+
+    @property
+    def waiting(self) -> bool:
+        return bool(self.chunks or self.singles)
+
+    def waiting_rows(self) -> np.ndarray:
+        """The live rows with observations waiting for the flush."""
+        parts = [c[0] for c in self.chunks] + [np.array(self.singles, np.int64)]
+        rows = np.concatenate(parts)
+        return np.unique(rows[rows >= 0])
+
+    # ----------------------------------------------------------------- flush
+    def flush(self, now: float, max_abs: float,
+              reject: Callable[[str, int, tuple[str, ...]], None]) -> bool:
+        """Screen and fold every waiting row; True if any series changed. Rejections
+        are reported per series as ``reject(reason, count, labels)``. O(rows d**2),
+        plus O(d**2) Python per series with more than one row (see the module notes)."""
+        self.seal(now)
+        chunks, self.chunks = self.chunks, []
+        fresh = self.fresh_labels
+        self.fresh, self.fresh_labels = {}, []
+        if not chunks:
+            return False
+        st = self.st
+        R = np.concatenate([c[0] for c in chunks])
+        X = np.concatenate([c[1] for c in chunks]).astype(np.float64, copy=False)
+        W = None
+        if any(c[2] is not None for c in chunks):
+            W = np.concatenate([np.ones(c[0].shape[0]) if c[2] is None else c[2]
+                                for c in chunks])
+        T = G = A = S = None
+        if st.time_based or any(c[3] is not None for c in chunks):
+            T = np.concatenate([np.full(c[0].shape[0], math.nan) if c[3] is None else c[3]
+                                for c in chunks])
+            G = np.concatenate([np.zeros(c[0].shape[0], bool) if c[3] is None else
+                                np.ones(c[0].shape[0], bool) if c[4] is None else c[4]
+                                for c in chunks])
+            A = np.concatenate([np.full(c[0].shape[0], c[5]) for c in chunks])
+            if st.time_based:
+                T = np.where(G, T, A)
+            else:   # does the row's series have a time in this flush (before screening)?
+                key = R - R.min()
+                S = (np.bincount(key, weights=G) > 0)[key]
+        keep, why = screen_rows(X, W, T, G, max_abs)
+        if st.limits is not None:
+            with np.errstate(invalid="ignore"):
+                outside = keep & ~((st.limits[0] <= X) & (st.limits[1] >= X)).all(axis=1)
+            if outside.any():
+                why.append(("out_of_range", outside))
+                keep &= ~outside
+        for reason, mask in why:
+            self._report(reason, R[mask], reject, fresh)
+        if not keep.all():
+            R, X = R[keep], X[keep]
+            W = None if W is None else W[keep]
+            if T is not None:
+                T, G, A = T[keep], G[keep], A[keep]
+                S = None if S is None else S[keep]
+        if not R.shape[0]:
+            return False
+        new = R < 0
+        if new.any():   # series whose rows survived: created in order of first arrival
+            ids, first = np.unique(R[new], return_index=True)
+            ids = ids[np.argsort(first)]
+            made = np.full(len(fresh), -1, np.int64)
+            made[-ids - 1] = self._rows_of([fresh[-i - 1] for i in ids.tolist()])
+            R = R.copy()
+            R[new] = made[-R[new] - 1]
+        self._fold(R, X, W, T, G, A, S, now)
+        return True
+
+    def _report(self, reason: str, rows: np.ndarray, reject, fresh: list) -> None:
+        ids, counts = np.unique(rows, return_counts=True)
+        for r, c in zip(ids.tolist(), counts.tolist(), strict=True):
+            reject(reason, c, self.labels[r] if r >= 0 else fresh[-r - 1])
+
+    def _fold(self, R, X, W, T, G, A, S, now: float) -> None:
+        cfg = self.st.cfg
+        hl = cfg.half_life
+        corr = cfg.correction
+        sigmas = cfg.outlier_sigmas
+        once = np.bincount(R, minlength=self.n)[R] == 1
+        rest = ~once
+        if once.any():
+            at = np.flatnonzero(once)
+            idx = R[at]
+            x = X[at]
+            # no time: NaN, which fold_rows reads as "none" (count-based forgetting
+            # ignores times; time-based rows all have one)
+            t = None
+            if T is not None and hl is None:   # a series with a timed row: arrival times
+                t = np.where(G[at], T[at], np.where(S[at], A[at], math.nan))
+            elif T is not None and not hl.by_count:
+                t = T[at]
+            before = self.moments.take(idx)
+            res = fold_rows(before, x, None if W is None else W[at], t, corr)
+            ok = res.ok
+            if not ok.all():
+                rest[at[~ok]] = True
+            good = idx[ok]
+            if sigmas:
+                warm = ok & (before.count >= cfg.outlier_warmup)
+                if warm.any():
+                    dist = res.distance if self.dim == 1 else \
+                        mahalanobis_rows(before, x, corr)
+                    with np.errstate(invalid="ignore"):
+                        for j, k in enumerate(sigmas):
+                            self.outliers[idx[warm], j] += dist[warm] > k
+            self.moments.put(good, res.columns.take(np.flatnonzero(ok)))
+            self.observations[good] += 1
+            self.version[good] += 1
+            self.last_update[good] = now
+        if rest.any():
+            at = np.flatnonzero(rest)
+            order = at[np.argsort(R[at], kind="stable")]
+            rows = R[order]
+            starts = np.flatnonzero(np.r_[True, rows[1:] != rows[:-1]])
+            ends = np.r_[starts[1:], rows.shape[0]]
+            for r, b, e in zip(rows[starts].tolist(), starts.tolist(), ends.tolist(),
+                               strict=True):
+                self._fold_one(r, order[b:e], X, W, T, G, A, S, now)
+
+    def _fold_one(self, r: int, p: np.ndarray, X, W, T, G, A, S, now: float) -> None:
+        """Fold rows ``p`` (arrival order) into series ``r`` as a ``Moments`` of its own:
+        the object path's fold, to the same bits."""
+        st = self.st
+        cfg = st.cfg
+        m = self.moments.state(r)
+        x = X[p]
+        w = None if W is None else W[p]
+        t = None
+        if T is not None:
+            if st.time_based:
+                t = T[p]
+            elif S[p[0]]:   # a row of it had a time: the others take their arrival
+                t = np.where(G[p], T[p], A[p])
+        if cfg.outlier_sigmas and m.count >= cfg.outlier_warmup:
+            dist = m.mahalanobis(x, cfg.correction)
+            for j, k in enumerate(cfg.outlier_sigmas):
+                self.outliers[r, j] += int(np.count_nonzero(dist > k))
+        m._fold(x, w, t)
+        self.moments.set_state(r, m)
+        self.observations[r] += p.shape[0]
+        self.version[r] += 1
+        self.last_update[r] = now
+
+    # ------------------------------------------------------------- read side
+    def freeze(self) -> SeriesBlock:
+        """The frozen read-out of every series now (copies of n rows). O(n d**2)."""
+        st, n = self.st, self.n
+        cfg = st.cfg
+        self.block = SeriesBlock(
+            st.name, tuple(cfg.topic.labels), st.fields, cfg.half_life, cfg.correction,
+            tuple(cfg.quantiles), st.quantile_at, tuple(cfg.outlier_sigmas), self.labels,
+            self.index, n, self.moments.copy(n), self.observations[:n].copy(),
+            self.version[:n].copy(), self.last_update[:n].copy(), self.outliers[:n].copy())
+        return self.block
+
+    # ------------------------------------------------------------- removal
+    def keep_only(self, keep: np.ndarray) -> None:
+        """Drop the rows where ``keep`` (n,) is False: new arrays, labels and index
+        (blocks already handed out keep theirs); waiting rows are renumbered (none of
+        them may be in a dropped row). O(n d**2)."""
+        new_row = np.cumsum(keep) - 1
+        self.chunks = [(np.where(c[0] >= 0, new_row[np.maximum(c[0], 0)], c[0]), *c[1:])
+                       for c in self.chunks]
+        self.singles = [int(new_row[r]) if r >= 0 else r for r in self.singles]
+        at = np.flatnonzero(keep)
+        n = at.shape[0]
+        cap = max(n, 64)
+        self.moments = self.moments.take(at).resized(cap)
+        self.observations = _grown(self.observations[at], cap)
+        self.version = _grown(self.version[at], cap)
+        self.last_update = _grown(self.last_update[at], cap)
+        self.outliers = _grown(self.outliers[at], cap)
+        self.labels = [self.labels[i] for i in at.tolist()]
+        self.index = {values: i for i, values in enumerate(self.labels)}
+        self.n, self.capacity = n, cap
