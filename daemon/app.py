@@ -7,6 +7,7 @@ import logging
 import math
 import threading
 import time
+from collections.abc import Iterator
 from pathlib import Path
 
 import zmq
@@ -22,10 +23,10 @@ from sigmad.daemon.config.errors import ConfigError
 from sigmad.daemon.config.host import host_problems
 from sigmad.daemon.config.schema import Config
 from sigmad.daemon.config.units import split_host_port
-from sigmad.daemon.engine.allocator import keep_freed_blocks
+from sigmad.daemon.engine.allocator import keep_freed_blocks, release_freed
 from sigmad.daemon.engine.blas import set_threads as set_blas_threads
 from sigmad.daemon.engine.engine import Engine
-from sigmad.daemon.export.api_state import snapshot_json_bytes
+from sigmad.daemon.export.api_state import snapshot_json_chunks
 from sigmad.daemon.export.feed import EstimateFeed
 from sigmad.daemon.export.metrics_text import SeriesRenderer
 from sigmad.daemon.export.model import HealthCollector
@@ -36,6 +37,19 @@ from sigmad.daemon.storage.checkpoint import Checkpointer
 from sigmad.daemon.web.history import History
 from sigmad.daemon.web.page import render_page
 from sigmad.daemon.web.server import HttpServer
+
+
+def _then_release(pieces: Iterator[bytes], over: int = 4 << 20) -> Iterator[bytes]:
+    """``pieces``, then freed memory handed back to the OS when they came to more than
+    ``over`` bytes (a large scrape's pieces would otherwise stay as the process's
+    high-water mark). Process-wide and cheap next to such a response."""
+    size = 0
+    for piece in pieces:
+        size += len(piece)
+        yield piece
+    if size > over:
+        release_freed()
+
 
 log = logging.getLogger("sigmad")
 
@@ -181,14 +195,17 @@ class Daemon:
         """What readers see: the pooled snapshot on a merger, else the engine's."""
         return self.merger.snapshot if self.merger is not None else self.engine.snapshot
 
-    def _metrics(self) -> bytes:
-        return self.renderer.render(self.snapshot, time.time(), generate_latest(self.registry))
+    def _metrics(self) -> Iterator[bytes]:
+        """/metrics, written as it is made; freed memory goes back to the OS after it."""
+        yield from _then_release(self.renderer.chunks(self.snapshot, time.time(),
+                                                      generate_latest(self.registry)))
 
     def _page(self) -> bytes:
         return render_page(self.snapshot, time.time(), self.history)
 
-    def _state(self) -> bytes:
-        return snapshot_json_bytes(self.snapshot, time.time(), self.history)
+    def _state(self) -> Iterator[bytes]:
+        yield from _then_release(snapshot_json_chunks(self.snapshot, time.time(),
+                                                      self.history))
 
     # ------------------------------------------------------------ lifecycle
     def start(self) -> None:

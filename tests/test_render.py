@@ -63,3 +63,59 @@ def test_only_changed_series_are_rendered_again(monkeypatch, latency_and_pair):
     third = r.render(e.snapshot, 127.0).decode()
     assert calls == [("pair", (("venue", "east"),))]   # only the updated series
     assert samples(third) == samples(_reference(e.snapshot, 127.0))
+
+
+COLUMNS = """
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:7411"
+[[stream]]
+name = "cols"
+topic = "c.{zone}.{app}"
+fields = ["x", "y"]
+half_life = "30s"
+quantiles = [0.05, 0.5, 0.999]
+outlier_sigmas = [2.0, 3.5]
+outlier_warmup = 2
+[[stream]]
+name = "one"
+topic = "o.{a}"
+fields = ["v"]
+half_life = "5 obs"
+[[stream]]
+name = "plain"
+topic = "p.{k}"
+fields = ["v"]
+"""
+
+
+def test_series_in_columns_render_as_prometheus_client_renders_their_views():
+    # streams in columns are rendered from their columns, never from views: the text
+    # must still be prometheus-client's for the same samples, byte for byte; label
+    # names that sort before and after "field" and "stream", odd label values, big
+    # values (Go's exponent form), one-row series (variance NaN: left out), aging
+    e = Engine(parse_config(COLUMNS))
+    assert all(st.store is not None for st in e.streams)
+    rng = np.random.default_rng(3)
+    names = ["eu", 'q"uote', "back\\slash", "per%cent", "sp ace"]
+    for t in range(6):
+        topics, bodies = [], []
+        for k in range(300):
+            if rng.random() < 0.3:
+                continue
+            zone, app = names[k % 5], f"a{k}"
+            scale = 10.0 ** rng.integers(-3, 9)
+            topics.append(f"c.{zone}.{app}".encode())
+            bodies.append(encode({"x": float(rng.normal(0, scale)),
+                                  "y": float(rng.normal(5, 1))}, time=100.0 + t))
+            topics.append(f"o.{app}".encode())
+            bodies.append(encode({"v": float(rng.normal(1e7, 1e6))}))
+            topics.append(f"p.{k % 7}".encode())
+            bodies.append(encode({"v": float(rng.normal(0, 1))}))
+        e.ingest_many(topics, bodies, 100.0 + t)
+        e.flush(100.0 + t)
+    assert sum(b.n for b in e.snapshot.series.blocks) > 500
+    for now in (105.0, 190.0):
+        ours = render.SeriesRenderer().render(e.snapshot, now).decode()
+        assert ours == _reference(e.snapshot, now)
+        assert 'zone="q\\"uote"' in ours and "e+07" in ours

@@ -41,6 +41,8 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+from collections.abc import Iterator
+from itertools import islice
 
 from sigmad.daemon.engine.snapshot import SeriesView, Snapshot
 from sigmad.daemon.web.history import History
@@ -118,20 +120,26 @@ def _dumps(obj: object) -> str:
 
 
 def snapshot_json_bytes(snap: Snapshot, now: float, history: History | None = None,
-                        block: int = 500) -> bytearray:
-    """``json_bytes(snapshot_json(...))``, byte for byte, built ``block`` series at a
-    time: the per-series dicts of the whole document never exist at once (at 100,000
-    series they held about 2 KB each, and the process kept that high-water mark).
-    O(series)."""
+                        block: int = 500) -> bytes:
+    """``json_bytes(snapshot_json(...))``, byte for byte: ``b"".join`` of
+    ``snapshot_json_chunks``. O(series)."""
+    return b"".join(snapshot_json_chunks(snap, now, history, block))
+
+
+def snapshot_json_chunks(snap: Snapshot, now: float, history: History | None = None,
+                         block: int = 500) -> Iterator[bytes]:
+    """The document of ``snapshot_json_bytes`` in pieces of ``block`` series, made as
+    they are written: neither the per-series dicts nor the views nor the text of the
+    whole document exist at once (at 100,000 series the document is about 100 MB, and
+    the process would keep that high-water mark). O(series)."""
     head = _dumps(snapshot_json(dataclasses.replace(snap, series={}), now, history))
     if not head.endswith('"series":[]}'):
         raise AssertionError("the series list must be the document's last key")
-    out = bytearray(head[:-2].encode())   # one growing buffer: no second copy at the end
-    views = list(snap.series.values())
-    for i in range(0, len(views), block):
-        text = _dumps([series_json(v, now, history) for v in views[i:i + block]])
-        if i:
-            out += b","
-        out += text[1:-1].encode()
-    out += b"]}"
-    return out
+    yield head[:-2].encode()
+    views = iter(snap.series.values())
+    first = True
+    while part := list(islice(views, block)):
+        text = _dumps([series_json(v, now, history) for v in part])
+        yield (text[1:-1] if first else "," + text[1:-1]).encode()
+        first = False
+    yield b"]}"

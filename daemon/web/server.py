@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import itertools
 import json
 import logging
 import os
@@ -53,11 +54,34 @@ class _Handler(BaseHTTPRequestHandler):
             return
         try:
             body, ctype = route()
+            if not isinstance(body, bytes | bytearray):   # pieces: the first one made here
+                body = itertools.chain((next(body, b""),), body)
         except Exception:  # a reader bug must not kill the server thread
             log.exception("error serving %s", path)
             self._send(500, b"internal error\n", "text/plain; charset=utf-8")
             return
-        self._send(200, body, ctype)
+        if isinstance(body, bytes | bytearray):
+            self._send(200, body, ctype)
+        else:
+            self._stream(body, ctype)
+
+    def _stream(self, pieces, ctype: str) -> None:
+        """Write a response made piece by piece as it is made (no Content-Length: the
+        connection closes at its end, as HTTP/1.0 allows); a failure midway is logged
+        and cuts the response short."""
+        self.send_response(200)
+        self.send_header("Content-Type", ctype)
+        self.send_header("Cache-Control", "no-store")
+        self.send_header("Connection", "close")
+        self.end_headers()
+        self.close_connection = True
+        try:
+            for piece in pieces:
+                self.wfile.write(piece)
+        except OSError:
+            raise
+        except Exception:  # a reader bug must not kill the server thread
+            log.exception("error serving %s: response cut short", self.path[:200])
 
     def _send(self, code: int, body: bytes, ctype: str) -> None:
         self.send_response(code)
@@ -180,8 +204,9 @@ class HttpServer:
     ----------
     address : str
         "host:port"; port 0 picks a free port (see ``port``).
-    metrics, page, state : callables returning bytes
-        The exposition text for /metrics, the status page (HTML) and the JSON state.
+    metrics, page, state : callables returning bytes, or an iterator of bytes
+        The exposition text for /metrics, the status page (HTML) and the JSON state;
+        an iterator's pieces are written as they are made (``_Handler._stream``).
     tls_cert, tls_key, tls_client_ca : str or None
         With cert and key: HTTPS. With a client CA too: client certificates required.
 
