@@ -478,6 +478,140 @@ def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
     return Folded(out, ok, dist)
 
 
+def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
+                times: np.ndarray | None, counts: np.ndarray) -> tuple[MomentsColumns,
+                                                                      np.ndarray]:
+    """Fold a batch of rows into each of n states at once, as ``Moments._fold`` does for
+    a batch of two or more rows per state, equal to it up to rounding.
+
+    Parameters
+    ----------
+    cols : MomentsColumns
+        The n states before the fold (left unchanged).
+    x : ndarray, shape (m, dim)
+        The rows, state by state: state k's ``counts[k]`` rows (>= 2 each) follow
+        state k-1's, in arrival order; already checked.
+    weights : ndarray, shape (m,), or None
+        Row weights (None: all 1).
+    times : ndarray, shape (m,), or None
+        Event times; NaN where a row has none (as ``fold_rows``; with time-based
+        forgetting every row has one, the caller stamps the rest).
+    counts : ndarray of int, shape (n,)
+
+    Returns
+    -------
+    (MomentsColumns, ok)
+        The new states, and which states were folded here: a state outside the
+        common case (scale exponent E other than 0, an aging or a weight sum that
+        would move the scale, row weights beyond 2**+-100) is left to ``Moments``.
+
+    Notes
+    -----
+    Per state, ``take_batch`` (the clock moves to the latest row, the state ages by
+    2**g, each row weighs its weight times its own decay), then the batch's weighted
+    mean and centred scatter about its first row (Chan, Golub & LeVeque's shift)
+    combined with the state's by the pairwise update (West), the mean kept as
+    mean + lo. Segment sums (``np.add.reduceat``) stand in for each batch's own
+    sums: the same formulas, another order of additions. O(m dim**2).
+
+    References
+    ----------
+    Chan, T. F., Golub, G. H., LeVeque, R. J. (1983). Algorithms for computing the
+    sample variance: analysis and recommendations. The American Statistician
+    37(3), 242-247.
+
+    Examples
+    --------
+    >>> a, b = Moments(), Moments()
+    >>> a.update([1.0, 2.0]); b.update([10.0])
+    >>> out, ok = fold_groups(MomentsColumns.of([a, b], 1, None),
+    ...                       np.array([[3.0], [4.0], [20.0], [30.0]]), None, None,
+    ...                       np.array([2, 2]))
+    >>> ok.tolist(), out.means()[:, 0].tolist(), out.variances("none")[:, 0].tolist()
+    ([True, True], [2.5, 20.0], [1.25, 66.66666666666667])
+    """
+    n, dim = cols.n, cols.dim
+    m = x.shape[0]
+    starts = np.cumsum(counts) - counts
+    group = np.repeat(np.arange(n), counts)
+    hl = cols.half_life
+    W, W2, scatter = cols.W, cols.W2, cols.scatter
+    clock, has_clock = cols.clock, cols.has_clock
+    ok = cols.E == 0
+    v = weights
+    g = None
+    if hl is None:
+        if times is not None:
+            with np.errstate(invalid="ignore"):
+                latest = np.fmax.reduceat(times, starts)      # NaN only where none has one
+            timed = ~np.isnan(latest)
+            clock = np.where(timed, np.where(has_clock, np.maximum(clock, latest), latest),
+                             clock)
+            has_clock = has_clock | timed
+    elif hl.by_count:
+        start = np.where(has_clock, clock, 0.0)
+        clock, has_clock = start + counts, np.ones(n, bool)
+        g = -counts / hl.length
+        age = (starts + counts - 1)[group] - np.arange(m)    # rows after this one
+        rf = np.exp2(-age.astype(np.float64) / hl.length)
+        v = rf if weights is None else weights * rf
+    else:
+        latest = np.maximum.reduceat(times, starts)
+        new_clock = np.where(has_clock, np.maximum(clock, latest), latest)
+        g = np.where(has_clock, -(new_clock - clock) / hl.length, 0.0)
+        rf = np.exp2(-(new_clock[group] - times) / hl.length)
+        v = rf if weights is None else weights * rf
+        clock, has_clock = new_clock, np.ones(n, bool)
+    if g is not None:
+        aged = g != 0.0
+        ok &= ~aged | (np.frexp(W)[1] + g > -100)
+        f = np.ones(n)
+        f[aged] = _powers_of_two(g[aged])
+        W, W2, scatter = W * f, W2 * (f * f), scatter * f[:, None, None]
+    base = x[starts]
+    xc = x - base[group]
+    if v is None:
+        wb = counts.astype(np.float64)
+        w2b = wb
+        shift = np.add.reduceat(xc, starts) / wb[:, None]
+        xc -= shift[group]
+        cb = np.add.reduceat(xc[:, :, None] * xc[:, None, :], starts)
+    else:
+        top = np.maximum.reduceat(v, starts)
+        ok &= (top >= 2.0 ** -100) & (top <= 2.0 ** 100)
+        wb = np.add.reduceat(v, starts)
+        w2b = np.add.reduceat(v * v, starts)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            shift = np.add.reduceat(v[:, None] * xc, starts) / wb[:, None]
+        xc -= shift[group]
+        cb = np.add.reduceat((v[:, None, None] * xc[:, :, None]) * xc[:, None, :], starts)
+    some = wb > 0.0                       # a batch that decayed to nothing only ages
+    total = W + wb
+    fresh = W == 0.0
+    mean, lo = cols.mean, cols.lo
+    delta = (base - mean) + (shift - lo)
+    light = (wb <= W)[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        part = np.where(light, lo + delta * (wb / total)[:, None],
+                        shift - delta * (W / total)[:, None])
+        start = np.where(light, mean, base)
+        new = start + part
+        new_lo = part - (new - start)
+        spread = (delta[:, :, None] * delta[:, None, :]) * (W * wb / total)[:, None, None]
+    first_mean = base + shift
+    new_mean = np.where(fresh[:, None], first_mean, new)
+    new_lo = np.where(fresh[:, None], shift - (first_mean - base), new_lo)
+    new_scatter = np.where(fresh[:, None, None], cb, scatter + spread + cb)
+    keep = ~some
+    out = MomentsColumns(
+        dim, hl, has_clock, clock, cols.count + counts, np.where(keep, W, total),
+        np.where(keep, W2, W2 + w2b), np.where(keep[:, None], mean, new_mean),
+        np.where(keep[:, None, None], scatter, new_scatter), cols.E,
+        np.where(keep[:, None], lo, new_lo))
+    ok &= keep | ((total >= 2.0 ** -100) & (total <= 2.0 ** 100))
+    return out, ok
+
+
 def mahalanobis_rows(cols: MomentsColumns, x: np.ndarray,
                      correction: str = "reliability") -> np.ndarray:
     """``Moments.mahalanobis`` of row k of ``x`` (n, d) under state k of ``cols``, for

@@ -3,11 +3,13 @@
 The reference is the per-series object path (``Engine._fold`` and ``view_of``, whose
 maths ``tests/test_moments.py`` checks against numpy): the same drains fed to an
 engine with columns switched off (``Engine(config, columns=False)``) must give the
-same views and states, bit for bit (``repr`` of a float is exact).
+same views, states, outlier counts and rejections: bit for bit where a series had one
+row in a flush, to rounding (1e-9) where it had a batch.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -68,13 +70,40 @@ def _drains(dim: int, n_series: int, flushes: int, seed: int, timed: bool, weigh
         yield now, msgs
 
 
+def _numbers(obj) -> list:
+    """Every number in a view or state, flattened, and the rest as text (exact)."""
+    if isinstance(obj, dict):
+        return [x for k in sorted(obj) for x in [k, *_numbers(obj[k])]]
+    if dataclasses.is_dataclass(obj):
+        return _numbers(dataclasses.astuple(obj))
+    if isinstance(obj, list | tuple):
+        return [x for v in obj for x in _numbers(v)]
+    return [obj]
+
+
+def _close(a, b) -> bool:
+    """Equal, floats to 1e-9 of the larger (a series folded a batch at a time in
+    columns adds its rows in another order than ``Moments``)."""
+    x, y = _numbers(a), _numbers(b)
+    if len(x) != len(y):
+        return False
+    for u, v in zip(x, y, strict=True):
+        if isinstance(u, float) and isinstance(v, float):
+            if not (u == v or (math.isnan(u) and math.isnan(v))
+                    or abs(u - v) <= 1e-9 * max(abs(u), abs(v))):
+                return False
+        elif u != v:
+            return False
+    return True
+
+
 def _same(bulk: Engine, single: Engine) -> None:
     assert bulk.snapshot.series.keys() == single.snapshot.series.keys()
     for key, view in single.snapshot.series.items():
-        assert repr(bulk.snapshot.series[key]) == repr(view), key
+        assert _close(bulk.snapshot.series[key], view), key
     for st_b, st_s in zip(bulk.streams, single.streams, strict=True):
         for labels, s in st_s.series.items():
-            assert repr(st_b.series[labels].moments.to_dict()) == repr(s.moments.to_dict())
+            assert _close(st_b.series[labels].moments.to_dict(), s.moments.to_dict())
     assert bulk.rejected == single.rejected
 
 
@@ -84,7 +113,7 @@ def _same(bulk: Engine, single: Engine) -> None:
 def test_bulk_flush_equals_series_by_series(dim, half_life, weighted, bad, monkeypatch):
     fields = '["a"]' if dim == 1 else '["a", "b"]'
     bulk, single = _engines(fields, half_life, monkeypatch)
-    calls = []   # series folded one by one (several rows in a flush, or a rare state)
+    calls = []   # series folded one by one (a state outside the columns' common case)
     real = ColumnStore._fold_one
     monkeypatch.setattr(ColumnStore, "_fold_one",
                         lambda self, r, p, *a: calls.append(len(p)) or real(self, r, p, *a))
@@ -95,7 +124,7 @@ def test_bulk_flush_equals_series_by_series(dim, half_life, weighted, bad, monke
             e.flush(now)
         _same(bulk, single)
     rows = sum(v.observations for v in bulk.snapshot.series.values())
-    assert 0 < sum(calls) < rows / 3   # most rows were folded in columns, some one by one
+    assert sum(calls) < rows / 20   # (almost) every row was folded in columns
 
 
 def test_bulk_flush_with_limits_and_untimed_rows(monkeypatch):

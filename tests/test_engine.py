@@ -88,20 +88,22 @@ def test_many_at_once_equals_one_by_one_for_every_message_shape(latency_and_pair
 
 
 def test_the_route_cache_keeps_recent_topics_within_its_byte_budget(latency_and_pair):
-    # 200,000 distinct 100-byte topics no stream takes, one topic used now and then:
-    # the cache stays within ROUTE_CACHE_BYTES (as it counts entries) and the topic
-    # in use keeps its cached route (least recently used go first)
+    # three times as many distinct 100-byte topics no stream takes as the cache can
+    # count, one topic used now and then: the cache stays within ROUTE_CACHE_BYTES (as
+    # it counts entries) and the topic in use keeps its cached route (least recently
+    # used go first)
     from sigmad.daemon.engine.engine import _ROUTE_ENTRY_BYTES, ROUTE_CACHE_BYTES
 
     e = _engine(latency_and_pair)
     keep = e.route(b"lat.keep")
     assert keep is not None
-    for i in range(200_000):
-        assert e.route(b"n.%06d." % i + b"x" * 92) is None
+    n = 3 * ROUTE_CACHE_BYTES // (2 * 100 + _ROUTE_ENTRY_BYTES)
+    for i in range(n):
+        assert e.route(b"n.%07d." % i + b"x" * 91) is None
         if i % 1000 == 0:
             assert e.route(b"lat.keep") is keep
     cached = [*e._routes, *e._older_routes]
-    assert len(cached) < 200_000 // 4
+    assert len(cached) < n // 2
     assert sum(2 * len(t) + _ROUTE_ENTRY_BYTES for t in cached) <= ROUTE_CACHE_BYTES
 
 

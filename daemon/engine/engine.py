@@ -26,7 +26,7 @@ from sigmad.daemon.engine.snapshot import (
     series_view,
 )
 from sigmad.daemon.engine.store import ColumnStore
-from sigmad.daemon.ingest.layouts import LayoutTable, Readout, learn, runs
+from sigmad.daemon.ingest.layouts import Layout, LayoutTable, Readout, learn, runs
 from sigmad.daemon.ingest.topics import series_text
 from sigmad.daemon.ingest.wire import Reader, Single, WireError
 from sigmad.estimators import (
@@ -52,8 +52,8 @@ log = logging.getLogger("sigmad.engine")
 # bytes (topics are at most max_topic_bytes long; an entry is counted as twice its
 # topic's length, the topic and its label strings, plus _ROUTE_ENTRY_BYTES of dict
 # slot and tuples).
-ROUTE_CACHE_BYTES = 8 << 20
-_ROUTE_ENTRY_BYTES = 300
+ROUTE_CACHE_BYTES = 64 << 20
+_ROUTE_ENTRY_BYTES = 200
 # (topic, length) pairs whose body taught no layout, remembered up to this many
 _NOT_LEARNT_LIMIT = 16_384
 _UNSEEN = object()
@@ -71,6 +71,9 @@ LAYOUT_MAX_BYTES = 1024
 MAX_RUNS = 16
 LEARN_PER_DRAIN = 64
 RETRY_AFTER = 64
+# shapes (layouts) remembered per stream and body length, to give to new topics
+_SHAPES_PER_LENGTH = 4
+_SHAPES_LIMIT = 4096
 
 
 def _floats(a) -> tuple[float, ...]:
@@ -90,6 +93,15 @@ def _single(st: StreamState, body: bytes) -> bool:
         return type(st.read(body)) is Single
     except WireError:
         return False
+
+
+def _same_shape(known: list, body: bytes) -> Layout | None:
+    """The first of ``known`` (fixed bytes, mask, layout) that ``body`` fits. O(len(body))."""
+    value = int.from_bytes(body, "big")
+    for fixed, mask, layout in known:
+        if not (value ^ fixed) & mask:
+            return layout
+    return None
 
 
 def _where(series: Series) -> str:
@@ -665,6 +677,7 @@ class Engine:
         self._route_store = np.zeros(0, np.int64)
         self._route_list: list | None = None
         self._not_learnt: dict[tuple[bytes, int], int] = {}
+        self._shapes: dict[tuple[int, int], list] = {}   # (id(stream), length) -> layouts
         self._drains = 0
 
     # ------------------------------------------------------------- ingest
@@ -770,14 +783,21 @@ class Engine:
 
     def _learn_layouts(self, topics: tuple, bodies: tuple, lengths: np.ndarray,
                        missing: np.ndarray) -> bool:
-        """Learn the layouts of (topic, length) pairs that have none, up to the budget
-        above; True if any was learnt. A pair whose body taught no layout is not
-        tried again for RETRY_AFTER drains."""
+        """Give layouts to the (topic, length) pairs that have none; True if any got one.
+
+        A body of the same shape as one learnt before for its stream (the same fixed
+        bytes: keys, encodings, source; ``_same_shape``) takes that layout at the cost
+        of a comparison, whatever the budget: thousands of quiet series of one shape
+        are known after one drain. Learning a new shape (``layouts.learn``) costs about
+        20 messages' decoding, so at most the budget above is tried per drain, and a
+        pair whose body taught no layout is not tried again for RETRY_AFTER drains."""
         self._drains += 1
-        tried, learnt = self._not_learnt, False
+        tried, shapes, added = self._not_learnt, self._shapes, []
         budget = max(LEARN_PER_DRAIN, len(bodies) // 8)
         if len(tried) > _NOT_LEARNT_LIMIT:
             tried.clear()
+        if len(shapes) > _SHAPES_LIMIT:
+            shapes.clear()
         m = missing.tolist()
         keys = zip(compress(topics, m), compress(lengths.tolist(), m), strict=True)
         for key, body in dict(zip(keys, compress(bodies, m), strict=True)).items():
@@ -786,20 +806,34 @@ class Engine:
             topic, length = key
             if length > LAYOUT_MAX_BYTES or len(topic) > self._max_topic:
                 continue   # not a plain single observation, or a bad topic: nothing kept
-            route = self.route(topic)   # cached after the first time
-            layout = None
+            route = self._routes.get(topic, _UNSEEN)
+            if route is _UNSEEN:
+                if not budget:
+                    continue
+                route = self.route(topic)   # cached after the first time
+            known = None if route is None else shapes.get((id(route[0]), length))
+            layout = _same_shape(known, body) if known else None
+            if layout is not None:
+                added.append((topic, layout, route))
+                tried.pop(key, None)
+                continue
+            if not budget:
+                continue
+            budget -= 1
             if route is not None and _single(route[0], body):
                 layout = learn(body, route[0].fields, self._max_rows)
             if layout is None:
                 tried[key] = self._drains
-            else:
-                self._layouts.add(topic, layout, route)
-                tried.pop(key, None)
-                learnt = True
-            budget -= 1
-            if not budget:
-                break
-        return learnt
+                continue
+            added.append((topic, layout, route))
+            tried.pop(key, None)
+            kinds = shapes.setdefault((id(route[0]), length), [])
+            kinds.insert(0, (int.from_bytes(layout.fixed, "big"),
+                             int.from_bytes(layout.mask, "big"), layout))
+            del kinds[_SHAPES_PER_LENGTH:]
+        if added:
+            self._layouts.add_many(added)
+        return bool(added)
 
     def _read_layouts(self, topics: tuple, bodies: tuple, lengths: np.ndarray,
                       rows: np.ndarray) -> Readout:

@@ -23,7 +23,13 @@ from collections.abc import Callable
 
 import numpy as np
 from sigmad.daemon.engine.snapshot import SeriesBlock
-from sigmad.estimators import MomentsColumns, fold_rows, mahalanobis_rows, screen_rows
+from sigmad.estimators import (
+    MomentsColumns,
+    fold_groups,
+    fold_rows,
+    mahalanobis_rows,
+    screen_rows,
+)
 
 
 def _grown(a: np.ndarray, n: int) -> np.ndarray:
@@ -243,50 +249,77 @@ class ColumnStore:
             reject(reason, c, self.labels[r] if r >= 0 else fresh[-r - 1])
 
     def _fold(self, R, X, W, T, G, A, S, now: float) -> None:
+        """Fold rows (R: their series' rows) in: series with one row by ``fold_rows``,
+        series with several by ``fold_groups`` (each scored as an outlier against its
+        state before the flush, as the object path scores a batch), the rare state
+        outside their common case one by one (``_fold_one``). O(rows d**2)."""
         cfg = self.st.cfg
         hl = cfg.half_life
-        corr = cfg.correction
-        sigmas = cfg.outlier_sigmas
+        # the rows' times as the object path sees them: no time (NaN) where the series
+        # sent none; its arrival for a row without one where another of its rows had one
+        if T is None or (hl is not None and hl.by_count):
+            T1 = None
+        elif hl is None:
+            T1 = np.where(G, T, np.where(S, A, math.nan))
+        else:
+            T1 = T
         once = np.bincount(R, minlength=self.n)[R] == 1
-        rest = ~once
+        by_one: list[tuple[int, np.ndarray]] = []
         if once.any():
             at = np.flatnonzero(once)
             idx = R[at]
             x = X[at]
-            # no time: NaN, which fold_rows reads as "none" (count-based forgetting
-            # ignores times; time-based rows all have one)
-            t = None
-            if T is not None and hl is None:   # a series with a timed row: arrival times
-                t = np.where(G[at], T[at], np.where(S[at], A[at], math.nan))
-            elif T is not None and not hl.by_count:
-                t = T[at]
             before = self.moments.take(idx)
-            res = fold_rows(before, x, None if W is None else W[at], t, corr)
+            res = fold_rows(before, x, None if W is None else W[at],
+                            None if T1 is None else T1[at], cfg.correction)
             ok = res.ok
-            if not ok.all():
-                rest[at[~ok]] = True
-            good = idx[ok]
-            if sigmas:
-                warm = ok & (before.count >= cfg.outlier_warmup)
-                if warm.any():
-                    dist = res.distance if self.dim == 1 else \
-                        mahalanobis_rows(before, x, corr)
-                    with np.errstate(invalid="ignore"):
-                        for j, k in enumerate(sigmas):
-                            self.outliers[idx[warm], j] += dist[warm] > k
-            self.moments.put(good, res.columns.take(np.flatnonzero(ok)))
-            self.observations[good] += 1
-            self.version[good] += 1
-            self.last_update[good] = now
-        if rest.any():
-            at = np.flatnonzero(rest)
+            by_one += [(r, np.array([i])) for r, i in zip(idx[~ok].tolist(),
+                                                           at[~ok].tolist(), strict=True)]
+            dist = None
+            if cfg.outlier_sigmas:
+                dist = res.distance if self.dim == 1 else \
+                    mahalanobis_rows(before, x, cfg.correction)
+            self._write(idx, ok, res.columns, before.count, dist, np.arange(idx.shape[0]),
+                        np.ones(idx.shape[0], np.int64), now)
+        if not once.all():
+            at = np.flatnonzero(~once)
             order = at[np.argsort(R[at], kind="stable")]
             rows = R[order]
             starts = np.flatnonzero(np.r_[True, rows[1:] != rows[:-1]])
-            ends = np.r_[starts[1:], rows.shape[0]]
-            for r, b, e in zip(rows[starts].tolist(), starts.tolist(), ends.tolist(),
-                               strict=True):
-                self._fold_one(r, order[b:e], X, W, T, G, A, S, now)
+            counts = np.diff(np.r_[starts, rows.shape[0]])
+            ids = rows[starts]
+            before = self.moments.take(ids)
+            x = X[order]
+            new, ok = fold_groups(before, x, None if W is None else W[order],
+                                  None if T1 is None else T1[order], counts)
+            dist = None
+            if cfg.outlier_sigmas:
+                group = np.repeat(np.arange(ids.shape[0]), counts)
+                dist = mahalanobis_rows(before.take(group), x, cfg.correction)
+            self._write(ids, ok, new, before.count, dist, starts, counts, now)
+            for k in np.flatnonzero(~ok).tolist():
+                by_one.append((int(ids[k]), order[starts[k]:starts[k] + counts[k]]))
+        for r, p in by_one:
+            self._fold_one(r, p, X, W, T, G, A, S, now)
+
+    def _write(self, ids: np.ndarray, ok: np.ndarray, new: MomentsColumns,
+               count_before: np.ndarray, dist: np.ndarray | None, starts: np.ndarray,
+               counts: np.ndarray, now: float) -> None:
+        """Write the folded states of series ``ids`` where ``ok``, with their outlier
+        counts: rows ``starts[k] .. + counts[k]`` of ``dist`` are series k's."""
+        cfg = self.st.cfg
+        good = ids[ok]
+        if dist is not None:
+            warm = ok & (count_before >= cfg.outlier_warmup)
+            if warm.any():
+                with np.errstate(invalid="ignore"):
+                    for j, k in enumerate(cfg.outlier_sigmas):
+                        hits = np.add.reduceat(dist > k, starts) if dist.shape[0] else dist
+                        self.outliers[ids[warm], j] += hits[warm]
+        self.moments.put(good, new.take(np.flatnonzero(ok)))
+        self.observations[good] += counts[ok]
+        self.version[good] += 1
+        self.last_update[good] = now
 
     def _fold_one(self, r: int, p: np.ndarray, X, W, T, G, A, S, now: float) -> None:
         """Fold rows ``p`` (arrival order) into series ``r`` as a ``Moments`` of its own:

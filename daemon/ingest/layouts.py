@@ -43,8 +43,10 @@ _SIGNED_VIEW = {I1: np.int8, I2: np.int16, I4: np.int32, I8: np.int64, FIXNEG: n
 _UNSIGNED_VIEW = {I1: np.uint8, I2: np.uint16, I4: np.uint32, I8: np.uint64,
                   FIXNEG: np.uint8}
 _MAX_DEPTH = 32          # nesting accepted inside ignored keys
-_TABLE_LIMIT = 65_536    # layouts kept; a full table keeps only those used since it last filled
-_TABLE_BYTES = 16 << 20  # ... or bytes of layouts (each keeps its fixed bytes and mask)
+# layouts kept (one per topic and body length: enough for 100,000 quiet series of one
+# shape); a full table keeps only those used since it last filled
+_TABLE_LIMIT = 1 << 17
+_TABLE_BYTES = 32 << 20  # ... or bytes of layouts (each keeps its fixed bytes and mask)
 
 
 class _NotLearnt(Exception):
@@ -314,19 +316,23 @@ class _Group:
         self.route = np.zeros(4, np.intp)
         self.source = np.zeros(4, np.intp)
 
-    def add(self, layout: Layout, slots: tuple, route: int, source: int) -> int:
-        if self.n == self.route.shape[0]:
+    def add_block(self, layout: Layout, slots: tuple, routes: list[int], source: int) -> int:
+        """Rows for ``layout`` once per route in ``routes``; returns the first. O(k)."""
+        k = len(routes)
+        if self.n + k > self.route.shape[0]:
+            cap = max(2 * self.route.shape[0], self.n + k)
             for name in self._ARRAYS:
                 old = getattr(self, name)
-                new = np.zeros((2 * old.shape[0], *old.shape[1:]), old.dtype)
-                new[:self.n] = old
+                new = np.zeros((cap, *old.shape[1:]), old.dtype)
+                new[:self.n] = old[:self.n]
                 setattr(self, name, new)
-        i = self.n
-        self.fixed[i] = np.frombuffer(layout.fixed, np.uint8)
-        self.mask[i] = np.frombuffer(layout.mask, np.uint8)
-        self.offset[i], self.code[i] = zip(*slots, strict=True)
-        self.route[i], self.source[i] = route, source
-        self.n += 1
+        i, j = self.n, self.n + k
+        self.fixed[i:j] = np.frombuffer(layout.fixed, np.uint8)
+        self.mask[i:j] = np.frombuffer(layout.mask, np.uint8)
+        offset, code = zip(*slots, strict=True)
+        self.offset[i:j], self.code[i:j] = offset, code
+        self.route[i:j], self.source[i:j] = routes, source
+        self.n = j
         return i
 
 
@@ -369,29 +375,57 @@ class LayoutTable:
     def add(self, topic: bytes, layout: Layout, route: object) -> None:
         """Keep ``layout`` for ``topic`` (replacing an older one of the same length).
         Amortised O(len(layout) + layouts kept), as the lookup arrays are rebuilt."""
-        length = len(layout.fixed)
-        if (sum(g.n for g in self._groups.values()) >= _TABLE_LIMIT
-                or self._bytes + 3 * length > _TABLE_BYTES):
+        self.add_many([(topic, layout, route)])
+
+    def add_many(self, items: list[tuple[bytes, Layout, object]]) -> None:
+        """``add`` for many (topic, layout, route) at once: the items that share a layout
+        (many topics of one shape) are written to their group's arrays together, and
+        the lookup arrays are rebuilt once. A table that would overflow first keeps
+        only the layouts used since it last filled; items beyond what it can hold then
+        are not kept (their bodies are decoded the general way).
+        O(items + sum of distinct layouts' lengths + layouts kept)."""
+        need = len(items)
+        size = sum(3 * len(layout.fixed) for _, layout, _ in items)
+        if sum(g.n for g in self._groups.values()) + need > _TABLE_LIMIT \
+                or self._bytes + size > _TABLE_BYTES:
             self._keep_used()
-        self._bytes += 3 * length   # its fixed bytes and mask, and the Layout kept to re-add
-        group = self._groups.get(length)
-        if group is None:
-            group = self._groups[length] = _Group(length, self.width + 3)
-        d = len(layout.slots) - 3
-        # field slots first, padded with ABSENT to the widest stream, then weight, time, seq
-        slots = layout.slots[:d] + ((0, ABSENT),) * (self.width - d) + layout.slots[d:]
-        route_id = self._route_ids.setdefault(route, len(self.routes))
-        if route_id == len(self.routes):
-            self.routes.append(route)
-        source_id = -1
-        if layout.source is not None:
-            source_id = self._source_ids.setdefault(layout.source, len(self.sources))
-            if source_id == len(self.sources):
-                self.sources.append(layout.source)
-        topic_id = self._topic_ids.setdefault(topic, len(self._topic_ids))
-        key = topic_id << 32 | length
-        self._rows[key] = group.add(layout, slots, route_id, source_id)
-        self._added[key] = (topic, layout, route)
+            room = _TABLE_LIMIT - sum(g.n for g in self._groups.values())
+            items = items[:max(0, room)]
+            while items and self._bytes + sum(3 * len(lay.fixed) for _, lay, _ in items) \
+                    > _TABLE_BYTES:
+                items = items[:len(items) // 2]
+        shapes: dict[int, list] = {}
+        for item in items:
+            shapes.setdefault(id(item[1]), []).append(item)
+        route_ids, topic_ids, rows, added = self._route_ids, self._topic_ids, self._rows, \
+            self._added
+        for same in shapes.values():
+            layout = same[0][1]
+            length = len(layout.fixed)
+            self._bytes += 3 * length * len(same)   # fixed bytes, mask, the Layout to re-add
+            group = self._groups.get(length)
+            if group is None:
+                group = self._groups[length] = _Group(length, self.width + 3)
+            d = len(layout.slots) - 3
+            # field slots first, padded with ABSENT to the widest stream, then weight,
+            # time, seq
+            slots = layout.slots[:d] + ((0, ABSENT),) * (self.width - d) + layout.slots[d:]
+            source_id = -1
+            if layout.source is not None:
+                source_id = self._source_ids.setdefault(layout.source, len(self.sources))
+                if source_id == len(self.sources):
+                    self.sources.append(layout.source)
+            routes = []
+            for _, _, route in same:
+                route_id = route_ids.setdefault(route, len(self.routes))
+                if route_id == len(self.routes):
+                    self.routes.append(route)
+                routes.append(route_id)
+            first = group.add_block(layout, slots, routes, source_id)
+            for k, (topic, _, route) in enumerate(same):
+                key = topic_ids.setdefault(topic, len(topic_ids)) << 32 | length
+                rows[key] = first + k
+                added[key] = (topic, layout, route)
         self._stale()
 
     def _keep_used(self) -> None:
@@ -402,8 +436,7 @@ class LayoutTable:
         self.__init__(self.width)    # type: ignore[misc]
         if kept and sum(3 * len(layout.fixed) for _, layout, _ in kept) * 2 <= _TABLE_BYTES \
                 and len(kept) * 2 <= _TABLE_LIMIT:
-            for topic, layout, route in kept:
-                self.add(topic, layout, route)
+            self.add_many(kept)
 
     def forget(self, topic: bytes, length: int) -> None:
         """Drop the layout of ``topic`` at ``length`` (the next body of it is learnt anew)."""
