@@ -158,3 +158,36 @@ def test_quiet_series_live_in_columns_not_objects(monkeypatch):
     assert store.moments.mean[:1000, 0].tolist() == [float(k) for k in range(1000)]
     assert len(bulk.snapshot.series) == 1000
     assert bulk.snapshot.series[("s", (("k", "k7"),))].mean == (7.0,)
+
+
+def test_expired_series_leave_their_columns_and_come_back_fresh(monkeypatch):
+    # idle series leave the store (rows renumbered, cached layout rows forgotten); a
+    # message of an expired topic, through a learnt layout, makes a fresh series, and
+    # a series with rows still waiting is kept; the object path agrees throughout
+    bulk, single = _engines('["a"]', 'idle_expiry = "10s"', monkeypatch)
+
+    def feed(now, ks, value):
+        msgs = [(f"s.k{k}".encode(), encode({"a": value + k})) for k in ks]
+        for e in (bulk, single):
+            e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], now)
+
+    for now in (100.0, 101.0, 102.0):              # 40 series; layouts are learnt
+        feed(now, range(40), now)
+        for e in (bulk, single):
+            e.flush(now)
+    feed(120.0, range(0, 40, 2), 5.0)              # even series keep sending
+    for e in (bulk, single):
+        e.flush(120.0)
+    feed(121.0, [1], 7.0)                          # odd k1 has a row waiting: kept
+    assert bulk.expire_idle(121.0) == single.expire_idle(121.0) == 19
+    assert bulk.streams[0].store.n == 21
+    for e in (bulk, single):
+        e.flush(121.0)
+    _same(bulk, single)
+    feed(130.0, range(40), 9.0)                    # the expired come back, fresh
+    for e in (bulk, single):
+        e.flush(130.0)
+    _same(bulk, single)
+    v = bulk.snapshot.series[("s", (("k", "k3"),))]
+    assert v.observations == 1 and v.mean == (12.0,)
+    assert bulk.snapshot.series[("s", (("k", "k1"),))].observations == 5
