@@ -686,3 +686,68 @@ def test_sigkill_during_ingest_and_checkpointing_never_tears_the_file(tmp_path):
     STATS.update(kills=KILLS, mid_write=mid_write, restored_rows=restored)
     print(f"\nSIGKILL loop: {KILLS} kills survived, {mid_write} during a checkpoint write, "
           f"{restored} rows restored at the end")
+
+
+COLUMN_STREAM = """
+[[source]]
+socket = "pull"
+bind = "tcp://127.0.0.1:1"
+[[stream]]
+name = "c"
+topic = "c.{k}"
+fields = ["v"]
+half_life = "1h"
+outlier_sigmas = [2.0]
+outlier_warmup = 2
+max_series = MAX
+"""
+
+
+def _column_engine(max_series: int = 100, sigmas: str = "[2.0]", columns: bool = True):
+    text = COLUMN_STREAM.replace("MAX", str(max_series)).replace("[2.0]", sigmas)
+    return Engine(parse_config(text), columns=columns)
+
+
+def _fill(e: Engine, ks, start: float) -> None:
+    rng = np.random.default_rng(int(start))
+    for j in range(6):
+        msgs = [(f"c.k{k}".encode(), encode({"v": float(rng.normal(k, 1.0))}))
+                for k in ks for _ in range(1 + k % 2)]
+        e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], start + j)
+        e.flush(start + j)
+
+
+def test_columns_restore_as_columns_and_go_on_as_the_object_path_would():
+    # a column stream's checkpoint is its arrays; restored into columns and into
+    # objects, both go on to the same states (the object path is the reference)
+    e = _column_engine()
+    _fill(e, range(30), NOW)
+    assert e.streams[0].store.outliers[:30].sum() > 0
+    data = decode_checkpoint(checkpoint_bytes(e))
+    cols, objs = _column_engine(), _column_engine(columns=False)
+    assert restore_checkpoint(cols, data, NOW)[0] == restore_checkpoint(objs, data, NOW)[0] \
+        == 30
+    assert bits(cols.export_state()) == bits(e.export_state())
+    for x in (cols, objs):
+        _fill(x, range(10, 40), NOW + 10)
+    assert len(cols.snapshot.series) == len(objs.snapshot.series) == 40
+    for key, view in objs.snapshot.series.items():
+        got = cols.snapshot.series[key]
+        assert (got.observations, got.outlier_counts) == (view.observations,
+                                                          view.outlier_counts)
+        assert got.mean == pytest.approx(view.mean, rel=1e-12)
+
+
+def test_columns_restore_refuses_beyond_max_series_and_restarts_changed_outlier_counts():
+    e = _column_engine()
+    _fill(e, range(30), NOW)
+    data = decode_checkpoint(checkpoint_bytes(e))
+    small = _column_engine(max_series=20, sigmas="[2.5]")
+    restored, dropped = restore_checkpoint(small, data, NOW)
+    assert restored == 20 and len(dropped) == 10
+    assert all("max_series is reached" in why for _, why in dropped)
+    assert dropped[0][0] == "c{k=k20}"
+    store = small.streams[0].store
+    assert store.n == 20 and not store.outliers[:20].any()     # thresholds changed
+    kept = small.snapshot.series[("c", (("k", "k3"),))]
+    assert kept.observations == e.snapshot.series[("c", (("k", "k3"),))].observations

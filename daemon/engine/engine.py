@@ -1433,6 +1433,24 @@ class Engine:
         return dropped + [(f"{s.stream.name}{list(s.labels)}", "the stream's max_series is "
                            "reached") for s in refused]
 
+    def adopt_columns(self, st: StreamState, c, now: float) -> list[int]:
+        """Make the restored columns ``c`` (``storage.columns.StreamColumns``) of column
+        stream ``st`` live, each replacing a live series of the same labels; returns
+        the rows refused because max_series is reached. Raises IncompatibleError when
+        the stream's definition changed incompatibly (``columns.check_stream``).
+        Outlier counts restart when the thresholds changed. O(rows d**2)."""
+        from sigmad.daemon.storage.columns import check_stream
+
+        check_stream(st, c)
+        width = len(st.cfg.outlier_sigmas)
+        outliers = c.outliers if c.thresholds == list(st.cfg.outlier_sigmas) else \
+            np.zeros((c.n, width), np.int64)
+        refused = st.store.adopt_columns(list(map(tuple, c.labels)), c.moments,
+                                         c.observations, c.version, c.last_update, outliers)
+        st.store.freeze()
+        self.snapshot = self._make_snapshot(now)
+        return refused
+
     def adopt(self, series: list[Series], views: list[SeriesView], now: float) -> list[Series]:
         """Make restored series live with their read-outs (``views[i]`` is ``series[i]``'s);
         a series replaces a live one of the same labels. Returns the series refused

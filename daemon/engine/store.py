@@ -122,6 +122,32 @@ class ColumnStore:
             self.outliers[i] = s.outliers
         return refused
 
+    def adopt_columns(self, labels: list[tuple[str, ...]], moments: MomentsColumns,
+                      observations: np.ndarray, version: np.ndarray,
+                      last_update: np.ndarray, outliers: np.ndarray) -> list[int]:
+        """``adopt`` for restored columns (row i is series ``labels[i]``): written in a
+        few array operations. Returns the rows of ``labels`` refused because
+        max_series is reached. O(len(labels) d**2)."""
+        index, limit = self.index, self.st.cfg.max_series
+        at, fresh, refused = [], [], []
+        room = limit - self.n
+        for i, values in enumerate(labels):
+            r = index.get(values)
+            if r is None:
+                if len(fresh) >= room:
+                    refused.append(i)
+                    continue
+                fresh.append(values)
+                r = -len(fresh)          # filled in once the new rows exist
+            at.append((i, r))
+        new = self._append(fresh) if fresh else np.zeros(0, np.int64)
+        src = np.array([i for i, _ in at], np.int64)
+        dst = np.array([r if r >= 0 else int(new[-r - 1]) for _, r in at], np.int64)
+        self.moments.put(dst, moments.take(src))
+        self.observations[dst], self.version[dst] = observations[src], version[src]
+        self.last_update[dst], self.outliers[dst] = last_update[src], outliers[src]
+        return refused
+
     def _append(self, labels: list[tuple[str, ...]]) -> np.ndarray:
         """New empty rows for ``labels`` (in order); their row numbers. Amortised O(k)."""
         first, need = self.n, self.n + len(labels)

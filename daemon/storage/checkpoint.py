@@ -189,6 +189,16 @@ def _restore_blocks(engine: Engine, blocks: list, now: float) -> tuple[int, list
         if st is None:
             dropped += [(c.where(k), "its stream is no longer configured") for k in range(c.n)]
             continue
+        if st.store is not None:   # a stream in columns takes the columns as they are
+            try:
+                refused = engine.adopt_columns(st, c, now)
+            except IncompatibleError as exc:
+                dropped += [(c.where(k, st.cfg.topic.labels), str(exc)) for k in range(c.n)]
+                continue
+            dropped += [(c.where(k, st.cfg.topic.labels), "the stream's max_series is "
+                         "reached") for k in refused]
+            restored += c.n - len(refused)
+            continue
         series, bad = columns.restore(st, c)
         stacked = c.moments if not bad else None   # row i is series i's moments
         refused = engine.adopt(series, columns.views(st, series, stacked), now)

@@ -77,9 +77,17 @@ def _get(name: str, series: list) -> list:
 def collect(st: StreamState) -> StreamColumns:
     """Copy the state of every series of ``st`` into columns (the engine thread's share
     of a checkpoint: nothing here is shared with live state afterwards). O(n d**2)."""
+    cfg = st.cfg
+    store = st.store
+    if store is not None:   # already columns: copies of the live rows
+        n = store.n
+        return StreamColumns(
+            st.name, list(st.fields), list(st.kinds), list(cfg.outlier_sigmas),
+            list(store.labels[:n]), store.observations[:n].copy(), store.version[:n].copy(),
+            store.last_update[:n].copy(), store.outliers[:n].copy(), store.moments.copy(n),
+            None, None, None, None)
     series = list(st.series.values())
     n = len(series)
-    cfg = st.cfg
     width = len(cfg.outlier_sigmas)
     return StreamColumns(
         st.name, list(st.fields), list(st.kinds), list(cfg.outlier_sigmas),
@@ -166,7 +174,7 @@ def unpack(d: object) -> StreamColumns:
         from_blob(d, "outliers", _LE_I8, (n, len(thresholds))), moments, *per_series)
 
 
-def _check_stream(st: StreamState, c: StreamColumns) -> None:
+def check_stream(st: StreamState, c: StreamColumns) -> None:
     """The stream-wide checks ``restore_series`` makes per series, made once."""
     cfg = st.cfg
     if c.fields != st.field_list:
@@ -197,7 +205,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     ``restore_series`` does. O(n d**2).
     """
     try:
-        _check_stream(st, c)
+        check_stream(st, c)
     except IncompatibleError as exc:
         return [], [(c.where(i, st.cfg.topic.labels), str(exc)) for i in range(c.n)]
     cfg = st.cfg
