@@ -36,7 +36,7 @@ def _connected(sub: Subscriber, feed: EstimateFeed, e: Engine) -> None:
     """Publish until the SUB socket's subscription has reached the PUB (slow joiner)."""
     deadline = time.monotonic() + 5.0
     while time.monotonic() < deadline:
-        feed._last = {}
+        feed._last, feed._blocks = {}, {}
         feed.send_changes(e.snapshot, 1.0)
         if sub.receive(timeout=0.05) is not None:
             while sub.receive(timeout=0.05) is not None:
@@ -66,6 +66,35 @@ def test_feed_sends_changed_series_only_and_the_subscriber_filters_by_stream():
         assert got.series["regression"]["latest"] == [5.0, 9.0]
         assert sub.receive(timeout=0.2) is None       # pair2 is filtered out
         assert feed.send_changes(e.snapshot, 2.5) == 0   # nothing changed
+    feed.close()
+    ctx.term()
+
+
+def test_series_in_columns_are_sent_when_they_change_and_not_otherwise():
+    # 500 series of a plain stream (kept in columns): each flush sends exactly the
+    # series it changed, found by their versions; series that expire and come back
+    # are sent again
+    ctx = zmq.Context()
+    e = Engine(parse_config(STREAMS.replace('topic = "pair2"', 'topic = "pair2.{k}"')
+                            .replace('fields = ["x"]', 'fields = ["x"]\nidle_expiry = "5s"')
+                            % {"pull": free_port()}))
+    feed = EstimateFeed(ctx, (f"tcp://127.0.0.1:{free_port()}",))
+
+    def send(ks, now):
+        topics = [f"pair2.k{k}".encode() for k in ks]
+        e.ingest_many(topics, [encode({"x": float(now)})] * len(topics), now)
+        e.flush(now)
+        return feed.send_changes(e.snapshot, now)
+
+    assert e.stream("pair2").store is not None
+    assert send(range(500), 1.0) == 500
+    assert send([], 2.0) == 0
+    assert send([3, 7, 499], 3.0) == 3
+    assert send(range(0, 40, 2), 8.0) == 20
+    assert e.expire_idle(9.0) == 480
+    e.flush(9.0)
+    assert feed.send_changes(e.snapshot, 9.0) == 20   # rows renumbered: all sent again
+    assert send([1], 10.0) == 1
     feed.close()
     ctx.term()
 

@@ -20,6 +20,7 @@ slows the daemon. ``sigmad.daemon.client.Subscriber`` reads this feed.
 from __future__ import annotations
 
 import msgpack
+import numpy as np
 import zmq
 from sigmad.daemon.engine.snapshot import Snapshot
 from sigmad.daemon.export.api_state import series_json
@@ -42,7 +43,8 @@ class EstimateFeed:
         self.socket.setsockopt(zmq.SNDHWM, SEND_QUEUE)
         self.socket.setsockopt(zmq.LINGER, 0)
         self.sent = self.dropped = 0
-        self._last: dict = {}
+        self._last: dict = {}       # the last snapshot's object views
+        self._blocks: dict = {}     # the last snapshot's column blocks, by stream
         try:
             for ep in bind:
                 self.socket.bind(ep)
@@ -51,15 +53,13 @@ class EstimateFeed:
             raise
 
     def send_changes(self, snap: Snapshot, now: float) -> int:
-        """Send every series of ``snap`` whose read-out changed since the last call (its
-        version, last update or count moved). Returns the messages sent. O(series)."""
-        last, sent = self._last, 0
+        """Send every series of ``snap`` whose read-out changed since the last call
+        (a view kept as an object: a new view; a series in columns: its version or last
+        update moved, found with numpy, and only those views are built). Returns the
+        messages sent. O(series), plus O(changed series) Python."""
+        sent = 0
         send = self.socket.send_multipart
-        seen = {}
-        for key, view in snap.series.items():
-            stamp = seen[key] = (view.version, view.last_update, view.observations)
-            if last.get(key) == stamp:
-                continue
+        for view in self._changed(snap):
             body = msgpack.packb({"format": FEED_FORMAT, "sent_at": now,
                                   "series": series_json(view, now)}, use_bin_type=True)
             try:
@@ -67,9 +67,30 @@ class EstimateFeed:
                 sent += 1
             except zmq.Again:
                 self.dropped += 1
-        self._last = seen
         self.sent += sent
         return sent
+
+    def _changed(self, snap: Snapshot):
+        objects = getattr(snap.series, "objects", snap.series)   # a SeriesTable or a dict
+        last = self._last
+        for key, view in objects.items():
+            if last.get(key) is not view:
+                yield view
+        self._last = objects
+        seen = {}
+        for b in getattr(snap.series, "blocks", ()):
+            prev = self._blocks.get(b.stream)
+            seen[b.stream] = b
+            if prev is None or prev.labels is not b.labels:   # new, or series left
+                rows = np.arange(b.n)
+            else:
+                k = prev.n
+                moved = (b.version[:k] != prev.version) | (b.last_update[:k]
+                                                          != prev.last_update)
+                rows = np.r_[np.flatnonzero(moved), np.arange(k, b.n)]
+            for i in range(0, rows.shape[0], 4096):
+                yield from b.views(rows[i:i + 4096])
+        self._blocks = seen
 
     def close(self) -> None:
         self.socket.close(0)
