@@ -476,8 +476,11 @@ def bench_scaling(sizes: tuple[int, ...], messages: int, repeat: int = 2) -> lis
     if len(sizes) > 1:
         lo, hi = sizes[0], sizes[-1]
         growth = ratios[lo] / ratios[hi]
+        judged = (lo, hi) == (1_000, 100_000)   # the target's sizes
         rows.append(Row(f"cost per observation, {hi:,} vs {lo:,} series", f"{growth:.2f}x",
-                        "at most 1.5x", growth / 1.5, "<= 1.0", growth <= 1.5))
+                        "at most 1.5x", growth / 1.5, "<= 1.0",
+                        growth <= 1.5 if judged else None,
+                        "" if judged else "not judged at quick size"))
     return rows
 
 

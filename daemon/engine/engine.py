@@ -1087,8 +1087,7 @@ class Engine:
                 if single:
                     store.add_single(at, row[0] if st.dim == 1 else row, weight, when)
                 else:
-                    store.queue(np.full(n, at, np.int64), dec.values, dec.weights, dec.times,
-                                None, now)
+                    store.queue(at, dec.values, dec.weights, dec.times, None, now)
                 stores[id(store)] = store
                 queued += n
                 continue

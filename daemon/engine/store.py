@@ -31,6 +31,28 @@ from sigmad.estimators import (
     screen_rows,
 )
 
+#: Series with more rows than this in one flush fold as a ``Moments`` of their own (its
+#: matrix products beat segment sums there; the Python per series is amortised)
+GROUP_ROWS = 32
+
+
+def _groups(R: np.ndarray, at: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Positions ``at`` ordered series by series (arrival order within each), and each
+    series' start and count in that order. Runs of one series (a batch's rows) are
+    sorted as runs, not row by row. O(n + runs log runs)."""
+    r = R[at]
+    edges = np.flatnonzero(np.r_[True, r[1:] != r[:-1]])
+    if edges.shape[0] == 1:   # one series
+        return at, np.zeros(1, np.int64), np.array([r.shape[0]])
+    ids, lengths = r[edges], np.diff(np.r_[edges, r.shape[0]])
+    o = np.argsort(ids, kind="stable")
+    ids, first, lengths = ids[o], edges[o], lengths[o]
+    ends = np.cumsum(lengths)
+    order = at[np.repeat(first - (ends - lengths), lengths) + np.arange(r.shape[0])]
+    new = np.r_[True, ids[1:] != ids[:-1]]
+    starts = (ends - lengths)[new]
+    return order, starts, np.diff(np.r_[starts, r.shape[0]])
+
 
 def _grown(a: np.ndarray, n: int) -> np.ndarray:
     out = np.zeros((n, *a.shape[1:]), a.dtype)
@@ -195,7 +217,10 @@ class ColumnStore:
         self.chunks.append((rows, x, w, t, given, arrival))
         self.singles, self.values, self.extras = [], [], []
 
-    def queue(self, rows: np.ndarray, x: np.ndarray, w, t, given, arrival: float) -> None:
+    def queue(self, rows: np.ndarray | int, x: np.ndarray, w, t, given,
+              arrival: float) -> None:
+        """Queue rows ``x`` of the series ``rows`` (one row number per row, or one for
+        all: a batch of one series)."""
         self.seal(arrival)
         self.chunks.append((rows, x, w, t, given, arrival))
 
@@ -205,7 +230,7 @@ class ColumnStore:
 
     def waiting_rows(self) -> np.ndarray:
         """The live rows with observations waiting for the flush."""
-        parts = [c[0] for c in self.chunks] + [np.array(self.singles, np.int64)]
+        parts = [np.atleast_1d(c[0]) for c in self.chunks] + [np.array(self.singles, np.int64)]
         rows = np.concatenate(parts)
         return np.unique(rows[rows >= 0])
 
@@ -222,23 +247,32 @@ class ColumnStore:
         if not chunks:
             return False
         st = self.st
-        R = np.concatenate([c[0] for c in chunks])
+        sizes = [c[1].shape[0] for c in chunks]
+        heads = {c[0] for c in chunks if type(c[0]) is int}
+        # one series' batches (a busy stream): its row, and no array of rows
+        one = heads.pop() if len(heads) == 1 and all(type(c[0]) is int for c in chunks) \
+            else None
+        R = None if one is not None else np.concatenate(
+            [np.full(k, c[0], np.int64) if type(c[0]) is int else c[0]
+             for c, k in zip(chunks, sizes, strict=True)])
         X = np.concatenate([c[1] for c in chunks]).astype(np.float64, copy=False)
         W = None
         if any(c[2] is not None for c in chunks):
-            W = np.concatenate([np.ones(c[0].shape[0]) if c[2] is None else c[2]
-                                for c in chunks])
+            W = np.concatenate([np.ones(k) if c[2] is None else c[2]
+                                for c, k in zip(chunks, sizes, strict=True)])
         T = G = A = S = None
         if st.time_based or any(c[3] is not None for c in chunks):
-            T = np.concatenate([np.full(c[0].shape[0], math.nan) if c[3] is None else c[3]
-                                for c in chunks])
-            G = np.concatenate([np.zeros(c[0].shape[0], bool) if c[3] is None else
-                                np.ones(c[0].shape[0], bool) if c[4] is None else c[4]
-                                for c in chunks])
-            A = np.concatenate([np.full(c[0].shape[0], c[5]) for c in chunks])
+            T = np.concatenate([np.full(k, math.nan) if c[3] is None else c[3]
+                                for c, k in zip(chunks, sizes, strict=True)])
+            G = np.concatenate([np.zeros(k, bool) if c[3] is None else
+                                np.ones(k, bool) if c[4] is None else c[4]
+                                for c, k in zip(chunks, sizes, strict=True)])
+            A = np.concatenate([np.full(k, c[5]) for c, k in zip(chunks, sizes, strict=True)])
             if st.time_based:
                 T = np.where(G, T, A)
-            else:   # does the row's series have a time in this flush (before screening)?
+            elif R is None:   # does the row's series have a time (before screening)?
+                S = np.full(X.shape[0], G.any())
+            else:
                 key = R - R.min()
                 S = (np.bincount(key, weights=G) > 0)[key]
         keep, why = screen_rows(X, W, T, G, max_abs)
@@ -249,15 +283,27 @@ class ColumnStore:
                 why.append(("out_of_range", outside))
                 keep &= ~outside
         for reason, mask in why:
-            self._report(reason, R[mask], reject, fresh)
+            if R is None:
+                reject(reason, int(np.count_nonzero(mask)), self.labels_of(one)
+                       if one >= 0 else fresh[-one - 1])
+            else:
+                self._report(reason, R[mask], reject, fresh)
         if not keep.all():
-            R, X = R[keep], X[keep]
+            X = X[keep]
+            R = None if R is None else R[keep]
             W = None if W is None else W[keep]
             if T is not None:
                 T, G, A = T[keep], G[keep], A[keep]
                 S = None if S is None else S[keep]
-        if not R.shape[0]:
+        if not X.shape[0]:
             return False
+        if R is None:
+            if one < 0:   # a new series: created now that a row of it survived
+                one = int(self._rows_of([fresh[-one - 1]])[0])
+            if X.shape[0] > 1:
+                self._fold_one(one, slice(None), X, W, T, G, A, S, now)
+                return True
+            R = np.array([one], np.int64)
         new = R < 0
         if new.any():   # series whose rows survived: created in order of first arrival
             ids, first = np.unique(R[new], return_index=True)
@@ -289,6 +335,10 @@ class ColumnStore:
             T1 = np.where(G, T, np.where(S, A, math.nan))
         else:
             T1 = T
+        if R.shape[0] > GROUP_ROWS and R[0] == R[-1] and (R[0] == R).all():
+            # one busy series (a batch stream): as the object path, with no gathers
+            self._fold_one(int(R[0]), slice(None), X, W, T, G, A, S, now)
+            return
         once = np.bincount(R, minlength=self.n)[R] == 1
         by_one: list[tuple[int, np.ndarray]] = []
         if once.any():
@@ -308,25 +358,36 @@ class ColumnStore:
             self._write(idx, ok, res.columns, before.count, dist, np.arange(idx.shape[0]),
                         np.ones(idx.shape[0], np.int64), now)
         if not once.all():
-            at = np.flatnonzero(~once)
-            order = at[np.argsort(R[at], kind="stable")]
-            rows = R[order]
-            starts = np.flatnonzero(np.r_[True, rows[1:] != rows[:-1]])
-            counts = np.diff(np.r_[starts, rows.shape[0]])
-            ids = rows[starts]
-            before = self.moments.take(ids)
-            x = X[order]
-            new, ok = fold_groups(before, x, None if W is None else W[order],
-                                  None if T1 is None else T1[order], counts)
-            dist = None
-            if cfg.outlier_sigmas:
-                group = np.repeat(np.arange(ids.shape[0]), counts)
-                dist = mahalanobis_rows(before.take(group), x, cfg.correction)
-            self._write(ids, ok, new, before.count, dist, starts, counts, now)
-            for k in np.flatnonzero(~ok).tolist():
-                by_one.append((int(ids[k]), order[starts[k]:starts[k] + counts[k]]))
+            order, starts, counts = _groups(R, np.flatnonzero(~once))
+            big = counts > GROUP_ROWS   # a large batch: Moments' BLAS products beat sums
+            for k in np.flatnonzero(big).tolist():
+                by_one.append((int(R[order[starts[k]]]), order[starts[k]:starts[k] + counts[k]]))
+            if not big.all():
+                if big.any():
+                    order = order[np.repeat(~big, counts)]
+                    counts = counts[~big]
+                    starts = np.cumsum(counts) - counts
+                self._fold_groups(R, X, W, T1, order, starts, counts, by_one, now)
         for r, p in by_one:
             self._fold_one(r, p, X, W, T, G, A, S, now)
+
+    def _fold_groups(self, R, X, W, T1, order: np.ndarray, starts: np.ndarray,
+                     counts: np.ndarray, by_one: list, now: float) -> None:
+        """Fold rows ``order`` (series by series: ``starts``, ``counts``) by
+        ``fold_groups``; a series whose state it leaves goes to ``by_one``."""
+        cfg = self.st.cfg
+        ids = R[order[starts]]
+        before = self.moments.take(ids)
+        x = X[order]
+        new, ok = fold_groups(before, x, None if W is None else W[order],
+                              None if T1 is None else T1[order], counts)
+        dist = None
+        if cfg.outlier_sigmas:
+            group = np.repeat(np.arange(ids.shape[0]), counts)
+            dist = mahalanobis_rows(before.take(group), x, cfg.correction)
+        self._write(ids, ok, new, before.count, dist, starts, counts, now)
+        for k in np.flatnonzero(~ok).tolist():
+            by_one.append((int(ids[k]), order[starts[k]:starts[k] + counts[k]]))
 
     def _write(self, ids: np.ndarray, ok: np.ndarray, new: MomentsColumns,
                count_before: np.ndarray, dist: np.ndarray | None, starts: np.ndarray,
@@ -347,9 +408,9 @@ class ColumnStore:
         self.version[good] += 1
         self.last_update[good] = now
 
-    def _fold_one(self, r: int, p: np.ndarray, X, W, T, G, A, S, now: float) -> None:
-        """Fold rows ``p`` (arrival order) into series ``r`` as a ``Moments`` of its own:
-        the object path's fold, to the same bits."""
+    def _fold_one(self, r: int, p: np.ndarray | slice, X, W, T, G, A, S, now: float) -> None:
+        """Fold rows ``p`` (positions in arrival order, or a slice) into series ``r`` as a
+        ``Moments`` of its own: the object path's fold, to the same bits."""
         st = self.st
         cfg = st.cfg
         m = self.moments.state(r)
@@ -359,7 +420,7 @@ class ColumnStore:
         if T is not None:
             if st.time_based:
                 t = T[p]
-            elif S[p[0]]:   # a row of it had a time: the others take their arrival
+            elif S[p][0]:   # a row of it had a time: the others take their arrival
                 t = np.where(G[p], T[p], A[p])
         if cfg.outlier_sigmas and m.count >= cfg.outlier_warmup:
             dist = m.mahalanobis(x, cfg.correction)
@@ -367,7 +428,7 @@ class ColumnStore:
                 self.outliers[r, j] += int(np.count_nonzero(dist > k))
         m._fold(x, w, t)
         self.moments.set_state(r, m)
-        self.observations[r] += p.shape[0]
+        self.observations[r] += x.shape[0]
         self.version[r] += 1
         self.last_update[r] = now
 
@@ -389,7 +450,8 @@ class ColumnStore:
         (blocks already handed out keep theirs); waiting rows are renumbered (none of
         them may be in a dropped row). O(n d**2)."""
         new_row = np.cumsum(keep) - 1
-        self.chunks = [(np.where(c[0] >= 0, new_row[np.maximum(c[0], 0)], c[0]), *c[1:])
+        self.chunks = [((int(new_row[c[0]]) if c[0] >= 0 else c[0]) if type(c[0]) is int
+                        else np.where(c[0] >= 0, new_row[np.maximum(c[0], 0)], c[0]), *c[1:])
                        for c in self.chunks]
         self.singles = [int(new_row[r]) if r >= 0 else r for r in self.singles]
         at = np.flatnonzero(keep)
