@@ -40,19 +40,25 @@ def _check_bounds(bounds: object) -> np.ndarray:
     return b
 
 
-def _block_sums(bounds: np.ndarray, x: np.ndarray, u: np.ndarray) -> np.ndarray:
-    """sum_i u_i [x_i <= b_j] for each bound b_j, then sum_i u_i and sum_i u_i x_i:
-    (k + 2,).
+def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray) -> np.ndarray:
+    """For each weight vector u (a row of the result): sum_i u_i [x_i <= b_j] for each
+    bound b_j, then sum_i u_i and sum_i u_i x_i: (len(weights), k + 2).
 
-    A (k, block) mask times the block of u: k comparisons and a product a row beat
-    a binary search (numpy's searchsorted is a branchy 10 ns a row, bincount 2 ns);
-    each block's values, weights and mask are read once and stay in cache. O(n k)."""
-    out = np.zeros(bounds.size + 2)
+    A (k, block) mask times the block of each u: k comparisons and a product a row
+    beat a binary search (numpy's searchsorted is a branchy 10 ns a row, bincount
+    2 ns); each block's values, weights and mask are read once and stay in cache,
+    and the mask is converted to floats once for two products. O(n k)."""
+    out = np.zeros((len(weights), bounds.size + 2))
     for i in range(0, x.shape[0], _BLOCK):
-        xb, ub = x[i:i + _BLOCK], u[i:i + _BLOCK]
-        out[:-2] += np.greater_equal.outer(bounds, xb) @ ub
-        out[-2] += ub.sum()
-        out[-1] += ub @ xb
+        xb = x[i:i + _BLOCK]
+        le = np.greater_equal.outer(bounds, xb)
+        if len(weights) > 1:
+            le = le.astype(np.float64)
+        for row, u in zip(out, weights, strict=True):
+            ub = u[i:i + _BLOCK]
+            row[:-2] += le @ ub
+            row[-2] += ub.sum()
+            row[-1] += ub @ xb
     return out
 
 
@@ -121,9 +127,11 @@ class Thresholds:
         if w is None:       # unit weights: a popcount per bound
             counted = np.array([np.count_nonzero(x <= b) for b in self.bounds.tolist()]
                                + [n, x.sum()], dtype=np.float64)
+            decayed = counted if v is None else _block_sums(self.bounds, x, v)[0]
+        elif v is w:        # no decay within the batch: one product serves both
+            counted = decayed = _block_sums(self.bounds, x, w)[0]
         else:
-            counted = _block_sums(self.bounds, x, w)
-        decayed = counted if v is w else _block_sums(self.bounds, x, v)
+            counted, decayed = _block_sums(self.bounds, x, w, v)
         self._cumulative += counted[:-1]
         self.value_sum += float(counted[-1])
         self.W += float(decayed[-2])
