@@ -40,26 +40,27 @@ def _check_bounds(bounds: object) -> np.ndarray:
     return b
 
 
-def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray) -> np.ndarray:
-    """For each weight vector u (a row of the result): sum_i u_i [x_i <= b_j] for each
-    bound b_j, then sum_i u_i and sum_i u_i x_i: (len(weights), k + 2).
+def _block_sums(bounds: np.ndarray, x: np.ndarray,
+                *weights: np.ndarray) -> list[tuple[np.ndarray, float, float]]:
+    """For each weight vector u: (sum_i u_i [x_i <= b_j] for each bound b_j (k,),
+    sum_i u_i, sum_i u_i x_i).
 
     A (k, block) mask times the block of each u: k comparisons and a product a row
     beat a binary search (numpy's searchsorted is a branchy 10 ns a row, bincount
     2 ns); each block's values, weights and mask are read once and stay in cache,
     and the mask is converted to floats once for two products. O(n k)."""
-    out = np.zeros((len(weights), bounds.size + 2))
+    sums = [[0.0, 0.0, 0.0] for _ in weights]
     for i in range(0, x.shape[0], _BLOCK):
         xb = x[i:i + _BLOCK]
         le = np.greater_equal.outer(bounds, xb)
         if len(weights) > 1:
             le = le.astype(np.float64)
-        for row, u in zip(out, weights, strict=True):
+        for s, u in zip(sums, weights, strict=True):
             ub = u[i:i + _BLOCK]
-            row[:-2] += le @ ub
-            row[-2] += ub.sum()
-            row[-1] += ub @ xb
-    return out
+            s[0] = s[0] + le @ ub
+            s[1] += float(ub.sum())
+            s[2] += float(ub @ xb)
+    return [tuple(s) for s in sums]
 
 
 class Thresholds:
@@ -125,17 +126,20 @@ class Thresholds:
         v = take_batch(self, n, t, w)
         self._rebase(0)     # new rows weigh about 1: the old sums join them in plain units
         if w is None:       # unit weights: a popcount per bound
-            counted = np.array([np.count_nonzero(x <= b) for b in self.bounds.tolist()]
-                               + [n, x.sum()], dtype=np.float64)
+            counted = (np.array([np.count_nonzero(x <= b) for b in self.bounds.tolist()],
+                                dtype=np.float64), float(n), float(x.sum()))
             decayed = counted if v is None else _block_sums(self.bounds, x, v)[0]
         elif v is w:        # no decay within the batch: one product serves both
             counted = decayed = _block_sums(self.bounds, x, w)[0]
         else:
             counted, decayed = _block_sums(self.bounds, x, w, v)
-        self._cumulative += counted[:-1]
-        self.value_sum += float(counted[-1])
-        self.W += float(decayed[-2])
-        self._above += decayed[-2] - decayed[:-2]
+        below, total, value_sum = counted
+        self._cumulative[:-1] += below
+        self._cumulative[-1] += total
+        self.value_sum += value_sum
+        below, weight, _ = decayed
+        self.W += weight
+        self._above += weight - below
 
     def _age(self, g: float) -> None:
         """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol): the
