@@ -116,6 +116,24 @@ def test_a_batch_of_several_blocks_equals_explicit_numpy_sums(weighted, forgetti
     np.testing.assert_allclose(t.observed_share, [f[x > b].sum() / f.sum() for b in BOUNDS],
                                rtol=1e-10)
 
+
+def test_batches_stamped_at_one_arrival_each_give_the_explicit_decayed_share():
+    # as the daemon stamps a message's rows with its arrival (factors of exactly 1 at
+    # the clock), one batch holding an older row; reference: explicit numpy sums of
+    # w * 2**(-age/h) and numpy's exact weighted counts
+    x, w, _ = sample(300, seed=3)
+    t = np.repeat([0.0, 5.0, 5.0, 30.0, 31.0], 60)
+    t[-7] = 2.0
+    h = 20.0
+    th = Thresholds(BOUNDS, HalfLife(h))
+    for i in range(0, x.size, 60):
+        th.update(x[i:i + 60], weights=w[i:i + 60], times=t[i:i + 60])
+    f = w * 2.0 ** (-(t.max() - t) / h)
+    np.testing.assert_allclose(th.observed_share, [f[x > b].sum() / f.sum() for b in BOUNDS],
+                               rtol=1e-12)
+    np.testing.assert_allclose(th.cumulative, [w[x <= b].sum() for b in BOUNDS] + [w.sum()],
+                               rtol=1e-12)
+
 def test_merge_of_halves_equals_the_whole():
     x, w, times = sample()
     whole, a, b = (Thresholds(BOUNDS, HalfLife(45.0)) for _ in range(3))
