@@ -118,6 +118,8 @@ def advance(half_life: HalfLife | None, clock: float | None, n: int,
     latest = float(times.max())
     new_clock = latest if clock is None else max(clock, latest)
     state_log2 = 0.0 if clock is None else -(new_clock - clock) / h
+    if times[0] == new_clock and times.min() == new_clock:
+        return new_clock, state_log2, None      # all at the clock: factors of exactly 1
     return new_clock, state_log2, np.exp2(-(new_clock - times) / h)
 
 

@@ -211,6 +211,27 @@ def test_out_of_order_rows_are_weighted_by_their_own_age():
     assert m.weight_sum == pytest.approx(d.sum(), rel=1e-12)
 
 
+
+@pytest.mark.parametrize("weighted", [False, True], ids=["unit", "weighted"])
+def test_batches_stamped_at_one_arrival_each_are_weighted_by_age(weighted):
+    # the daemon stamps a message's rows with its arrival: whole batches at the state's
+    # clock (factors of exactly 1), then one led by a row at the clock with an older row
+    # inside. Reference: numpy weighted moments with weights w * 2**(-(T - t)/h)
+    rng = np.random.default_rng(12)
+    t = np.repeat([0.0, 4.0, 4.0, 9.0, 20.0], 60)
+    t[-30] = 11.0                                   # older than the last batch's clock
+    x, w = rng.normal(size=t.size), rng.uniform(0.5, 2, t.size)
+    w = w if weighted else np.ones(t.size)
+    h = 8.0
+    m = Moments(half_life=HalfLife(h))
+    for i in range(0, t.size, 60):
+        m.update(x[i:i + 60], weights=w[i:i + 60] if weighted else None, times=t[i:i + 60])
+    d = w * 2.0 ** (-(t.max() - t) / h)
+    assert m.mean[0] == pytest.approx(np.average(x, weights=d), rel=1e-12)
+    assert m.variance("reliability")[0] == pytest.approx(np.cov(x, aweights=d), rel=1e-11)
+    assert m.weight_sum == pytest.approx(d.sum(), rel=1e-12)
+    assert m.effective_samples == pytest.approx(d.sum() ** 2 / (d @ d), rel=1e-12)
+
 def test_count_forgetting_matches_pandas_ewm_var_and_cov():
     pd = need_module("pandas")
     rng = np.random.default_rng(11)

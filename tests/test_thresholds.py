@@ -22,7 +22,12 @@ from sigmad.estimators.model_tail import (
     outlier_counts,
     tail_probability,
 )
-from sigmad.estimators.thresholds import Thresholds, mixture_exceedance, normal_exceedance
+from sigmad.estimators.thresholds import (
+    _BLOCK,
+    Thresholds,
+    mixture_exceedance,
+    normal_exceedance,
+)
 
 BOUNDS = [100.0, 250.0, 300.0]
 
@@ -83,6 +88,51 @@ def test_observed_share_equals_explicit_decayed_weights_by_count():
     np.testing.assert_allclose(t.observed_share, [f[x > b].sum() / f.sum() for b in BOUNDS],
                                rtol=1e-10)
 
+
+
+@pytest.mark.parametrize("weighted", [False, True], ids=["unit", "weighted"])
+@pytest.mark.parametrize("forgetting", [None, "seconds", "observations"])
+def test_a_batch_of_several_blocks_equals_explicit_numpy_sums(weighted, forgetting):
+    # one batch longer than two blocks of comparisons, with values on the bounds at the
+    # block edges; reference: numpy's exact counts and explicit numpy sums of w * 2**(-age/h)
+    n = 2 * _BLOCK + 777
+    x, w, times = sample(n, seed=7)
+    for i in (0, _BLOCK - 1, _BLOCK, 2 * _BLOCK, n - 1):
+        x[i] = BOUNDS[i % len(BOUNDS)]
+    w = w if weighted else None
+    h = HalfLife(200.0, forgetting) if forgetting else None
+    t = Thresholds(BOUNDS, h)
+    t.update(x, weights=w, times=times if forgetting == "seconds" else None)
+    u = np.ones(n) if w is None else w
+    want = [u[x <= b].sum() for b in BOUNDS] + [u.sum()]
+    if weighted:
+        np.testing.assert_allclose(t.cumulative, want, rtol=1e-12)
+    else:                                       # whole numbers: exact
+        assert t.cumulative.tolist() == [float(np.count_nonzero(x <= b)) for b in BOUNDS] + [n]
+    assert t.value_sum == pytest.approx(float(u @ x), rel=1e-12)
+    age = {None: np.zeros(n), "seconds": times[-1] - times,
+           "observations": np.arange(n - 1, -1, -1.0)}[forgetting]
+    f = u * 2.0 ** (-age / 200.0)               # DESIGN.md's forgetting rule
+    np.testing.assert_allclose(t.observed_share, [f[x > b].sum() / f.sum() for b in BOUNDS],
+                               rtol=1e-10)
+
+
+def test_batches_stamped_at_one_arrival_each_give_the_explicit_decayed_share():
+    # as the daemon stamps a message's rows with its arrival (factors of exactly 1 at
+    # the clock), one batch holding an older row; reference: explicit numpy sums of
+    # w * 2**(-age/h) and numpy's exact weighted counts
+    x, w, _ = sample(300, seed=3)
+    t = np.repeat([0.0, 5.0, 5.0, 30.0, 31.0], 60)
+    t[-7] = 2.0
+    h = 20.0
+    th = Thresholds(BOUNDS, HalfLife(h))
+    for i in range(0, x.size, 60):
+        th.update(x[i:i + 60], weights=w[i:i + 60], times=t[i:i + 60])
+    f = w * 2.0 ** (-(t.max() - t) / h)
+    np.testing.assert_allclose(th.observed_share, [f[x > b].sum() / f.sum() for b in BOUNDS],
+                               rtol=1e-12)
+    np.testing.assert_allclose(th.cumulative, [w[x <= b].sum() for b in BOUNDS] + [w.sum()],
+                               rtol=1e-12)
 
 def test_merge_of_halves_equals_the_whole():
     x, w, times = sample()
