@@ -625,12 +625,18 @@ class Engine:
     ----------
     config : Config
         The validated configuration.
-    columns : bool
+    columns : bool or None
         Hold plain streams' series in columns (``store.ColumnStore``); False keeps
-        every series an object (the reference the column path is tested against).
+        every series an object (the reference the column path is tested against, and
+        ``sigmad bench``'s like-for-like rows); None: ``Engine.COLUMNS``.
     """
 
-    def __init__(self, config: Config, columns: bool = True) -> None:
+    #: what ``columns=None`` means (True; the benchmark sets it for an engine it starts)
+    COLUMNS = True
+
+    def __init__(self, config: Config, columns: bool | None = None) -> None:
+        if columns is None:
+            columns = Engine.COLUMNS
         self.config = config
         d = config.daemon
 
