@@ -682,6 +682,7 @@ class Engine:
         self._route_rows = np.zeros(0, np.int64)
         self._route_store = np.zeros(0, np.int64)
         self._route_list: list | None = None
+        self._made_later: list[tuple[int, ColumnStore]] = []   # (route id, store)
         self._not_learnt: dict[tuple[bytes, int], int] = {}
         self._shapes: dict[tuple[int, int], list] = {}   # (id(stream), length) -> layouts
         self._drains = 0
@@ -955,6 +956,18 @@ class Engine:
             self._route_rows = np.r_[self._route_rows, np.full(len(new), -1, np.int64)]
         return self._route_store
 
+    def _learn_rows(self) -> None:
+        """Cache the rows of series the flush just made, by their layout route ids, so
+        the next drain finds them without Python (once per new series)."""
+        made, self._made_later = self._made_later, []
+        routes = self._layouts.routes
+        if routes is not self._route_list:   # the table started afresh: ids changed
+            return
+        for rid, store in made:
+            row = store.index.get(routes[rid][1])
+            if row is not None:
+                self._route_rows[rid] = row
+
     def _queue_columns(self, r: Readout, at: np.ndarray, store_of: np.ndarray,
                        now: float) -> int:
         """``_queue_fitting`` for the messages ``at`` whose streams keep columns: one
@@ -982,6 +995,8 @@ class Engine:
                         row = _NO_ROW
                     elif row >= 0:
                         self._route_rows[rid] = row
+                    else:   # its series is made at the flush: learn its row then
+                        self._made_later.append((rid, store))
                     found[k] = row
                 rows = rows.copy()
                 rows[unknown] = found[np.searchsorted(ids, rids[unknown])]
@@ -1195,6 +1210,8 @@ class Engine:
                                                              labels), now=now)
             if store.flush(now, max_abs, reject):
                 store.freeze()
+        if self._made_later:
+            self._learn_rows()
         if changed or self.snapshot.taken_at == 0.0:
             self._views = views
         self.flushes += 1
