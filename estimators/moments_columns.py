@@ -366,6 +366,18 @@ def _powers_of_two(g: np.ndarray) -> np.ndarray:
     return np.array([2.0 ** v for v in g.tolist()]) if g.size else np.ones(0)
 
 
+def _aged(W: np.ndarray, W2: np.ndarray, scatter: np.ndarray, g: np.ndarray,
+          ok: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """W, W2 and the scatter of each state aged by 2**g (``Moments._age``), and ``ok``
+    False where the aging would move the scale (``scale_step`` keeps it while the aged
+    sum stays above 2**-100): those are left to ``Moments``. O(n d**2)."""
+    aged = g != 0.0
+    ok = ok & (~aged | (np.frexp(W)[1] + g > -100))
+    f = np.ones(g.shape[0])
+    f[aged] = _powers_of_two(g[aged])
+    return W * f, W2 * (f * f), scatter * f[:, None, None], ok
+
+
 def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
               times: np.ndarray | None, correction: str = "reliability") -> Folded:
     """Fold one checked row into each of n states at once, as ``Moments._fold`` does for
@@ -448,12 +460,7 @@ def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
         v = rf if weights is None else weights * rf
         clock, has_clock = new_clock, np.ones(n, bool)
     if g is not None:
-        aged = g != 0.0
-        # scale_step keeps the scale while the aged sum stays above 2**-100
-        ok &= ~aged | (np.frexp(W)[1] + g > -100)
-        f = np.ones(n)
-        f[aged] = _powers_of_two(g[aged])
-        W, W2, scatter = W * f, W2 * (f * f), scatter * f[:, None, None]
+        W, W2, scatter, ok = _aged(W, W2, scatter, g, ok)
     wb = np.ones(n) if v is None else v
     ok &= (wb >= 2.0 ** -100) & (wb <= 2.0 ** 100)
     total = W + wb
@@ -563,11 +570,7 @@ def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
         v = rf if weights is None else weights * rf
         clock, has_clock = new_clock, np.ones(n, bool)
     if g is not None:
-        aged = g != 0.0
-        ok &= ~aged | (np.frexp(W)[1] + g > -100)
-        f = np.ones(n)
-        f[aged] = _powers_of_two(g[aged])
-        W, W2, scatter = W * f, W2 * (f * f), scatter * f[:, None, None]
+        W, W2, scatter, ok = _aged(W, W2, scatter, g, ok)
     base = x[starts]
     xc = x - base[group]
     if v is None:

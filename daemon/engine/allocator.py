@@ -19,16 +19,21 @@ MMAP_THRESHOLD = 32 << 20     # glibc's largest allowed value on 64-bit
 TRIM_THRESHOLD = 64 << 20     # free heap kept before trimming back to the OS
 
 
-def keep_freed_blocks() -> bool:
-    """Raise glibc's mmap and trim thresholds; True if the C library accepted them."""
+def _libc(function: str):
+    """A function of the C library, or None where there is none (another libc or OS)."""
     name = ctypes.util.find_library("c")
     if name is None:
-        return False
+        return None
     try:
-        mallopt = ctypes.CDLL(name).mallopt
+        return getattr(ctypes.CDLL(name), function)
     except (OSError, AttributeError):
-        return False
-    return bool(mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD)) and \
+        return None
+
+
+def keep_freed_blocks() -> bool:
+    """Raise glibc's mmap and trim thresholds; True if the C library accepted them."""
+    mallopt = _libc("mallopt")
+    return mallopt is not None and bool(mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD)) and \
         bool(mallopt(_M_TRIM_THRESHOLD, TRIM_THRESHOLD))
 
 
@@ -36,11 +41,5 @@ def release_freed() -> bool:
     """Hand free heap memory back to the OS now (glibc ``malloc_trim``): after a reader
     made and dropped a large response, so the process does not keep its high-water
     mark. A few milliseconds; True if anything was released."""
-    name = ctypes.util.find_library("c")
-    if name is None:
-        return False
-    try:
-        trim = ctypes.CDLL(name).malloc_trim
-    except (OSError, AttributeError):
-        return False
-    return bool(trim(0))
+    trim = _libc("malloc_trim")
+    return trim is not None and bool(trim(0))
