@@ -10,10 +10,12 @@ read.
 
 Rows wait in ``chunks`` until the flush. A series is created only at the flush,
 for rows that passed every check: until then a new label set has a provisional
-row (negative), so rejected input leaves no series behind. Rows of a series
-that sends one row per flush are folded together in columns; a series with
-several rows in one flush (or a state outside ``fold_rows``' common case) is
-folded as a ``Moments`` of its own, exactly as an object series would be.
+row (negative), so rejected input leaves no series behind. At the flush, series
+with one row fold together by ``fold_rows`` (bit for bit what a ``Moments`` would
+do), series with a few rows by ``fold_groups`` (the same formulas and outlier
+semantics, equal to rounding); one busy series, a series with more than
+``GROUP_ROWS`` rows, and a state outside those two's common case fold as a
+``Moments`` of its own, exactly as an object series would.
 """
 
 from __future__ import annotations
@@ -111,9 +113,6 @@ class ColumnStore:
         r = self.fresh[labels] = -len(self.fresh_labels) - 1
         self.fresh_labels.append(labels)
         return r
-
-    def labels_of(self, row: int) -> tuple[str, ...]:
-        return self.labels[row] if row >= 0 else self.fresh_labels[-row - 1]
 
     def _rows_of(self, labels: list[tuple[str, ...]]) -> np.ndarray:
         """The rows of ``labels``, new ones appended (a label set restored while its
@@ -284,7 +283,7 @@ class ColumnStore:
                 keep &= ~outside
         for reason, mask in why:
             if R is None:
-                reject(reason, int(np.count_nonzero(mask)), self.labels_of(one)
+                reject(reason, int(np.count_nonzero(mask)), self.labels[one]
                        if one >= 0 else fresh[-one - 1])
             else:
                 self._report(reason, R[mask], reject, fresh)
