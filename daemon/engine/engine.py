@@ -981,9 +981,15 @@ class Engine:
             st = self.streams[number]
             store = st.store
             rids = r.route[sel]
-            rows = self._route_rows[rids]
-            unknown = rows < 0
-            if unknown.any():   # new routes, or series not created yet (provisional rows)
+            rid0 = int(rids[0])
+            if rids[-1] == rid0 and self._route_rows[rid0] >= 0 and (rids == rid0).all():
+                rows = int(self._route_rows[rid0])   # one known series: its row, once
+                unknown = None
+            else:
+                rows = self._route_rows[rids]
+                unknown = rows < 0
+            # new routes, or series not created yet (provisional rows)
+            if unknown is not None and unknown.any():
                 ids, first = np.unique(rids[unknown], return_index=True)
                 found = np.empty(ids.shape[0], np.int64)
                 full = []
