@@ -29,7 +29,6 @@ from .moments_columns import (
     fold_rows,
     from_blob,
     mahalanobis_rows,
-    row_views,
 )
 from .regression import Regression
 from .returns import TRANSFORMS, Returns, Stepped
@@ -87,7 +86,6 @@ __all__ = [
     "normal_tail_rate",
     "outlier_counts",
     "mahalanobis_rows",
-    "row_views",
     "screen_batch",
     "screen_rows",
     "sums_at",

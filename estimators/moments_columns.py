@@ -255,6 +255,21 @@ class MomentsColumns(NamedTuple):
         with np.errstate(over="ignore", under="ignore"):
             return np.ldexp(self.W, e), np.ldexp(self.W2, 2 * e)
 
+    def sums_at(self, t: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(W, W2, per-field scatter) of every row aged to event time t, never backwards,
+        in plain units: ``forgetting.sums_at`` row by row, to the same bits (count-based
+        forgetting and none do not move with time). O(n d)."""
+        w, w2 = self.weight_sums()
+        scatter = self.scatters()
+        hl = self.half_life
+        if hl is None or hl.by_count:
+            return w, w2, scatter
+        with np.errstate(invalid="ignore"):
+            g = np.where(self.has_clock & (t > self.clock), -(t - self.clock) / hl.length,
+                         0.0)
+        f = _powers_of_two(g)
+        return w * f, w2 * f * f, scatter * f[:, None]
+
     def means(self) -> np.ndarray:
         """Weighted means (n, d); NaN rows where W is 0, as ``Moments.mean``."""
         return np.where((self.W > 0.0)[:, None], self.mean, np.nan)
@@ -285,6 +300,13 @@ class MomentsColumns(NamedTuple):
     def variances(self, correction: str = "reliability") -> np.ndarray:
         """Per-field variances (n, d) under a correction, as ``Moments.variance``."""
         return np.diagonal(self.scatter, axis1=1, axis2=2) / self.divisors(correction)[:, None]
+
+    def stddevs(self, correction: str = "reliability") -> np.ndarray:
+        """Per-field standard deviations (n, d), NaN where the variance is not >= 0,
+        as ``SeriesView.stddev``."""
+        v = self.variances(correction)
+        with np.errstate(invalid="ignore"):
+            return np.where(v >= 0.0, np.sqrt(np.abs(v)), np.nan)
 
     def covariances(self, correction: str = "reliability") -> np.ndarray:
         """Covariance matrices (n, d, d), as ``Moments.covariance``."""
@@ -656,14 +678,4 @@ def mahalanobis_rows(cols: MomentsColumns, x: np.ndarray,
         return out
     z = np.linalg.solve(chol, diff[:, :, None])[:, :, 0]
     out[at] = np.where(good, np.sqrt((z * z).sum(axis=1)), np.nan)
-    return out
-
-
-def row_views(a: np.ndarray, block: int = 8) -> list[np.ndarray]:
-    """The rows of ``a`` as arrays that share a copy per ``block`` rows: one view object
-    per row, and a state that keeps its row keeps at most ``block`` rows alive (a view
-    of one large array would keep all of it). O(n)."""
-    out: list[np.ndarray] = []
-    for i in range(0, a.shape[0], block):
-        out.extend(a[i:i + block].copy())
     return out

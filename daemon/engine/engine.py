@@ -1464,12 +1464,9 @@ class Engine:
     def adopt_columns(self, st: StreamState, c, now: float) -> list[int]:
         """Make the restored columns ``c`` (``storage.columns.StreamColumns``) of column
         stream ``st`` live, each replacing a live series of the same labels; returns
-        the rows refused because max_series is reached. Raises IncompatibleError when
-        the stream's definition changed incompatibly (``columns.check_stream``).
-        Outlier counts restart when the thresholds changed. O(rows d**2)."""
-        from sigmad.daemon.storage.columns import check_stream
-
-        check_stream(st, c)
+        the rows refused because max_series is reached. ``c`` has passed
+        ``columns.check_stream`` for ``st``. Outlier counts restart when the thresholds
+        changed. O(rows d**2)."""
         width = len(st.cfg.outlier_sigmas)
         outliers = c.outliers if c.thresholds == list(st.cfg.outlier_sigmas) else \
             np.zeros((c.n, width), np.int64)

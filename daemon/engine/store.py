@@ -127,21 +127,17 @@ class ColumnStore:
     def adopt(self, series: list) -> list:
         """Make restored series (engine ``Series`` of this stream) live, each replacing
         a live one of the same labels; returns those refused because max_series is
-        reached. O(len(series) d**2)."""
-        refused = []
-        limit = self.st.cfg.max_series
-        for s in series:
-            i = self.index.get(s.labels)
-            if i is None:
-                if self.n >= limit:
-                    refused.append(s)
-                    continue
-                i = int(self._append([s.labels])[0])
-            self.moments.set_state(i, s.moments)
-            self.observations[i], self.version[i] = s.observations, s.version
-            self.last_update[i] = s.last_update
-            self.outliers[i] = s.outliers
-        return refused
+        reached (``adopt_columns``). O(len(series) d**2)."""
+        if not series:
+            return []
+        refused = self.adopt_columns(
+            [s.labels for s in series],
+            MomentsColumns.of([s.moments for s in series], self.dim, self.st.cfg.half_life),
+            np.array([s.observations for s in series], np.int64),
+            np.array([s.version for s in series], np.int64),
+            np.array([s.last_update for s in series], np.float64),
+            np.array([s.outliers for s in series], np.int64).reshape(len(series), -1))
+        return [series[i] for i in refused]
 
     def adopt_columns(self, labels: list[tuple[str, ...]], moments: MomentsColumns,
                       observations: np.ndarray, version: np.ndarray,

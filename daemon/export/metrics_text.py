@@ -202,9 +202,7 @@ class _BlockText:
         if name == "variance":
             return m.variances(corr)
         if name == "stddev":
-            v = m.variances(corr)
-            with np.errstate(invalid="ignore"):
-                return np.where(v >= 0.0, np.sqrt(np.abs(v)), np.nan)
+            return m.stddevs(corr)
         if name == "outliers":
             return b.outliers[rows].astype(np.float64)
         if name == "age":
@@ -216,19 +214,9 @@ class _BlockText:
             with np.errstate(divide="ignore", invalid="ignore"):
                 whole = m.covariances(corr) if name == "covariance" else m.correlations()
             return whole[:, iu, ju]
-        # weight, weight_squared, scatter: aged to now, never backwards (``sums_at``)
-        w, w2 = m.weight_sums()
-        value = {"weight": w[:, None], "weight_squared": w2[:, None],
-                 "scatter": m.scatters()}[name]
-        hl = b.half_life
-        if hl is not None and not hl.by_count:
-            with np.errstate(invalid="ignore"):
-                g = np.where(m.has_clock & (now > m.clock), -(now - m.clock) / hl.length, 0.0)
-            f = np.array([1.0 if v == 0.0 else 2.0 ** v for v in g.tolist()])
-            value = value * f[:, None]
-            if name == "weight_squared":   # (w2 f) f, as sums_at rounds it
-                value = value * f[:, None]
-        return value
+        # weight, weight_squared, scatter: aged to now, never backwards
+        w, w2, scatter = m.sums_at(now)
+        return {"weight": w[:, None], "weight_squared": w2[:, None], "scatter": scatter}[name]
 
     def family(self, family: str) -> Iterator[bytes]:
         """The text of one family for every series of the block, a chunk at a time."""

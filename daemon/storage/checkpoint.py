@@ -49,7 +49,7 @@ from typing import NamedTuple
 import msgpack
 import sigmad.daemon.storage.columns as columns
 from prometheus_client import CollectorRegistry, Counter, Gauge
-from sigmad.daemon.engine.engine import Engine
+from sigmad.daemon.engine.engine import Engine, view_of
 from sigmad.daemon.ingest.wire import MsgpackError, unpack_bounded
 from sigmad.estimators import IncompatibleError
 
@@ -191,17 +191,17 @@ def _restore_blocks(engine: Engine, blocks: list, now: float) -> tuple[int, list
             continue
         if st.store is not None:   # a stream in columns takes the columns as they are
             try:
-                refused = engine.adopt_columns(st, c, now)
+                columns.check_stream(st, c)
             except IncompatibleError as exc:
                 dropped += [(c.where(k, st.cfg.topic.labels), str(exc)) for k in range(c.n)]
                 continue
+            refused = engine.adopt_columns(st, c, now)
             dropped += [(c.where(k, st.cfg.topic.labels), "the stream's max_series is "
                          "reached") for k in refused]
             restored += c.n - len(refused)
             continue
         series, bad = columns.restore(st, c)
-        stacked = c.moments if not bad else None   # row i is series i's moments
-        refused = engine.adopt(series, columns.views(st, series, stacked), now)
+        refused = engine.adopt(series, [view_of(s) for s in series], now)
         dropped += bad + [(f"{s.stream.name}{list(s.labels)}",
                            "the stream's max_series is reached") for s in refused]
         restored += len(series) - len(refused)

@@ -3,8 +3,8 @@
 The engine thread collects each stream's series into arrays (``collect``);
 the checkpoint writer packs them into one msgpack map per stream whose
 columns are little-endian binary blobs (``pack``). A restore checks a map's
-columns once (``unpack``), then builds the series (``restore``) and their
-read-outs in bulk (``views``). Regression and mixture states, rarer and
+columns once (``unpack``), then copies them into a stream kept in columns
+(``Engine.adopt_columns``) or builds its series (``restore``). Regression and mixture states, rarer and
 larger, stay one ``to_dict`` map per series inside their stream's map.
 """
 
@@ -23,9 +23,7 @@ from sigmad.daemon.engine.engine import (
     restore_extra,
     restore_thresholds,
     thresholds_state,
-    view_of,
 )
-from sigmad.daemon.engine.snapshot import SeriesView, series_view
 from sigmad.daemon.ingest.topics import series_text
 from sigmad.estimators import (
     IncompatibleError,
@@ -242,43 +240,6 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
             continue
         out.append(s)
     return out, dropped
-
-
-def views(st: StreamState, series: list[Series],
-          moments: MomentsColumns | None = None) -> list[SeriesView]:
-    """``view_of`` every series of ``st`` in ``series``, the moments read-outs of all of
-    them at once: equal, bit for bit, to ``[view_of(s) for s in series]``. Streams
-    with a regression or a mixture take ``view_of`` per series. ``moments``, when
-    given, holds the series' moments row for row (a restore has them stacked
-    already). O(n (d**2 + quantiles))."""
-    cfg = st.cfg
-    if cfg.regression is not None or cfg.mixture is not None or st.threshold_at \
-            or cfg.transform is not None or cfg.legs or not series:
-        return [view_of(s) for s in series]
-    n, d, corr = len(series), st.dim, cfg.correction
-    m = moments if moments is not None and moments.n == n else \
-        MomentsColumns.of([s.moments for s in series], d, cfg.half_life)
-    means, variances = m.means().tolist(), m.variances(corr).tolist()
-    scatters, effective = m.scatters().tolist(), m.effective_samples().tolist()
-    quantiles = m.quantiles(cfg.quantiles, corr).reshape(n, -1).tolist() if cfg.quantiles \
-        else [()] * n
-    covariance = correlation = [()] * n
-    if d > 1:
-        iu, ju = np.triu_indices(d, 1)
-        pairs = list(zip(iu.tolist(), ju.tolist(), strict=True))
-        covariance = [tuple((i, j, v) for (i, j), v in zip(pairs, row, strict=True))
-                      for row in m.covariances(corr)[:, iu, ju].tolist()]
-        correlation = [tuple((i, j, v) for (i, j), v in zip(pairs, row, strict=True))
-                       for row in m.correlations()[:, iu, ju].tolist()]
-    name, fields, half_life = st.name, st.fields, cfg.half_life
-    quantile_at, thresholds = st.quantile_at, cfg.outlier_sigmas
-    # positional, in SeriesView's field order (as view_of): keywords cost 2 us a view
-    return [series_view(
-        name, s.key[1], fields, s.version, s.observations, s.last_update, s.moments.clock,
-        half_life, s.moments.weight_sum, s.moments.weight_sq_sum, effective[k], tuple(means[k]),
-        tuple(variances[k]), covariance[k], correlation[k], quantile_at, tuple(quantiles[k]),
-        thresholds, tuple(s.outliers), None, None, tuple(scatters[k]), None, ())
-        for k, s in enumerate(series)]
 
 
 def states(c: StreamColumns) -> list[dict]:
