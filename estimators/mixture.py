@@ -12,7 +12,7 @@ from .forgetting import HalfLife, age_to, batch_exponent, copy_state, scale_step
 from .mixture_cdf import normal_mixture_cdf, normal_mixture_quantile
 from .mixture_moves import proposals
 from .mixture_reduce import runnalls_reduce
-from .validation import check_batch, check_saved
+from .validation import check_batch, check_saved, saved_exponent
 
 CovarianceType = Literal["full", "diag"]
 _LOG_2PI = math.log(2.0 * math.pi)
@@ -811,9 +811,7 @@ class Mixture:
             m._pi = np.asarray(d["pi"], dtype=np.float64).reshape(k)
             m._mu = np.asarray(d["mu"], dtype=np.float64).reshape(k, dim)
             m._since_check = int(d.get("since_check", 0))
-            m.E = d.get("scale_exponent", 0)
-            if type(m.E) is not int or abs(m.E) > 1 << 40:
-                raise ValueError(f"scale_exponent {m.E!r} is not a whole number in range")
+            m.E = saved_exponent(d)
             m._quiet = min(max(int(d.get("quiet_checks", 0)), 0), _MOVE_BACKOFF)
             if "mu_lo" in d:
                 m._mu_lo = np.asarray(d["mu_lo"], dtype=np.float64).reshape(k, dim)

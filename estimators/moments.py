@@ -22,7 +22,7 @@ from .forgetting import (
     true_sum,
     unit,
 )
-from .validation import as_rows, check_batch, check_saved
+from .validation import as_rows, check_batch, check_saved, saved_exponent
 
 Correction = Literal["none", "frequency", "reliability"]
 CORRECTIONS: tuple[str, ...] = ("none", "frequency", "reliability")
@@ -397,7 +397,7 @@ class Moments:
             m.clock = None if d["clock"] is None else float(d["clock"])
             m.count = int(d["count"])
             m.W, m.W2 = float(d["W"]), float(d["W2"])
-            m.E = int(d.get("scale_exponent", 0))
+            m.E = saved_exponent(d)
             m._mean = np.asarray(d["mean"], dtype=np.float64).reshape(m.dim)
             m._scatter = np.asarray(d["scatter"], dtype=np.float64).reshape(m.dim, m.dim)
             if "mean_lo" in d:

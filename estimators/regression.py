@@ -21,7 +21,7 @@ from .forgetting import (
     unit,
 )
 from .moments import Correction
-from .validation import as_rows, check_saved, check_xy
+from .validation import as_rows, check_saved, check_xy, saved_exponent
 
 # Past this (column-equilibrated) condition number the solution carries fewer
 # than about four correct digits (Householder QR error grows as cond * eps), so
@@ -432,9 +432,7 @@ class Regression:
             r.clock = None if d["clock"] is None else float(d["clock"])
             r.count = int(d["count"])
             r.W, r.W2 = float(d["W"]), float(d["W2"])
-            r.E = int(d.get("scale_exponent", 0))
-            if r.E % 2:
-                raise ValueError(f"scale_exponent {r.E} must be even")
+            r.E = saved_exponent(d, even=True)
             k1 = r.terms + 1
             r._R = np.asarray(d["R"], dtype=np.float64).reshape(k1, k1)
         except (KeyError, TypeError, ValueError) as exc:

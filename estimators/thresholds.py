@@ -21,7 +21,7 @@ import numpy as np
 
 from .errors import IncompatibleError
 from .forgetting import HalfLife, age_to, copy_state, ldexp, merge_clocks, scale_step, take_batch
-from .validation import check_batch, check_saved
+from .validation import check_batch, check_saved, saved_exponent
 
 __all__ = ["Thresholds", "mixture_exceedance", "normal_exceedance"]
 
@@ -228,10 +228,7 @@ class Thresholds:
             new.count = int(d["count"])
             new.value_sum = float(d["value_sum"])
             new.W = float(d["W"])
-            e = d.get("scale_exponent", 0)
-            if type(e) is not int or abs(e) > 1 << 40:
-                raise ValueError(f"scale_exponent {e!r} is not a whole number in range")
-            new.E = e
+            new.E = saved_exponent(d)
         except (KeyError, TypeError, ValueError) as exc:
             raise IncompatibleError("thresholds", type(exc).__name__,
                                     f"malformed state: {exc}") from None

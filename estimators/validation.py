@@ -302,3 +302,14 @@ def check_saved(d: object, kind: str, version: int) -> dict:
     if d.get("version") != version:
         raise IncompatibleError("version", d.get("version"), f"must be {version}")
     return d
+
+
+def saved_exponent(d: dict, even: bool = False) -> int:
+    """A saved state's scale exponent (``scale_exponent``, 0 when absent): a whole
+    number within +-2**40 (even when ``even``); ValueError naming it otherwise."""
+    e = d.get("scale_exponent", 0)
+    if type(e) is not int or abs(e) > 1 << 40:
+        raise ValueError(f"scale_exponent {e!r} is not a whole number in range")
+    if even and e % 2:
+        raise ValueError(f"scale_exponent {e} must be even")
+    return e

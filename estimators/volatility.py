@@ -8,6 +8,7 @@ import numpy as np
 
 from .errors import IncompatibleError
 from .forgetting import HalfLife, age_to, copy_state, scale_step, take_batch
+from .validation import saved_exponent
 
 
 class Volatility:
@@ -203,10 +204,7 @@ class Volatility:
             v.clock = None if d["clock"] is None else float(d["clock"])
             v.count = int(d["count"])
             v.W = float(d["W"])
-            e = d.get("scale_exponent", 0)
-            if type(e) is not int or abs(e) > 1 << 40:
-                raise ValueError(f"scale_exponent {e!r} is not a whole number in range")
-            v.E = e
+            v.E = saved_exponent(d)
             v.rate = np.asarray(d["rate"], dtype=np.float64).reshape(v.dim)
             if not (math.isfinite(v.W) and v.W >= 0.0 and np.isfinite(v.rate).all()
                     and (v.rate >= 0.0).all()):

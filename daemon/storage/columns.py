@@ -4,8 +4,9 @@ The engine thread collects each stream's series into arrays (``collect``);
 the checkpoint writer packs them into one msgpack map per stream whose
 columns are little-endian binary blobs (``pack``). A restore checks a map's
 columns once (``unpack``), then copies them into a stream kept in columns
-(``Engine.adopt_columns``) or builds its series (``restore``). Regression and mixture states, rarer and
-larger, stay one ``to_dict`` map per series inside their stream's map.
+(``Engine.adopt_columns``) or builds its series (``restore``). Regression and
+mixture states, rarer and larger, stay one ``to_dict`` map per series inside
+their stream's map.
 """
 
 from __future__ import annotations
