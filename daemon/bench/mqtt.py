@@ -132,6 +132,7 @@ def _bare_rate(port: int, client_id: str, n: int) -> float:
 def _daemon_rate(port: int, client_id: str, n: int) -> float:
     """Accepted observations/s through a real Daemon with an MQTT source."""
     from sigmad.daemon.app import Daemon
+    from sigmad.daemon.bench.suite import wait_accepted
 
     config = parse_config(_CONFIG.replace("PORT", str(port)).replace("CLIENT", client_id),
                           "<bench>")
@@ -139,13 +140,7 @@ def _daemon_rate(port: int, client_id: str, n: int) -> float:
     daemon = Daemon(config)
     daemon.start()
     try:
-        while True:
-            seen = sum(v.observations for v in daemon.engine.snapshot.series.values())
-            if seen >= n:
-                break
-            if time.perf_counter() - t0 > 300:
-                raise RuntimeError(f"the daemon accepted {seen} of {n} readings in 300 s")
-            time.sleep(0.002)
+        wait_accepted(daemon, n, t0, 300.0, "readings")
         elapsed = time.perf_counter() - t0
     finally:
         daemon.stop()

@@ -150,13 +150,7 @@ def _daemon_rate(config_text: str, frames: list[tuple[bytes, bytes]], rows: int,
             time.sleep(0.0005)
         # from the first message taken: start-up is not ingest
         t0, c0 = time.perf_counter(), clock()
-        while True:
-            seen = sum(v.observations for v in daemon.engine.snapshot.series.values())
-            if seen >= rows:
-                break
-            if time.perf_counter() - t0 > 120:
-                raise RuntimeError(f"the daemon accepted {seen} of {rows} rows in 120 s")
-            time.sleep(0.002)
+        wait_accepted(daemon, rows, t0, 120.0, "rows")
         elapsed = clock() - c0
     finally:
         daemon.stop()
@@ -394,6 +388,16 @@ def bench_memory(low: int, high: int, whole: int, kinds_range: tuple[int, int],
     return rows
 
 
+def wait_accepted(daemon, n: int, t0: float, limit: float, what: str) -> None:
+    """Until the daemon's snapshot holds ``n`` accepted observations (polled every 2 ms,
+    cheaply: the polling thread's CPU counts in the measured process); RuntimeError
+    after ``limit`` seconds from ``t0`` (``time.perf_counter``)."""
+    while (seen := daemon.engine.snapshot.series.observations()) < n:
+        if time.perf_counter() - t0 > limit:
+            raise RuntimeError(f"the daemon accepted {seen} of {n} {what} in {limit:.0f} s")
+        time.sleep(0.002)
+
+
 def _progress(daemon) -> int:
     """Messages the engine has taken so far (a counter, cheap at any number of series)."""
     return sum(daemon.engine.messages.values())
@@ -441,6 +445,9 @@ def bench_scaling(sizes: tuple[int, ...], messages: int, repeat: int = 2) -> lis
                 t1 = time.perf_counter()
                 created = max(created, n / (t1 - t0))
                 taken, t0 = _progress(daemon), t1
+                if len(frames) - taken < 2 * n:   # nothing left worth timing
+                    raise RuntimeError(f"{taken} of {len(frames)} messages were taken while "
+                                       f"the series were made: send more to time {n:,}")
                 while _progress(daemon) < len(frames):
                     if time.perf_counter() - t0 > 300:
                         raise RuntimeError(f"the daemon took {_progress(daemon)} of "
@@ -456,7 +463,7 @@ def bench_scaling(sizes: tuple[int, ...], messages: int, repeat: int = 2) -> lis
                 s0 = time.perf_counter()
                 urllib.request.urlopen(url, timeout=300).read()
                 scrape = min(scrape, time.perf_counter() - s0)
-                seen = sum(v.observations for v in daemon.engine.snapshot.series.values())
+                seen = daemon.engine.snapshot.series.observations()
             finally:
                 daemon.stop()
                 feed.close()

@@ -331,6 +331,12 @@ class SeriesTable(Mapping):
             for rows in b.chunks():
                 yield from b.views(rows)
 
+    def observations(self) -> int:
+        """Observations accepted by every series, summed (a block's from its column:
+        no view built). O(series)."""
+        return sum(v.observations for v in self.objects.values()) + \
+            sum(int(b.observations.sum()) for b in self.blocks)
+
     def latest(self, n: int) -> list[tuple[Key, SeriesView]]:
         """The ``n`` most recently updated series, most recent first. O(series + n log n)."""
         best = heapq.nlargest(n, self.objects.items(), key=_last_update)
