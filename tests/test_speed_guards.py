@@ -60,7 +60,9 @@ def test_ten_thousand_quiet_series_keep_half_the_target_share_of_the_bare_loop()
     # target 0.5 of the bare receive-and-decode loop (sigmad bench); measured here on
     # 2026-12-02: 0.06 before columns, 0.56 - 0.61 after (0.23 with the suite and
     # another benchmark running); the guard is 0.2, far above the 0.06 of before
-    rows = bench.bench_scaling((10_000,), 50_000, repeat=1)
+    # 150,000 messages, best of two: with 50,000 the timed rounds last about as long
+    # as one flush interval, and the ratio read 0.15 - 0.48 (0.4 - 0.83 with 150,000)
+    rows = bench.bench_scaling((10_000,), 150_000, repeat=2)
     assert rows[0].ratio >= 0.2, rows[0].cells()
 
 
