@@ -32,6 +32,7 @@ from .moments_columns import (
 )
 from .regression import Regression
 from .returns import TRANSFORMS, Returns, Stepped
+from .threshold_columns import ThresholdColumns, fold_counts, normal_exceedance_rows
 from .thresholds import Thresholds, mixture_exceedance, normal_exceedance
 from .validation import (
     MAX_WEIGHT,
@@ -65,6 +66,7 @@ __all__ = [
     "ShapeError",
     "Stepped",
     "TRANSFORMS",
+    "ThresholdColumns",
     "Thresholds",
     "TimeError",
     "Volatility",
@@ -73,6 +75,7 @@ __all__ = [
     "check_batch",
     "clean_batch",
     "ellipse",
+    "fold_counts",
     "fold_groups",
     "fold_rows",
     "from_blob",
@@ -83,6 +86,7 @@ __all__ = [
     "nominal_rate",
     "normal_density",
     "normal_exceedance",
+    "normal_exceedance_rows",
     "normal_tail_rate",
     "outlier_counts",
     "mahalanobis_rows",

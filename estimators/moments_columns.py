@@ -373,13 +373,19 @@ class MomentsColumns(NamedTuple):
 
 
 class Folded(NamedTuple):
-    """What ``fold_rows`` gives: the new columns, which rows it folded exactly (the others
-    must take ``Moments`` one by one: their states are not in ``columns`` as folded), and
-    the outlier distance of each row under its state before the fold."""
+    """What ``fold_rows`` and ``fold_groups`` give: the new columns, which states they
+    folded (the others must take ``Moments`` one by one: their states are not in
+    ``columns`` as folded), the outlier distance of each row under its state before
+    the fold (``fold_rows``; None from ``fold_groups``), and the forgetting they
+    applied, for estimators that share it (``threshold_columns.fold_counts``): each
+    state's aging 2**g (None: none) and each row's weight times its own decay (None:
+    the weights as given)."""
 
     columns: MomentsColumns
     ok: np.ndarray
-    distance: np.ndarray
+    distance: np.ndarray | None
+    aging: np.ndarray | None = None
+    decayed: np.ndarray | None = None
 
 
 def _powers_of_two(g: np.ndarray) -> np.ndarray:
@@ -504,12 +510,11 @@ def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
     ok &= (total >= 2.0 ** -100) & (total <= 2.0 ** 100)
     out = MomentsColumns(dim, hl, has_clock, clock, cols.count + 1, total, W2, mean, scatter,
                          cols.E, lo)
-    return Folded(out, ok, dist)
+    return Folded(out, ok, dist, g, v)
 
 
 def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
-                times: np.ndarray | None, counts: np.ndarray) -> tuple[MomentsColumns,
-                                                                      np.ndarray]:
+                times: np.ndarray | None, counts: np.ndarray) -> Folded:
     """Fold a batch of rows into each of n states at once, as ``Moments._fold`` does for
     a batch of two or more rows per state, equal to it up to rounding.
 
@@ -529,10 +534,11 @@ def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
 
     Returns
     -------
-    (MomentsColumns, ok)
-        The new states, and which states were folded here: a state outside the
-        common case (scale exponent E other than 0, an aging or a weight sum that
-        would move the scale, row weights beyond 2**+-100) is left to ``Moments``.
+    Folded
+        The new states, and which states were folded here (``ok``): a state outside
+        the common case (scale exponent E other than 0, an aging or a weight sum that
+        would move the scale, row weights beyond 2**+-100) is left to ``Moments``;
+        no distances; the aging and the decayed row weights applied.
 
     Notes
     -----
@@ -553,7 +559,7 @@ def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
     --------
     >>> a, b = Moments(), Moments()
     >>> a.update([1.0, 2.0]); b.update([10.0])
-    >>> out, ok = fold_groups(MomentsColumns.of([a, b], 1, None),
+    >>> out, ok, *_ = fold_groups(MomentsColumns.of([a, b], 1, None),
     ...                       np.array([[3.0], [4.0], [20.0], [30.0]]), None, None,
     ...                       np.array([2, 2]))
     >>> ok.tolist(), out.means()[:, 0].tolist(), out.variances("none")[:, 0].tolist()
@@ -634,7 +640,7 @@ def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
         np.where(keep[:, None, None], scatter, new_scatter), cols.E,
         np.where(keep[:, None], lo, new_lo))
     ok &= keep | ((total >= 2.0 ** -100) & (total <= 2.0 ** 100))
-    return out, ok
+    return Folded(out, ok, None, g, v)
 
 
 def mahalanobis_rows(cols: MomentsColumns, x: np.ndarray,

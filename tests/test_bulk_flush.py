@@ -1,5 +1,8 @@
 """Plain streams held in columns (``store.ColumnStore``) against series as objects.
 
+Plain means moments, outlier counts and counts at thresholds; the thresholds' reference
+is ``Thresholds._fold`` (checked against numpy's exact counts in tests/test_thresholds.py).
+
 The reference is the per-series object path (``Engine._fold`` and ``view_of``, whose
 maths ``tests/test_moments.py`` checks against numpy): the same drains fed to an
 engine with columns switched off (``Engine(config, columns=False)``) must give the
@@ -103,16 +106,27 @@ def _same(bulk: Engine, single: Engine) -> None:
         assert _close(bulk.snapshot.series[key], view), key
     for st_b, st_s in zip(bulk.streams, single.streams, strict=True):
         for labels, s in st_s.series.items():
-            assert _close(st_b.series[labels].moments.to_dict(), s.moments.to_dict())
+            b = st_b.series[labels]
+            assert _close(b.moments.to_dict(), s.moments.to_dict())
+            assert _close([t.to_dict() for t in b.thresholds],
+                          [t.to_dict() for t in s.thresholds])
     assert bulk.rejected == single.rejected
+
+
+#: counts at thresholds (the values run from about 0 to 300)
+LEVELS = {1: "thresholds = [20.0, 100.0, 200.0]",
+          2: "thresholds = { a = [20.0, 100.0, 200.0], b = [50.0] }"}
 
 
 @pytest.mark.parametrize("dim", [1, 2])
 @pytest.mark.parametrize("half_life", ["", 'half_life = "6s"', 'half_life = "4 obs"'])
 @pytest.mark.parametrize("weighted,bad", [(False, False), (True, False), (True, True)])
-def test_bulk_flush_equals_series_by_series(dim, half_life, weighted, bad, monkeypatch):
+@pytest.mark.parametrize("levels", [False, True], ids=["", "thresholds"])
+def test_bulk_flush_equals_series_by_series(dim, half_life, weighted, bad, levels,
+                                            monkeypatch):
     fields = '["a"]' if dim == 1 else '["a", "b"]'
-    bulk, single = _engines(fields, half_life, monkeypatch)
+    bulk, single = _engines(fields, half_life + ("\n" + LEVELS[dim] if levels else ""),
+                            monkeypatch)
     calls = []   # series folded one by one (a state outside the columns' common case)
     real = ColumnStore._fold_one
     monkeypatch.setattr(ColumnStore, "_fold_one",

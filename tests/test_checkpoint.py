@@ -751,3 +751,53 @@ def test_columns_restore_refuses_beyond_max_series_and_restarts_changed_outlier_
     assert store.n == 20 and not store.outliers[:20].any()     # thresholds changed
     kept = small.snapshot.series[("c", (("k", "k3"),))]
     assert kept.observations == e.snapshot.series[("c", (("k", "k3"),))].observations
+
+
+LEVELS_STREAM = COLUMN_STREAM.replace('fields = ["v"]', 'fields = ["v"]\nthresholds = BOUNDS')
+
+
+def _levels_engine(bounds: str = "[5.0, 20.0]", columns: bool = True) -> Engine:
+    text = LEVELS_STREAM.replace("MAX", "100").replace("BOUNDS", bounds)
+    return Engine(parse_config(text), columns=columns)
+
+
+def test_columns_with_thresholds_restore_as_columns_and_their_counters_resume():
+    # a service-level stream lives in columns too: its counts at thresholds go into the
+    # checkpoint and come back as columns, equal to what the object path restores, and
+    # both go on to the same counts (counters resume, they do not reset)
+    e = _levels_engine()
+    assert e.streams[0].store is not None
+    _fill(e, range(30), NOW)
+    data = decode_checkpoint(checkpoint_bytes(e))
+    cols, objs = _levels_engine(), _levels_engine(columns=False)
+    assert restore_checkpoint(cols, data, NOW)[0] == restore_checkpoint(objs, data, NOW)[0] \
+        == 30
+    assert bits(cols.export_state()) == bits(e.export_state())
+    before = e.snapshot.series[("c", (("k", "k25"),))].levels.buckets
+    for x in (cols, objs):
+        _fill(x, range(10, 40), NOW + 10)
+    for key, view in objs.snapshot.series.items():
+        got = cols.snapshot.series[key].levels
+        assert got.buckets == view.levels.buckets and got.value_sums == pytest.approx(
+            view.levels.value_sums, rel=1e-12)
+        assert got.exceedance_observed[0] == pytest.approx(
+            view.levels.exceedance_observed[0], rel=1e-12, abs=1e-15)
+    after = cols.snapshot.series[("c", (("k", "k25"),))].levels.buckets
+    assert after[0][-1] == before[0][-1] + 12     # 6 drains of 2 rows on top
+
+
+def test_columns_with_thresholds_drop_only_a_malformed_series_and_restart_changed_bounds():
+    e = _levels_engine()
+    _fill(e, range(10), NOW)
+    data = decode_checkpoint(checkpoint_bytes(e))
+    block = data.blocks[0]
+    block["threshold_counts"][3][0]["state"]["cumulative"] = [1.0, "x", 3.0]
+    cols = _levels_engine()
+    restored, dropped = restore_checkpoint(cols, data, NOW)
+    assert restored == 9 and len(dropped) == 1
+    assert dropped[0][0] == "c{k=k3}" and "thresholds" in dropped[0][1]
+    assert ("c", (("k", "k3"),)) not in cols.snapshot.series
+    moved = _levels_engine("[6.0, 20.0]")        # other bounds: the counts start afresh
+    assert restore_checkpoint(moved, decode_checkpoint(checkpoint_bytes(e)), NOW)[0] == 10
+    v = moved.snapshot.series[("c", (("k", "k4"),))]
+    assert v.levels.buckets == ((0.0, 0.0, 0.0),) and v.observations > 0

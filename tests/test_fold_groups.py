@@ -36,7 +36,7 @@ def test_fold_groups_equals_moments_batch_by_batch(dim, hl, weighted):
     if timed or (hl is None and weighted):   # event times: some rows older than the state
         t = 100.0 + rng.uniform(-30.0, 10.0, x.shape[0])
     cols = MomentsColumns.of(states, dim, hl)
-    out, ok = fold_groups(cols, x, w, t, counts)
+    out, ok, *_ = fold_groups(cols, x, w, t, counts)
     assert ok.all()
     got = out.states()
     at = 0
@@ -59,7 +59,7 @@ def test_rows_without_times_leave_the_clock_where_it_was():
     b = Moments()
     cols = MomentsColumns.of([a, b], 1, None)
     times = np.array([np.nan, np.nan, 9.0, 8.0])   # group a: no times; group b: times
-    out, ok = fold_groups(cols, np.array([[3.0], [4.0], [5.0], [6.0]]), None, times,
+    out, ok, *_ = fold_groups(cols, np.array([[3.0], [4.0], [5.0], [6.0]]), None, times,
                           np.array([2, 2]))
     assert ok.all()
     assert out.clock.tolist() == [6.0, 9.0] and out.has_clock.tolist() == [True, True]
@@ -70,7 +70,7 @@ def test_states_outside_the_common_case_are_left_to_moments():
     quiet.update([1.0, 2.0], times=[0.0, 0.0])
     cols = MomentsColumns.of([quiet, Moments(1, HalfLife(1.0))], 1, HalfLife(1.0))
     # 500 half-lives of silence would move the first state's scale; huge weights too
-    out, ok = fold_groups(cols, np.array([[1.0], [2.0], [3.0], [4.0]]),
+    out, ok, *_ = fold_groups(cols, np.array([[1.0], [2.0], [3.0], [4.0]]),
                           np.array([1.0, 1.0, 2.0 ** 120, 1.0]),
                           np.array([500.0, 500.0, 1.0, 1.0]), np.array([2, 2]))
     assert ok.tolist() == [False, False]

@@ -77,11 +77,13 @@ half_life = "30s"
 quantiles = [0.05, 0.5, 0.999]
 outlier_sigmas = [2.0, 3.5]
 outlier_warmup = 2
+thresholds = { x = [-1.0, 0.5, 1e7], y = [5.0] }
 [[stream]]
 name = "one"
 topic = "o.{a}"
 fields = ["v"]
 half_life = "5 obs"
+thresholds = [1e7]
 [[stream]]
 name = "plain"
 topic = "p.{k}"
@@ -119,3 +121,6 @@ def test_series_in_columns_render_as_prometheus_client_renders_their_views():
         ours = render.SeriesRenderer().render(e.snapshot, now).decode()
         assert ours == _reference(e.snapshot, now)
         assert 'zone="q\\"uote"' in ours and "e+07" in ours
+        # counts at thresholds, from the columns too: histogram and both shares
+        assert 'sigmad_value_bucket{app="a1",field="x",le="1e+07"' in ours
+        assert "sigmad_exceedance_observed{" in ours and "sigmad_value_sum{" in ours

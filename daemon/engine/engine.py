@@ -36,6 +36,7 @@ from sigmad.estimators import (
     Moments,
     Regression,
     Returns,
+    ThresholdColumns,
     Thresholds,
     Volatility,
     limit_batch,
@@ -290,11 +291,11 @@ class StreamState:
 
     @property
     def plain(self) -> bool:
-        """Whether the series keep only moments and outlier counts: no regression,
-        mixture, transform, legs, thresholds or sessions (what columns hold)."""
+        """Whether the series keep only moments, outlier counts and counts at thresholds:
+        no regression, mixture, transform, legs or sessions (what columns hold)."""
         cfg = self.cfg
         return cfg.regression is None and cfg.mixture is None and cfg.transform is None \
-            and not cfg.legs and not self.threshold_at and cfg.session_reset is None
+            and not cfg.legs and cfg.session_reset is None
 
     def new_series(self, labels: tuple[str, ...]) -> Series:
         cfg = self.cfg
@@ -340,10 +341,12 @@ class StoreSeries(Mapping):
     def _series(self, i: int) -> Series:
         st, store = self.st, self.st.store
         labels = store.labels[i]
-        return Series(st, labels, store.moments.state(i), None, None,
+        m = store.moments.state(i)
+        return Series(st, labels, m, None, None,
                       store.outliers[i].tolist(), int(store.observations[i]),
                       int(store.version[i]), float(store.last_update[i]),
-                      (st.name, tuple(zip(st.cfg.topic.labels, labels, strict=True))))
+                      (st.name, tuple(zip(st.cfg.topic.labels, labels, strict=True))),
+                      thresholds=[lv.state(i, m.clock, m.count) for lv in store.levels] or ())
 
     def __contains__(self, labels) -> bool:
         return labels in self.st.store.index
@@ -1461,20 +1464,43 @@ class Engine:
         return dropped + [(f"{s.stream.name}{list(s.labels)}", "the stream's max_series is "
                            "reached") for s in refused]
 
-    def adopt_columns(self, st: StreamState, c, now: float) -> list[int]:
+    def adopt_columns(self, st: StreamState, c, now: float) -> tuple[list[int], list]:
         """Make the restored columns ``c`` (``storage.columns.StreamColumns``) of column
-        stream ``st`` live, each replacing a live series of the same labels; returns
-        the rows refused because max_series is reached. ``c`` has passed
-        ``columns.check_stream`` for ``st``. Outlier counts restart when the thresholds
-        changed. O(rows d**2)."""
+        stream ``st`` live, each replacing a live series of the same labels. Returns
+        the rows refused because max_series is reached, and (row, reason) for each
+        row dropped because its counts at thresholds are malformed
+        (``restore_thresholds``). ``c`` has passed ``columns.check_stream`` for ``st``.
+        Outlier counts restart when the outlier thresholds changed, counts at
+        thresholds when their bounds did. O(rows d**2), plus O(k) Python a row with
+        thresholds."""
         width = len(st.cfg.outlier_sigmas)
         outliers = c.outliers if c.thresholds == list(st.cfg.outlier_sigmas) else \
             np.zeros((c.n, width), np.int64)
-        refused = st.store.adopt_columns(list(map(tuple, c.labels)), c.moments,
-                                         c.observations, c.version, c.last_update, outliers)
+        labels, moments = list(map(tuple, c.labels)), c.moments
+        observations, version, last_update = c.observations, c.version, c.last_update
+        kept, bad, levels = np.arange(c.n), [], []
+        if st.threshold_at:
+            per, good = [], []
+            for i, saved in enumerate(c.threshold_counts or [None] * c.n):
+                try:
+                    per.append(restore_thresholds(st, saved))
+                    good.append(i)
+                except IncompatibleError as exc:
+                    bad.append((i, str(exc)))
+            if bad:
+                kept = np.array(good, np.int64)
+                labels = [labels[i] for i in good]
+                moments, outliers = moments.take(kept), outliers[kept]
+                observations, version = observations[kept], version[kept]
+                last_update = last_update[kept]
+            hl = st.cfg.half_life
+            levels = [ThresholdColumns.of([p[j] for p in per], b, hl)
+                      for j, (_, b) in enumerate(st.threshold_at)]
+        refused = st.store.adopt_columns(labels, moments, observations, version,
+                                         last_update, outliers, levels)
         st.store.freeze()
         self.snapshot = self._make_snapshot(now)
-        return refused
+        return kept[refused].tolist(), bad
 
     def adopt(self, series: list[Series], views: list[SeriesView], now: float) -> list[Series]:
         """Make restored series live with their read-outs (``views[i]`` is ``series[i]``'s);

@@ -13,7 +13,7 @@ from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
-from sigmad.estimators import HalfLife, MomentsColumns, sums_at
+from sigmad.estimators import HalfLife, MomentsColumns, normal_exceedance_rows, sums_at
 
 
 @dataclass(frozen=True, slots=True)
@@ -208,6 +208,9 @@ class SeriesBlock:
     version: np.ndarray                          # (n,) int64
     last_update: np.ndarray                      # (n,) float64
     outliers: np.ndarray                         # (n, thresholds) int64
+    # (field index, bounds) per field with thresholds, and their counts (n rows each)
+    threshold_at: tuple[tuple[int, tuple[float, ...]], ...] = ()
+    levels: tuple = ()                           # ThresholdColumns, one per threshold_at
 
     def row(self, values: tuple[str, ...]) -> int | None:
         i = self.index.get(values)
@@ -252,15 +255,34 @@ class SeriesBlock:
         quantile_at, thresholds, names = self.quantile_at, self.thresholds, self.label_names
         labels = self.labels
         outliers = self.outliers[rows].tolist()
+        levels = self._levels(rows, means, variances) if self.levels else [None] * k
         return [series_view(
             name, tuple(zip(names, labels[i], strict=True)), fields, version, obs, last,
             clocks[k], half_life, w[k], w2[k], effective[k], tuple(means[k]),
             tuple(variances[k]), covariance[k], correlation[k], quantile_at,
             tuple(quantiles[k]), thresholds, tuple(outliers[k]), None, None,
-            tuple(scatters[k]), None, ())
+            tuple(scatters[k]), levels[k], ())
             for k, (i, version, obs, last) in enumerate(zip(
                 rows.tolist(), self.version[rows].tolist(), self.observations[rows].tolist(),
                 self.last_update[rows].tolist(), strict=True))]
+
+    def _levels(self, rows: np.ndarray, means: list, variances: list) -> list[LevelsView]:
+        """The ``LevelsView`` of each of ``rows`` (``engine._levels`` for column series:
+        the normal model of the moments, no mixture), bit for bit. O(rows fields k)."""
+        at = self.threshold_at
+        per_field = []
+        for (i, bounds), lv in zip(at, self.levels, strict=True):
+            part = lv.take(rows)
+            per_field.append((
+                [tuple(r) for r in part.cumulative.tolist()], part.value_sum.tolist(),
+                normal_exceedance_rows(bounds, [m[i] for m in means],
+                                       [v[i] for v in variances]),
+                [tuple(r) for r in part.observed_shares().tolist()]))
+        return [LevelsView(at, tuple(f[0][k] for f in per_field),
+                           tuple(f[1][k] for f in per_field),
+                           tuple(f[2][k] for f in per_field),
+                           tuple(f[3][k] for f in per_field))
+                for k in range(rows.shape[0])]
 
     def chunks(self) -> Iterator[np.ndarray]:
         """Row numbers in chunks of at most _CHUNK (bounded transient read-outs)."""

@@ -1,10 +1,11 @@
 """The live form of a plain stream: every series one row of column arrays.
 
-A stream that keeps only moments and outlier counts (no thresholds, regression,
-mixture, transform, legs or sessions) holds its series here rather than as one
-object each: a series costs its row of a few arrays, its label values and one
-dict slot, and a drain of many quiet series is queued and folded in a few numpy
-operations per stream (``moments_columns.fold_rows``), with no Python per series.
+A stream that keeps only moments, outlier counts and counts at thresholds (no
+regression, mixture, transform, legs or sessions) holds its series here rather
+than as one object each: a series costs its row of a few arrays, its label values
+and one dict slot, and a drain of many quiet series is queued and folded in a few
+numpy operations per stream (``moments_columns.fold_rows``, and
+``threshold_columns.fold_counts`` for the thresholds), with no Python per series.
 Readers get a frozen copy (``snapshot.SeriesBlock``) whose views are built when
 read.
 
@@ -27,6 +28,8 @@ import numpy as np
 from sigmad.daemon.engine.snapshot import SeriesBlock
 from sigmad.estimators import (
     MomentsColumns,
+    ThresholdColumns,
+    fold_counts,
     fold_groups,
     fold_rows,
     mahalanobis_rows,
@@ -88,6 +91,8 @@ class ColumnStore:
         self.version = np.zeros(0, np.int64)
         self.last_update = np.zeros(0)
         self.outliers = np.zeros((0, len(cfg.outlier_sigmas)), np.int64)
+        # per field with thresholds (st.threshold_at): its counts, row for row
+        self.levels = [ThresholdColumns.zeros(0, b, cfg.half_life) for _, b in st.threshold_at]
         self.fresh: dict[tuple[str, ...], int] = {}   # provisional rows: -1, -2, ...
         self.fresh_labels: list[tuple[str, ...]] = []
         # (rows, x (m, d), weights | None, times | None, given | None, arrival); times
@@ -130,21 +135,26 @@ class ColumnStore:
         reached (``adopt_columns``). O(len(series) d**2)."""
         if not series:
             return []
+        hl = self.st.cfg.half_life
         refused = self.adopt_columns(
             [s.labels for s in series],
-            MomentsColumns.of([s.moments for s in series], self.dim, self.st.cfg.half_life),
+            MomentsColumns.of([s.moments for s in series], self.dim, hl),
             np.array([s.observations for s in series], np.int64),
             np.array([s.version for s in series], np.int64),
             np.array([s.last_update for s in series], np.float64),
-            np.array([s.outliers for s in series], np.int64).reshape(len(series), -1))
+            np.array([s.outliers for s in series], np.int64).reshape(len(series), -1),
+            [ThresholdColumns.of([s.thresholds[j] for s in series], b, hl)
+             for j, (_, b) in enumerate(self.st.threshold_at)])
         return [series[i] for i in refused]
 
     def adopt_columns(self, labels: list[tuple[str, ...]], moments: MomentsColumns,
                       observations: np.ndarray, version: np.ndarray,
-                      last_update: np.ndarray, outliers: np.ndarray) -> list[int]:
-        """``adopt`` for restored columns (row i is series ``labels[i]``): written in a
-        few array operations. Returns the rows of ``labels`` refused because
-        max_series is reached. O(len(labels) d**2)."""
+                      last_update: np.ndarray, outliers: np.ndarray,
+                      levels: list[ThresholdColumns]) -> list[int]:
+        """``adopt`` for restored columns (row i is series ``labels[i]``; ``levels``: one
+        per field with thresholds, as ``self.levels``): written in a few array
+        operations. Returns the rows of ``labels`` refused because max_series is
+        reached. O(len(labels) (d**2 + k))."""
         index, limit = self.index, self.st.cfg.max_series
         at, fresh, refused = [], [], []
         room = limit - self.n
@@ -163,6 +173,8 @@ class ColumnStore:
         self.moments.put(dst, moments.take(src))
         self.observations[dst], self.version[dst] = observations[src], version[src]
         self.last_update[dst], self.outliers[dst] = last_update[src], outliers[src]
+        for lv, saved in zip(self.levels, levels, strict=True):
+            lv.put(dst, saved.take(src))
         return refused
 
     def _append(self, labels: list[tuple[str, ...]]) -> np.ndarray:
@@ -175,6 +187,7 @@ class ColumnStore:
             self.version = _grown(self.version, cap)
             self.last_update = _grown(self.last_update, cap)
             self.outliers = _grown(self.outliers, cap)
+            self.levels = [lv.resized(cap) for lv in self.levels]
             self.capacity = cap
         index = self.index
         for i, values in enumerate(labels, first):
@@ -341,17 +354,17 @@ class ColumnStore:
             idx = R[at]
             x = X[at]
             before = self.moments.take(idx)
-            res = fold_rows(before, x, None if W is None else W[at],
-                            None if T1 is None else T1[at], cfg.correction)
-            ok = res.ok
+            w = None if W is None else W[at]
+            res = fold_rows(before, x, w, None if T1 is None else T1[at], cfg.correction)
+            levels, ok = self._counts(idx, x, w, res, None)
             by_one += [(r, np.array([i])) for r, i in zip(idx[~ok].tolist(),
                                                            at[~ok].tolist(), strict=True)]
             dist = None
             if cfg.outlier_sigmas:
                 dist = res.distance if self.dim == 1 else \
                     mahalanobis_rows(before, x, cfg.correction)
-            self._write(idx, ok, res.columns, before.count, dist, np.arange(idx.shape[0]),
-                        np.ones(idx.shape[0], np.int64), now)
+            self._write(idx, ok, res.columns, levels, before.count, dist,
+                        np.arange(idx.shape[0]), np.ones(idx.shape[0], np.int64), now)
         if not once.all():
             order, starts, counts = _groups(R, np.flatnonzero(~once))
             big = counts > GROUP_ROWS   # a large batch: Moments' BLAS products beat sums
@@ -374,19 +387,35 @@ class ColumnStore:
         ids = R[order[starts]]
         before = self.moments.take(ids)
         x = X[order]
-        new, ok = fold_groups(before, x, None if W is None else W[order],
-                              None if T1 is None else T1[order], counts)
+        w = None if W is None else W[order]
+        res = fold_groups(before, x, w, None if T1 is None else T1[order], counts)
+        levels, ok = self._counts(ids, x, w, res, starts)
         dist = None
         if cfg.outlier_sigmas:
             group = np.repeat(np.arange(ids.shape[0]), counts)
             dist = mahalanobis_rows(before.take(group), x, cfg.correction)
-        self._write(ids, ok, new, before.count, dist, starts, counts, now)
+        self._write(ids, ok, res.columns, levels, before.count, dist, starts, counts, now)
         for k in np.flatnonzero(~ok).tolist():
             by_one.append((int(ids[k]), order[starts[k]:starts[k] + counts[k]]))
 
+    def _counts(self, ids: np.ndarray, x: np.ndarray, w: np.ndarray | None, res,
+                starts: np.ndarray | None) -> tuple[list[ThresholdColumns], np.ndarray]:
+        """The counts at thresholds of series ``ids`` folded with rows ``x`` (``starts``:
+        each series' first row; None: one row each) under the forgetting the moments'
+        fold ``res`` applied; and which series both folded (the rest take objects)."""
+        ok = res.ok
+        decayed = None if res.decayed is w else res.decayed
+        levels = []
+        for (i, _), lv in zip(self.st.threshold_at, self.levels, strict=True):
+            new, fine = fold_counts(lv.take(ids), x[:, i], w, decayed, res.aging, starts)
+            levels.append(new)
+            ok = ok & fine
+        return levels, ok
+
     def _write(self, ids: np.ndarray, ok: np.ndarray, new: MomentsColumns,
-               count_before: np.ndarray, dist: np.ndarray | None, starts: np.ndarray,
-               counts: np.ndarray, now: float) -> None:
+               levels: list[ThresholdColumns], count_before: np.ndarray,
+               dist: np.ndarray | None, starts: np.ndarray, counts: np.ndarray,
+               now: float) -> None:
         """Write the folded states of series ``ids`` where ``ok``, with their outlier
         counts: rows ``starts[k] .. + counts[k]`` of ``dist`` are series k's."""
         cfg = self.st.cfg
@@ -398,7 +427,10 @@ class ColumnStore:
                     for j, k in enumerate(cfg.outlier_sigmas):
                         hits = np.add.reduceat(dist > k, starts) if dist.shape[0] else dist
                         self.outliers[ids[warm], j] += hits[warm]
-        self.moments.put(good, new.take(np.flatnonzero(ok)))
+        at = np.flatnonzero(ok)
+        self.moments.put(good, new.take(at))
+        for lv, folded in zip(self.levels, levels, strict=True):
+            lv.put(good, folded.take(at))
         self.observations[good] += counts[ok]
         self.version[good] += 1
         self.last_update[good] = now
@@ -421,6 +453,10 @@ class ColumnStore:
             dist = m.mahalanobis(x, cfg.correction)
             for j, k in enumerate(cfg.outlier_sigmas):
                 self.outliers[r, j] += int(np.count_nonzero(dist > k))
+        for (i, _), lv in zip(st.threshold_at, self.levels, strict=True):
+            th = lv.state(r, m.clock, m.count)
+            th._fold(x[:, i], w, t)
+            lv.set_state(r, th)
         m._fold(x, w, t)
         self.moments.set_state(r, m)
         self.observations[r] += x.shape[0]
@@ -436,8 +472,22 @@ class ColumnStore:
             st.name, tuple(cfg.topic.labels), st.fields, cfg.half_life, cfg.correction,
             tuple(cfg.quantiles), st.quantile_at, tuple(cfg.outlier_sigmas), self.labels,
             self.index, n, self.moments.copy(n), self.observations[:n].copy(),
-            self.version[:n].copy(), self.last_update[:n].copy(), self.outliers[:n].copy())
+            self.version[:n].copy(), self.last_update[:n].copy(), self.outliers[:n].copy(),
+            st.threshold_at, tuple(lv.copy(n) for lv in self.levels))
         return self.block
+
+    def threshold_counts(self) -> list[list[dict]] | None:
+        """Every series' counts at thresholds as ``engine.thresholds_state`` saves them
+        (None for a stream without thresholds). O(n k) Python."""
+        if not self.levels:
+            return None
+        st, m = self.st, self.moments
+        names = [st.fields[i] for i, _ in st.threshold_at]
+        clocks = [c if h else None for c, h in zip(m.clock[:self.n].tolist(),
+                                                   m.has_clock[:self.n].tolist(), strict=True)]
+        counts = m.count[:self.n].tolist()
+        return [[{"field": f, "state": lv.state(r, clocks[r], counts[r]).to_dict()}
+                 for f, lv in zip(names, self.levels, strict=True)] for r in range(self.n)]
 
     # ------------------------------------------------------------- removal
     def keep_only(self, keep: np.ndarray) -> None:
@@ -457,6 +507,7 @@ class ColumnStore:
         self.version = _grown(self.version[at], cap)
         self.last_update = _grown(self.last_update[at], cap)
         self.outliers = _grown(self.outliers[at], cap)
+        self.levels = [lv.take(at).resized(cap) for lv in self.levels]
         self.labels = [self.labels[i] for i in at.tolist()]
         self.index = {values: i for i, values in enumerate(self.labels)}
         self.n, self.capacity = n, cap

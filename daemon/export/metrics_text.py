@@ -25,6 +25,7 @@ from sigmad.daemon.export.model import (
     sample_name,
     static_samples,
 )
+from sigmad.estimators import normal_exceedance_rows
 
 
 def _escape(value: str) -> str:
@@ -157,7 +158,8 @@ class _BlockText:
         specs: dict[str, list] = {}
 
         def add(family: str, extra: dict, column: str, index: int = 0) -> None:
-            specs.setdefault(family, []).append((lines.template(family, extra), column, index))
+            specs.setdefault(family_of(family), []).append(
+                (lines.template(family, extra), column, index))
 
         add("sigmad_effective_samples", {}, "effective")
         add("sigmad_observations", {}, "observations")
@@ -173,6 +175,18 @@ class _BlockText:
             add("sigmad_quantile", {"field": fields[i], "q": _fmt_q(q)}, "quantile", k)
         for k, thr in enumerate(b.thresholds):
             add("sigmad_outliers", {"threshold": _fmt_q(thr)}, "outliers", k)
+        for j, (i, bounds) in enumerate(b.threshold_at):
+            f, k = fields[i], len(bounds)
+            for c, bound in enumerate(bounds):
+                add("sigmad_value_bucket", {"field": f, "le": floatToGoString(bound)},
+                    f"cumulative{j}", c)
+            add("sigmad_value_bucket", {"field": f, "le": "+Inf"}, f"cumulative{j}", k)
+            add("sigmad_value_count", {"field": f}, f"cumulative{j}", k)
+            add("sigmad_value_sum", {"field": f}, f"value_sum{j}")
+            for c, bound in enumerate(bounds):
+                above = {"field": f, "above": floatToGoString(bound)}
+                add("sigmad_exceedance", above, f"model{j}", c)
+                add("sigmad_exceedance_observed", above, f"observed{j}", c)
         add("sigmad_weight", {}, "weight")
         add("sigmad_weight_squared", {}, "weight_squared")
         add("sigmad_update_age_seconds", {}, "age")
@@ -209,6 +223,20 @@ class _BlockText:
             return np.maximum(0.0, now - b.last_update[rows])[:, None]
         if name == "quantile":
             return m.quantiles(b.quantiles, corr).reshape(rows.shape[0], -1)
+        stem = name.rstrip("0123456789")
+        if stem != name:   # counts at thresholds: those of field-with-thresholds j
+            j = int(name[len(stem):])
+            lv = b.levels[j].take(rows)
+            if stem == "cumulative":
+                return lv.cumulative
+            if stem == "value_sum":
+                return lv.value_sum[:, None]
+            if stem == "observed":
+                return lv.observed_shares()
+            i, bounds = b.threshold_at[j]
+            return np.array(normal_exceedance_rows(bounds, m.means()[:, i].tolist(),
+                                                   m.variances(corr)[:, i].tolist()),
+                            dtype=np.float64).reshape(rows.shape[0], len(bounds))
         if name in ("covariance", "correlation"):
             iu, ju = np.triu_indices(m.dim, 1)
             with np.errstate(divide="ignore", invalid="ignore"):

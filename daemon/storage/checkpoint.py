@@ -195,10 +195,11 @@ def _restore_blocks(engine: Engine, blocks: list, now: float) -> tuple[int, list
             except IncompatibleError as exc:
                 dropped += [(c.where(k, st.cfg.topic.labels), str(exc)) for k in range(c.n)]
                 continue
-            refused = engine.adopt_columns(st, c, now)
+            refused, bad = engine.adopt_columns(st, c, now)
+            dropped += [(c.where(k, st.cfg.topic.labels), reason) for k, reason in bad]
             dropped += [(c.where(k, st.cfg.topic.labels), "the stream's max_series is "
                          "reached") for k in refused]
-            restored += c.n - len(refused)
+            restored += c.n - len(refused) - len(bad)
             continue
         series, bad = columns.restore(st, c)
         refused = engine.adopt(series, [view_of(s) for s in series], now)

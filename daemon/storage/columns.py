@@ -84,7 +84,7 @@ def collect(st: StreamState) -> StreamColumns:
             st.name, list(st.fields), list(st.kinds), list(cfg.outlier_sigmas),
             list(store.labels[:n]), store.observations[:n].copy(), store.version[:n].copy(),
             store.last_update[:n].copy(), store.outliers[:n].copy(), store.moments.copy(n),
-            None, None, None, None)
+            None, None, store.threshold_counts(), None)
     series = list(st.series.values())
     n = len(series)
     width = len(cfg.outlier_sigmas)

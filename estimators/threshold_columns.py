@@ -1,0 +1,182 @@
+"""Many ``Thresholds`` states of one field and one set of bounds as arrays: row i is
+state i.
+
+A service-level stream keeps, per series, an exact cumulative histogram at a few
+fixed bounds and the decayed share above each. Held as one ``Thresholds`` object
+per series, every quiet series costs a Python call per flush; held as rows of a
+few arrays, a flush of many series folds them in a handful of numpy operations
+(``fold_counts``), beside the moments of the same rows (``fold_rows``,
+``fold_groups``), whose clocks and forgetting they share.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import NamedTuple
+
+import numpy as np
+
+from .forgetting import LOG2_RANGE, HalfLife
+from .moments_columns import _powers_of_two
+from .thresholds import Thresholds, _check_bounds
+
+__all__ = ["ThresholdColumns", "fold_counts", "normal_exceedance_rows"]
+
+_SQRT2 = math.sqrt(2.0)
+_ARRAYS = ("cumulative", "value_sum", "W", "above", "E")
+
+
+class ThresholdColumns(NamedTuple):
+    """n ``Thresholds`` of the same bounds and half-life. The clock and row count are
+    the moments' of the same series (the same rows, the same forgetting), so they are
+    not kept here: ``state`` takes them."""
+
+    bounds: np.ndarray        # (k,) increasing
+    half_life: HalfLife | None
+    cumulative: np.ndarray    # (n, k + 1): weighted counts at or below each bound, total
+    value_sum: np.ndarray     # (n,): weighted sum of the values
+    W: np.ndarray             # (n,): decayed weight sum, in units of 2**E
+    above: np.ndarray         # (n, k): decayed weight above each bound, in the same units
+    E: np.ndarray             # (n,) int64: scale exponent of the decayed sums
+
+    @property
+    def n(self) -> int:
+        return self.W.shape[0]
+
+    @classmethod
+    def zeros(cls, n: int, bounds: object, half_life: HalfLife | None) -> ThresholdColumns:
+        """n empty states (as ``Thresholds(bounds, half_life)``). O(n k)."""
+        b = _check_bounds(bounds)
+        k = b.size
+        return cls(b, half_life, np.zeros((n, k + 1)), np.zeros(n), np.zeros(n),
+                   np.zeros((n, k)), np.zeros(n, np.int64))
+
+    @classmethod
+    def of(cls, states: Sequence[Thresholds], bounds: object,
+           half_life: HalfLife | None) -> ThresholdColumns:
+        """Stack ``states`` (each of these bounds and half-life: the caller checked). O(n k)."""
+        out = cls.zeros(len(states), bounds, half_life)
+        for i, t in enumerate(states):
+            out.set_state(i, t)
+        return out
+
+    def take(self, idx: np.ndarray | slice) -> ThresholdColumns:
+        """The rows ``idx`` (an index array: copies; a slice: views). O(len(idx) k)."""
+        return self._replace(**{name: getattr(self, name)[idx] for name in _ARRAYS})
+
+    def put(self, idx: np.ndarray | slice, other: ThresholdColumns) -> None:
+        """Overwrite rows ``idx`` with the rows of ``other`` (in place). O(len(idx) k)."""
+        for name in _ARRAYS:
+            getattr(self, name)[idx] = getattr(other, name)
+
+    def copy(self, n: int | None = None) -> ThresholdColumns:
+        """A copy of the first ``n`` rows (all: None), sharing no memory. O(n k)."""
+        part = slice(None) if n is None else slice(0, n)
+        return self._replace(**{name: getattr(self, name)[part].copy() for name in _ARRAYS})
+
+    def resized(self, n: int) -> ThresholdColumns:
+        """The first min(n, self.n) rows in new arrays of n rows, the rest empty. O(n k)."""
+        out = ThresholdColumns.zeros(n, self.bounds, self.half_life)
+        k = min(n, self.n)
+        out.put(slice(0, k), self.take(slice(0, k)))
+        return out
+
+    def state(self, i: int, clock: float | None, count: int) -> Thresholds:
+        """Row i as a ``Thresholds`` of its own at the moments' ``clock`` and ``count``
+        (no memory shared), bit for bit. O(k)."""
+        t = Thresholds.__new__(Thresholds)
+        t.bounds, t.half_life, t.clock, t.count = self.bounds, self.half_life, clock, count
+        t._cumulative, t._above = self.cumulative[i].copy(), self.above[i].copy()
+        t.value_sum, t.W, t.E = float(self.value_sum[i]), float(self.W[i]), int(self.E[i])
+        return t
+
+    def set_state(self, i: int, t: Thresholds) -> None:
+        """Write ``t`` (of these bounds) into row i, bit for bit. O(k)."""
+        self.cumulative[i], self.value_sum[i] = t._cumulative, t.value_sum
+        self.W[i], self.above[i], self.E[i] = t.W, t._above, t.E
+
+    def observed_shares(self) -> np.ndarray:
+        """``Thresholds.observed_share`` of every row (n, k): NaN where empty. O(n k)."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            share = np.minimum(np.maximum(self.above / self.W[:, None], 0.0), 1.0)
+        share[~(self.W > 0.0)] = np.nan
+        return share
+
+
+def fold_counts(cols: ThresholdColumns, x: np.ndarray, weights: np.ndarray | None,
+                decayed: np.ndarray | None, g: np.ndarray | None,
+                starts: np.ndarray | None = None) -> tuple[ThresholdColumns, np.ndarray]:
+    """Fold checked values into each of n states at once, as ``Thresholds._fold`` does.
+
+    Parameters
+    ----------
+    cols : ThresholdColumns
+        The n states before the fold (left unchanged).
+    x : ndarray (m,)
+        The field's values, state by state (``starts``), arrival order within each.
+    weights : ndarray (m,) or None
+        Row weights, undecayed (None: all 1): what the counters add.
+    decayed : ndarray (m,) or None
+        Each row's weight times its own decay (None: ``weights``): what the decayed
+        sums add, as the moments' fold of the same rows computed it.
+    g : ndarray (n,) or None
+        Each state's aging, 2**g, before the rows join (None: no aging).
+    starts : ndarray (n,) or None
+        Where each state's rows begin in ``x`` (None: one row per state, m = n).
+
+    Returns
+    -------
+    (ThresholdColumns, ok)
+        The new states, and which were folded here: a state with a scale exponent, or
+        whose aging would move it (``forgetting.scale_step``), is left to the object.
+
+    Notes
+    -----
+    Per state: the counters add sum_i w_i [x_i <= b_j], sum_i w_i and sum_i w_i x_i;
+    the decayed sums age by 2**g, then add sum_i v_i and sum_i v_i [x_i > b_j].
+    With one row per state the same IEEE operations as the object's, so the bits
+    agree; with several, segment sums (another order of additions). O(m k).
+    """
+    b = cols.bounds
+    le = x[:, None] <= b                      # (m, k)
+    w = np.ones(x.shape[0]) if weights is None else weights
+    v = w if decayed is None else decayed
+    counted = le * w[:, None]
+    below = counted if decayed is None else le * v[:, None]
+    total, vx = w, w * x
+    if starts is not None:
+        counted, total, vx = (np.add.reduceat(a, starts) for a in (counted, w, vx))
+        below = counted if decayed is None else np.add.reduceat(below, starts)
+        v = total if decayed is None else np.add.reduceat(v, starts)
+    ok = cols.E == 0
+    W, above = cols.W, cols.above
+    if g is not None:
+        aged = g != 0.0
+        ok &= ~aged | (W == 0.0) | (np.frexp(W)[1] + g > -LOG2_RANGE)
+        f = np.ones(g.shape[0])
+        f[aged] = _powers_of_two(g[aged])
+        W, above = W * f, above * f[:, None]
+    cumulative = cols.cumulative.copy()
+    cumulative[:, :-1] += counted
+    cumulative[:, -1] += total
+    out = cols._replace(cumulative=cumulative, value_sum=cols.value_sum + vx, W=W + v,
+                        above=above + (v[:, None] - below))
+    return out, ok
+
+
+def normal_exceedance_rows(bounds: Sequence[float], means: Sequence[float],
+                           variances: Sequence[float]) -> list[tuple[float, ...]]:
+    """``thresholds.normal_exceedance`` for many normal models (one per mean and
+    variance; a negative variance is NaN), as tuples, to the same bits. O(n k)."""
+    out = []
+    for m, var in zip(means, variances, strict=True):
+        sd = math.sqrt(var) if var >= 0.0 else math.nan
+        if sd > 0.0:
+            s = sd * _SQRT2
+            out.append(tuple(1.0 * 0.5 * math.erfc((b - m) / s) for b in bounds))
+        elif sd == 0.0:
+            out.append(tuple(1.0 if b < m else 0.0 for b in bounds))
+        else:
+            out.append((math.nan,) * len(bounds))
+    return out

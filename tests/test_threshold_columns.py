@@ -1,0 +1,139 @@
+"""ThresholdColumns and fold_counts against Thresholds objects folding the same rows.
+
+The reference is the object path (``Thresholds._fold``, itself checked against numpy's
+exact counts in tests/test_thresholds.py); with one row per state the columns must
+agree bit for bit, with several up to rounding (segment sums add in another order).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from sigmad.estimators import (
+    HalfLife,
+    Moments,
+    MomentsColumns,
+    ThresholdColumns,
+    Thresholds,
+    fold_counts,
+    fold_groups,
+    fold_rows,
+    normal_exceedance,
+    normal_exceedance_rows,
+)
+
+BOUNDS = [8.0, 10.0, 14.0]
+HALF_LIVES = [None, HalfLife(7.0, "observations"), HalfLife(30.0, "seconds")]
+
+
+def _states(rng, n: int, hl):
+    """n series with some history: (Moments, Thresholds) pairs folded alike."""
+    ms, ts = [], []
+    for _ in range(n):
+        m, t = Moments(1, hl), Thresholds(BOUNDS, hl)
+        k = int(rng.integers(0, 4))
+        if k:
+            x = rng.normal(10.0, 2.0, k)
+            w = rng.uniform(0.5, 2.0, k)
+            times = np.sort(rng.uniform(0.0, 50.0, k)) if hl is not None and not \
+                hl.by_count else None
+            m.update(x[:, None], w, times)
+            t.update(x, w, times)
+        ms.append(m)
+        ts.append(t)
+    return ms, ts
+
+
+def _times(rng, hl, ms, m):
+    if hl is None or hl.by_count:
+        return None
+    start = max((s.clock or 0.0) for s in ms)
+    return np.sort(rng.uniform(start, start + 40.0, m))
+
+
+@pytest.mark.parametrize("hl", HALF_LIVES, ids=["none", "count", "time"])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_one_row_per_state_is_the_objects_bit_for_bit(hl, weighted):
+    rng = np.random.default_rng(3)
+    ms, ts = _states(rng, 40, hl)
+    x = rng.normal(10.0, 2.0, 40)
+    x[:4] = BOUNDS + [BOUNDS[0]]          # values on a bound count as at or below it
+    w = rng.uniform(0.5, 2.0, 40) if weighted else None
+    t = _times(rng, hl, ms, 40)
+    cols = ThresholdColumns.of(ts, BOUNDS, hl)
+    res = fold_rows(MomentsColumns.of(ms, 1, hl), x[:, None], w, t)
+    new, ok = fold_counts(cols, x, w, res.decayed, res.aging)
+    assert ok.all() and res.ok.all()
+    for i, th in enumerate(ts):
+        th._fold(x[i:i + 1], None if w is None else w[i:i + 1],
+                 None if t is None else t[i:i + 1])
+        got = new.state(i, th.clock, th.count)
+        assert got.cumulative.tolist() == th.cumulative.tolist()
+        assert got.value_sum == th.value_sum and got.W == th.W
+        assert got._above.tolist() == th._above.tolist()
+        np.testing.assert_array_equal(new.observed_shares()[i], th.observed_share)
+
+
+@pytest.mark.parametrize("hl", HALF_LIVES, ids=["none", "count", "time"])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_several_rows_per_state_agree_to_rounding(hl, weighted):
+    rng = np.random.default_rng(5)
+    ms, ts = _states(rng, 30, hl)
+    counts = rng.integers(2, 9, 30)
+    m = int(counts.sum())
+    x = rng.normal(10.0, 2.0, m)
+    w = rng.uniform(0.5, 2.0, m) if weighted else None
+    starts = np.cumsum(counts) - counts
+    t = None
+    if hl is not None and not hl.by_count:
+        t = np.concatenate([np.sort(rng.uniform(60.0, 90.0, c)) for c in counts])
+    res = fold_groups(MomentsColumns.of(ms, 1, hl), x[:, None], w, t, counts)
+    new, ok = fold_counts(ThresholdColumns.of(ts, BOUNDS, hl), x, w, res.decayed,
+                          res.aging, starts)
+    assert ok.all()
+    for i, th in enumerate(ts):
+        p = slice(starts[i], starts[i] + counts[i])
+        th._fold(x[p], None if w is None else w[p], None if t is None else t[p])
+        got = new.state(i, th.clock, th.count)
+        np.testing.assert_allclose(got.cumulative, th.cumulative, rtol=1e-13)
+        assert math.isclose(got.value_sum, th.value_sum, rel_tol=1e-13)
+        assert math.isclose(got.W, th.W, rel_tol=1e-13)
+        np.testing.assert_allclose(got._above, th._above, rtol=1e-12, atol=1e-12 * th.W)
+
+
+def test_a_scale_exponent_or_an_aging_that_would_move_it_is_left_to_the_object():
+    hl = HalfLife(1.0, "seconds")
+    a, b, c = (Thresholds(BOUNDS, hl) for _ in range(3))
+    for th in (a, b, c):
+        th.update([9.0], times=[0.0])
+    b.decay_to(500.0)          # 500 half-lives: the scale exponent takes them
+    assert b.E != 0
+    cols = ThresholdColumns.of([a, b, c], BOUNDS, hl)
+    g = np.array([-1.0, -1.0, -200.0])
+    _, ok = fold_counts(cols, np.array([9.0, 9.0, 9.0]), None, None, g)
+    assert ok.tolist() == [True, False, False]
+
+
+def test_take_put_resize_and_states_round_trip():
+    rng = np.random.default_rng(1)
+    _, ts = _states(rng, 12, None)
+    cols = ThresholdColumns.of(ts, BOUNDS, None)
+    grown = cols.resized(20)
+    assert grown.n == 20 and not grown.W[12:].any()
+    part = grown.take(np.array([3, 7]))
+    empty = ThresholdColumns.zeros(2, BOUNDS, None)
+    empty.put(slice(None), part)
+    for j, i in enumerate((3, 7)):
+        assert empty.state(j, None, 0).to_dict() | {"count": ts[i].count, "clock": None} == \
+            ts[i].to_dict()
+
+
+def test_normal_exceedance_rows_is_normal_exceedance():
+    means = [10.0, 0.0, 5.0, math.nan, 3.0]
+    variances = [4.0, 0.0, -1.0, 1.0, 1e-300]
+    rows = normal_exceedance_rows(BOUNDS, means, variances)
+    for (m, v), row in zip(zip(means, variances, strict=True), rows, strict=True):
+        want = normal_exceedance(BOUNDS, m, math.sqrt(v) if v >= 0.0 else math.nan)
+        np.testing.assert_array_equal(np.array(row), want)
