@@ -43,6 +43,7 @@ KINDS = {
     "two-field": (("a", "b"), ""),
     "regression": (("a", "b"), 'regression = { y = "b", x = ["a"] }'),
     "mixture": (("v",), "mixture = { components = 2 }"),
+    "three-threshold": (("v",), "thresholds = [100.0, 300.0, 1000.0]"),
 }
 
 

@@ -628,18 +628,12 @@ class Engine:
     ----------
     config : Config
         The validated configuration.
-    columns : bool or None
+    columns : bool
         Hold plain streams' series in columns (``store.ColumnStore``); False keeps
-        every series an object (the reference the column path is tested against, and
-        ``sigmad bench``'s like-for-like rows); None: ``Engine.COLUMNS``.
+        every series an object (the reference the column path is tested against).
     """
 
-    #: what ``columns=None`` means (True; the benchmark sets it for an engine it starts)
-    COLUMNS = True
-
-    def __init__(self, config: Config, columns: bool | None = None) -> None:
-        if columns is None:
-            columns = Engine.COLUMNS
+    def __init__(self, config: Config, columns: bool = True) -> None:
         self.config = config
         d = config.daemon
 

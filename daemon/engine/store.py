@@ -453,12 +453,12 @@ class ColumnStore:
             dist = m.mahalanobis(x, cfg.correction)
             for j, k in enumerate(cfg.outlier_sigmas):
                 self.outliers[r, j] += int(np.count_nonzero(dist > k))
-        for (i, _), lv in zip(st.threshold_at, self.levels, strict=True):
-            th = lv.state(r, m.clock, m.count)
-            th._fold(x[:, i], w, t)
-            lv.set_state(r, th)
+        ths = [lv.state(r, m.clock, m.count) for lv in self.levels]
         m._fold(x, w, t)
         self.moments.set_state(r, m)
+        for (i, _), lv, th in zip(st.threshold_at, self.levels, ths, strict=True):
+            th._fold(x[:, i], w, t)
+            lv.set_state(r, th)
         self.observations[r] += x.shape[0]
         self.version[r] += 1
         self.last_update[r] = now
