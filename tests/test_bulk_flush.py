@@ -174,11 +174,33 @@ def test_quiet_series_live_in_columns_not_objects(monkeypatch):
     assert bulk.snapshot.series[("s", (("k", "k7"),))].mean == (7.0,)
 
 
-def test_expired_series_leave_their_columns_and_come_back_fresh(monkeypatch):
+def test_thresholds_on_one_field_of_two_and_a_busy_series(monkeypatch):
+    # counts at thresholds of the second field only; one series sends batches of 50
+    # rows (more than GROUP_ROWS: folded as objects of its own) beside quiet ones
+    bulk, single = _engines('["a", "b"]', 'half_life = "5s"\nthresholds = { b = [4.0] }',
+                            monkeypatch)
+    rng = np.random.default_rng(8)
+    for f in range(6):
+        now = 100.0 + f
+        msgs = [(f"s.k{k}".encode(), encode({"a": float(k), "b": float(rng.normal(4, 2))}))
+                for k in range(30)]
+        msgs += [(b"s.busy", encode({"a": rng.normal(0, 1, 50).tolist(),
+                                     "b": rng.normal(4, 2, 50).tolist()},
+                                    weight=rng.uniform(0.5, 2, 50).tolist()))]
+        for e in (bulk, single):
+            e.ingest_many([t for t, _ in msgs], [b for _, b in msgs], now)
+            e.flush(now)
+        _same(bulk, single)
+    v = bulk.snapshot.series[("s", (("k", "busy"),))]
+    assert v.levels.at == ((1, (4.0,)),) and v.levels.buckets[0][-1] > 200.0
+
+
+@pytest.mark.parametrize("levels", ["", "thresholds = [20.0, 60.0]"], ids=["", "thresholds"])
+def test_expired_series_leave_their_columns_and_come_back_fresh(levels, monkeypatch):
     # idle series leave the store (rows renumbered, cached layout rows forgotten); a
     # message of an expired topic, through a learnt layout, makes a fresh series, and
     # a series with rows still waiting is kept; the object path agrees throughout
-    bulk, single = _engines('["a"]', 'idle_expiry = "10s"', monkeypatch)
+    bulk, single = _engines('["a"]', 'idle_expiry = "10s"\n' + levels, monkeypatch)
 
     def feed(now, ks, value):
         msgs = [(f"s.k{k}".encode(), encode({"a": value + k})) for k in ks]
