@@ -28,6 +28,12 @@ BOUNDS = [8.0, 10.0, 14.0]
 HALF_LIVES = [None, HalfLife(7.0, "observations"), HalfLife(30.0, "seconds")]
 
 
+def _each_kind(test):
+    """Run ``test`` for each kind of forgetting, with and without row weights."""
+    test = pytest.mark.parametrize("weighted", [False, True])(test)
+    return pytest.mark.parametrize("hl", HALF_LIVES, ids=["none", "count", "time"])(test)
+
+
 def _states(rng, n: int, hl):
     """n series with some history: (Moments, Thresholds) pairs folded alike."""
     ms, ts = [], []
@@ -53,8 +59,7 @@ def _times(rng, hl, ms, m):
     return np.sort(rng.uniform(start, start + 40.0, m))
 
 
-@pytest.mark.parametrize("hl", HALF_LIVES, ids=["none", "count", "time"])
-@pytest.mark.parametrize("weighted", [False, True])
+@_each_kind
 def test_one_row_per_state_is_the_objects_bit_for_bit(hl, weighted):
     rng = np.random.default_rng(3)
     ms, ts = _states(rng, 40, hl)
@@ -76,8 +81,7 @@ def test_one_row_per_state_is_the_objects_bit_for_bit(hl, weighted):
         np.testing.assert_array_equal(new.observed_shares()[i], th.observed_share)
 
 
-@pytest.mark.parametrize("hl", HALF_LIVES, ids=["none", "count", "time"])
-@pytest.mark.parametrize("weighted", [False, True])
+@_each_kind
 def test_several_rows_per_state_agree_to_rounding(hl, weighted):
     rng = np.random.default_rng(5)
     ms, ts = _states(rng, 30, hl)

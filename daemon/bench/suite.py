@@ -604,9 +604,10 @@ def bench_thresholds(n_single: int, n_batches: int, n_series: int = 1000,
                         f"{min(ratios):.2f} to {max(ratios):.2f})",
                         ratio, "<= 1.15 (time)" if target else "- (time)",
                         ratio <= 1.15 if target else None, "" if target else "figure only"))
-    rows.append(Row("1,000-row weighted batches with 3 thresholds, engine alone",
-                    f"median of {2 * pairs + 1} pairs", "no thresholds",
-                    thresholds_engine_ratio(batches, 2 * pairs + 1), "- (time)", None))
+    for what, frames in (("unit-weight", unit), ("weighted", batches)):
+        rows.append(Row(f"1,000-row {what} batches with 3 thresholds, engine alone",
+                        f"median of {2 * pairs + 1} pairs", "no thresholds",
+                        thresholds_engine_ratio(frames, 2 * pairs + 1), "- (time)", None))
     return rows
 
 
