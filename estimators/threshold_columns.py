@@ -17,14 +17,17 @@ from typing import NamedTuple
 
 import numpy as np
 
+from .errors import IncompatibleError
 from .forgetting import LOG2_RANGE, HalfLife
-from .moments_columns import _powers_of_two
+from .moments_columns import _powers_of_two, blob, from_blob
 from .thresholds import Thresholds, _check_bounds
 
 __all__ = ["ThresholdColumns", "fold_counts", "normal_exceedance_rows"]
 
 _SQRT2 = math.sqrt(2.0)
 _ARRAYS = ("cumulative", "value_sum", "W", "above", "E")
+_LE_F8 = np.dtype("<f8")
+_LE_I8 = np.dtype("<i8")
 
 
 class ThresholdColumns(NamedTuple):
@@ -95,6 +98,48 @@ class ThresholdColumns(NamedTuple):
         """Write ``t`` (of these bounds) into row i, bit for bit. O(k)."""
         self.cumulative[i], self.value_sum[i] = t._cumulative, t.value_sum
         self.W[i], self.above[i], self.E[i] = t.W, t._above, t.E
+
+    def to_dict(self) -> dict:
+        """Plain, msgpack-able form: the bounds, the half-life and one little-endian blob
+        per array (a checkpoint of many series). ``from_dict(to_dict())`` is exact. O(n k)."""
+        return {"bounds": self.bounds.tolist(),
+                "half_life": None if self.half_life is None else self.half_life.to_dict(),
+                "n": self.n, "cumulative": blob(self.cumulative, _LE_F8),
+                "value_sum": blob(self.value_sum, _LE_F8), "W": blob(self.W, _LE_F8),
+                "above": blob(self.above, _LE_F8), "scale_exponent": blob(self.E, _LE_I8)}
+
+    @classmethod
+    def from_dict(cls, d: object) -> ThresholdColumns:
+        """Rebuild from ``to_dict``; IncompatibleError naming the field at fault (bounds,
+        half-life, n, a blob of the wrong size). Row values are checked by ``bad_rows``,
+        so that one bad series costs only itself. O(n k)."""
+        if not isinstance(d, dict):
+            raise IncompatibleError("threshold columns", type(d).__name__, "must be a map")
+        n = d.get("n")
+        if type(n) is not int or n < 0:
+            raise IncompatibleError("n", n, "must be an integer >= 0")
+        bounds = _check_bounds(d.get("bounds"))
+        try:
+            half_life = HalfLife.from_dict(d.get("half_life"))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise IncompatibleError("half_life", d.get("half_life"), f"malformed: {exc}") \
+                from None
+        k = bounds.size
+        return cls(bounds, half_life, from_blob(d, "cumulative", _LE_F8, (n, k + 1)),
+                   from_blob(d, "value_sum", _LE_F8, (n,)), from_blob(d, "W", _LE_F8, (n,)),
+                   from_blob(d, "above", _LE_F8, (n, k)),
+                   from_blob(d, "scale_exponent", _LE_I8, (n,)))
+
+    def bad_rows(self) -> np.ndarray:
+        """Rows ``Thresholds.from_dict`` would refuse (n,): a count, sum or decayed sum
+        not finite, a count below 0 or below the one at a lower bound, a scale exponent
+        beyond +-2**40. O(n k)."""
+        cum = self.cumulative
+        ok = np.isfinite(cum).all(axis=1) & np.isfinite(self.above).all(axis=1) \
+            & np.isfinite(self.W) & np.isfinite(self.value_sum) & (cum >= 0.0).all(axis=1) \
+            & (np.diff(cum, axis=1) >= 0.0).all(axis=1) & (self.E >= -(1 << 40)) \
+            & (self.E <= 1 << 40)
+        return ~ok
 
     def observed_shares(self) -> np.ndarray:
         """``Thresholds.observed_share`` of every row (n, k): NaN where empty. O(n k)."""

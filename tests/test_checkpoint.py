@@ -786,18 +786,56 @@ def test_columns_with_thresholds_restore_as_columns_and_their_counters_resume():
     assert after[0][-1] == before[0][-1] + 12     # 6 drains of 2 rows on top
 
 
-def test_columns_with_thresholds_drop_only_a_malformed_series_and_restart_changed_bounds():
-    e = _levels_engine()
+@pytest.mark.parametrize("writer", ["columns", "objects"])
+def test_columns_with_thresholds_drop_only_a_malformed_series_and_restart_changed_bounds(
+        writer):
+    # a column stream writes its counts as blobs (threshold_columns), a stream kept as
+    # objects one map per series (threshold_counts): a restore into columns reads both,
+    # and a series whose counts are malformed is dropped alone, named
+    e = _levels_engine(columns=writer == "columns")
     _fill(e, range(10), NOW)
     data = decode_checkpoint(checkpoint_bytes(e))
     block = data.blocks[0]
-    block["threshold_counts"][3][0]["state"]["cumulative"] = [1.0, "x", 3.0]
+    if writer == "columns":
+        assert block["threshold_counts"] is None
+        saved = block["threshold_columns"][0]
+        cum = np.frombuffer(saved["cumulative"], "<f8").reshape(10, 3).copy()
+        cum[3, 1] = math.nan
+        saved["cumulative"] = cum.astype("<f8").tobytes()
+    else:
+        assert "threshold_columns" not in block
+        block["threshold_counts"][3][0]["state"]["cumulative"] = [1.0, "x", 3.0]
     cols = _levels_engine()
     restored, dropped = restore_checkpoint(cols, data, NOW)
     assert restored == 9 and len(dropped) == 1
-    assert dropped[0][0] == "c{k=k3}" and "thresholds" in dropped[0][1]
+    assert dropped[0][0] == "c{k=k3}" and "threshold" in dropped[0][1]
     assert ("c", (("k", "k3"),)) not in cols.snapshot.series
     moved = _levels_engine("[6.0, 20.0]")        # other bounds: the counts start afresh
     assert restore_checkpoint(moved, decode_checkpoint(checkpoint_bytes(e)), NOW)[0] == 10
     v = moved.snapshot.series[("c", (("k", "k4"),))]
     assert v.levels.buckets == ((0.0, 0.0, 0.0),) and v.observations > 0
+
+
+def test_threshold_columns_of_the_wrong_size_drop_their_block_naming_the_field():
+    e = _levels_engine()
+    _fill(e, range(10), NOW)
+    data = decode_checkpoint(checkpoint_bytes(e))
+    data.blocks[0]["threshold_columns"][0]["above"] = b"\0" * 8
+    cols = _levels_engine()
+    restored, dropped = restore_checkpoint(cols, data, NOW)
+    assert restored == 0 and len(dropped) == 1 and "above" in dropped[0][1]
+
+
+def test_threshold_columns_restore_into_objects_and_inspect_as_maps():
+    # a stream that now keeps objects (a mixture added) still takes the counts a column
+    # stream wrote; sigmad inspect's per-series maps show them
+    e = _levels_engine()
+    _fill(e, range(10), NOW)
+    raw = checkpoint_bytes(e)
+    objs = _levels_engine(columns=False)
+    assert restore_checkpoint(objs, decode_checkpoint(raw), NOW)[0] == 10
+    for key, view in e.snapshot.series.items():
+        assert objs.snapshot.series[key].levels == view.levels
+    states = decode_checkpoint(raw).series()
+    assert states[0]["threshold_counts"][0]["field"] == "v"
+    assert states[0]["threshold_counts"][0]["state"]["bounds"] == [5.0, 20.0]

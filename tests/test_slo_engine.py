@@ -118,7 +118,7 @@ def test_a_stream_without_thresholds_has_none():
 def checkpoint_round_trip(e: Engine, config: str = CONFIG, strip: bool = False) -> Engine:
     blocks = collect_columns(e)
     if strip:   # a checkpoint written before thresholds existed
-        blocks = [b._replace(threshold_counts=None) for b in blocks]
+        blocks = [b._replace(threshold_counts=None, threshold_columns=None) for b in blocks]
     cp = decode_checkpoint(encode_checkpoint(blocks, stream_definitions(e), NOW))
     fresh = engine(config)
     restored, dropped = restore_checkpoint(fresh, cp, NOW)

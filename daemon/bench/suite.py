@@ -176,6 +176,10 @@ max_series = 200000
 """
 
 
+#: three thresholds on the scalar stream's field
+_THREE = "thresholds = [8.0, 10.0, 14.0]\n"
+
+
 def bench_single(n: int, repeat: int = 3) -> list[Row]:
     """Two rows: the daemon against the bare loop with msgpack's decoder (the reference
     of the target), and against the fastest bare loop of all decoders."""
@@ -311,12 +315,14 @@ def bench_mixture(n_batches: int) -> Row:
                ours / ref >= 1.0)
 
 
-def _many_series_engine(n_series: int, bodies: list[tuple[bytes, bytes]] | None = None):
-    """An engine holding ``n_series`` scalar series, fed as the daemon would be: messages
-    of three rows each, flushed every 1,000 messages."""
+def _many_series_engine(n_series: int, bodies: list[tuple[bytes, bytes]] | None = None,
+                        extra: str = ""):
+    """An engine holding ``n_series`` scalar series (``extra``: more keys of their
+    stream), fed as the daemon would be: messages of three rows each, flushed every
+    1,000 messages."""
     from sigmad.daemon.engine.engine import Engine
 
-    e = Engine(parse_config(_SCALAR.replace("PORT", "1")))
+    e = Engine(parse_config(_SCALAR.replace("PORT", "1") + extra))
     for i, (topic, body) in enumerate(bodies or _series_messages(n_series)):
         e.ingest(topic, body, 1000.0)
         if i % 1000 == 999:
@@ -494,10 +500,12 @@ def bench_scaling(sizes: tuple[int, ...], messages: int, repeat: int = 2) -> lis
     return rows
 
 
-def bench_checkpoint(n_series: int, repeat: int = 2, judged: bool = True) -> list[Row]:
+def bench_checkpoint(n_series: int, repeat: int = 2, judged: bool = True,
+                     extra: str = "", kind: str = "") -> list[Row]:
     """Write a checkpoint of ``n_series`` series (collect every state on the engine side,
     pack, write atomically) and restore it into a fresh engine; the best of ``repeat``
-    of each, as the rates above are."""
+    of each, as the rates above are. ``extra``: more keys of their stream (``kind``
+    names them in the rows)."""
     import tempfile
 
     from prometheus_client import CollectorRegistry
@@ -511,7 +519,7 @@ def bench_checkpoint(n_series: int, repeat: int = 2, judged: bool = True) -> lis
         write_atomically,
     )
 
-    engine = _many_series_engine(n_series)
+    engine = _many_series_engine(n_series, extra=extra)
     with tempfile.TemporaryDirectory() as tmp:
         path = os.path.join(tmp, "bench.state")
         checkpointer = Checkpointer(path, 30.0, CollectorRegistry())
@@ -532,9 +540,10 @@ def bench_checkpoint(n_series: int, repeat: int = 2, judged: bool = True) -> lis
         raise RuntimeError(f"restore kept {len(fresh.snapshot.series)} of {n_series} series")
     size = f"{len(data) / 2**20:.0f} MiB"
     note = "" if judged else "not judged at quick size"
-    return [Row(f"checkpoint write, {n_series:,} series ({size})", f"{wrote:.2f} s",
+    what = f"{n_series:,} {kind + ' ' if kind else ''}series"
+    return [Row(f"checkpoint write, {what} ({size})", f"{wrote:.2f} s",
                 "budget 2 s", wrote / 2.0, "<= 1.0", wrote <= 2.0 if judged else None, note),
-            Row(f"checkpoint restore, {n_series:,} series", f"{read:.2f} s", "budget 2 s",
+            Row(f"checkpoint restore, {what}", f"{read:.2f} s", "budget 2 s",
                 read / 2.0, "<= 1.0", read <= 2.0 if judged else None, note)]
 
 
@@ -579,7 +588,7 @@ def bench_thresholds(n_single: int, n_batches: int, n_series: int = 1000,
     endpoints; a figure). Each row is the median ratio of ``pairs`` interleaved pairs
     (``_paired``). Then the engine alone for the batches (no target: the fold itself,
     which sockets and decoding dilute)."""
-    with_three = _SCALAR + "thresholds = [8.0, 10.0, 14.0]\n"
+    with_three = _SCALAR + _THREE
     rng = np.random.default_rng(4)
     single = [(b"bench.a", msgpack.packb({"values": {"v": float(v)}, "source": "b",
                                           "seq": i}))
@@ -618,7 +627,7 @@ def thresholds_engine_ratio(batches: list[tuple[bytes, bytes]], pairs: int) -> f
     from sigmad.daemon.engine.allocator import keep_freed_blocks
     from sigmad.daemon.engine.blas import set_threads
 
-    with_three = _SCALAR + "thresholds = [8.0, 10.0, 14.0]\n"
+    with_three = _SCALAR + _THREE
     keep_freed_blocks()          # as the daemon runs (both are process-wide)
     before = set_threads(1)
     ratios = []
@@ -655,7 +664,8 @@ def run(quick: bool = False, out=sys.stderr) -> list[Row]:
             # series fixed costs (arenas, the arrays' doubling) still show in it
             ("memory", lambda: bench_memory(10_000, 30_000, 30_000, (1_000, 3_000),
                                             judged=False)),
-            ("checkpoint", lambda: bench_checkpoint(10_000, judged=False)),
+            ("checkpoint", lambda: bench_checkpoint(10_000, judged=False)
+             + bench_checkpoint(10_000, judged=False, extra=_THREE, kind="three-threshold")),
             ("MQTT", lambda: _bench_mqtt(2_000)),
         ]
     else:
@@ -668,7 +678,8 @@ def run(quick: bool = False, out=sys.stderr) -> list[Row]:
             ("scrape", lambda: bench_scrape(10_000)),
             ("many series", lambda: bench_scaling((1_000, 10_000, 100_000), 300_000)),
             ("memory", lambda: bench_memory(10_000, 50_000, 100_000, (2_000, 10_000))),
-            ("checkpoint", lambda: bench_checkpoint(100_000)),
+            ("checkpoint", lambda: bench_checkpoint(100_000)
+             + bench_checkpoint(100_000, extra=_THREE, kind="three-threshold")),
             ("MQTT", lambda: _bench_mqtt(20_000)),
         ]
     rows: list[Row] = []

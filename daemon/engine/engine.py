@@ -522,6 +522,28 @@ def restore_thresholds(st: StreamState, saved: list | None,
     return kept or ()
 
 
+def _saved_levels(st: StreamState, saved: list, n: int) -> tuple[list[ThresholdColumns],
+                                                                  list[tuple[int, str]]]:
+    """Stream ``st``'s counts at thresholds from a block's (field, ThresholdColumns)
+    pairs: a field's columns are kept (counters resume) when its bounds and half-life
+    are the stream's now, fresh otherwise or when absent (``restore_thresholds``'s
+    rule); and (row, reason) for each row whose kept counts are malformed. O(n k)."""
+    by_field = dict(saved)
+    hl = st.cfg.half_life
+    levels, bad = [], {}
+    for i, bounds in st.threshold_at:
+        field = st.fields[i]
+        tc = by_field.get(field)
+        if tc is None or tc.half_life != hl or tuple(tc.bounds.tolist()) != bounds:
+            levels.append(ThresholdColumns.zeros(n, bounds, hl))
+            continue
+        for r in np.flatnonzero(tc.bad_rows()).tolist():
+            bad.setdefault(r, f"threshold_counts.{field}: malformed counts (not finite, "
+                              "negative or not cumulative)")
+        levels.append(tc)
+    return levels, sorted(bad.items())
+
+
 def check_estimators(st: StreamState, reg: Regression | None, mix: Mixture | None) -> None:
     """Raise IncompatibleError when a restored regression or mixture does not fit stream
     ``st`` as configured now (other terms, components, log or covariance form, or
@@ -1474,22 +1496,29 @@ class Engine:
         observations, version, last_update = c.observations, c.version, c.last_update
         kept, bad, levels = np.arange(c.n), [], []
         if st.threshold_at:
-            per, good = [], []
-            for i, saved in enumerate(c.threshold_counts or [None] * c.n):
-                try:
-                    per.append(restore_thresholds(st, saved))
-                    good.append(i)
-                except IncompatibleError as exc:
-                    bad.append((i, str(exc)))
+            if c.threshold_columns is not None:
+                levels, bad = _saved_levels(st, c.threshold_columns, c.n)
+                dropped = {i for i, _ in bad}
+                good = [i for i in range(c.n) if i not in dropped] if bad else []
+            else:   # one map per series (a stream kept as objects wrote it)
+                per, good = [], []
+                for i, saved in enumerate(c.threshold_counts or [None] * c.n):
+                    try:
+                        per.append(restore_thresholds(st, saved))
+                        good.append(i)
+                    except IncompatibleError as exc:
+                        bad.append((i, str(exc)))
+                hl = st.cfg.half_life
+                levels = [ThresholdColumns.of([p[j] for p in per], b, hl)
+                          for j, (_, b) in enumerate(st.threshold_at)]
             if bad:
                 kept = np.array(good, np.int64)
                 labels = [labels[i] for i in good]
                 moments, outliers = moments.take(kept), outliers[kept]
                 observations, version = observations[kept], version[kept]
                 last_update = last_update[kept]
-            hl = st.cfg.half_life
-            levels = [ThresholdColumns.of([p[j] for p in per], b, hl)
-                      for j, (_, b) in enumerate(st.threshold_at)]
+                if c.threshold_columns is not None:
+                    levels = [lv.take(kept) for lv in levels]
         refused = st.store.adopt_columns(labels, moments, observations, version,
                                          last_update, outliers, levels)
         st.store.freeze()

@@ -476,19 +476,6 @@ class ColumnStore:
             st.threshold_at, tuple(lv.copy(n) for lv in self.levels))
         return self.block
 
-    def threshold_counts(self) -> list[list[dict]] | None:
-        """Every series' counts at thresholds as ``engine.thresholds_state`` saves them
-        (None for a stream without thresholds). O(n k) Python."""
-        if not self.levels:
-            return None
-        st, m = self.st, self.moments
-        names = [st.fields[i] for i, _ in st.threshold_at]
-        clocks = [c if h else None for c, h in zip(m.clock[:self.n].tolist(),
-                                                   m.has_clock[:self.n].tolist(), strict=True)]
-        counts = m.count[:self.n].tolist()
-        return [[{"field": f, "state": lv.state(r, clocks[r], counts[r]).to_dict()}
-                 for f, lv in zip(names, self.levels, strict=True)] for r in range(self.n)]
-
     # ------------------------------------------------------------- removal
     def keep_only(self, keep: np.ndarray) -> None:
         """Drop the rows where ``keep`` (n,) is False: new arrays, labels and index

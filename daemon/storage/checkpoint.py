@@ -12,10 +12,12 @@ File format (version 2), all integers little-endian::
                   {"written_at": float, "streams": [{name, fields, kinds, correction}],
                    "blocks": [columns.pack(...), ...], "health": {...}}
 
-A block holds every series of one stream as columns (``daemon/columns.py``):
+A block holds every series of one stream as columns (``storage/columns.py``):
 label values as lists of strings, counters and moments as little-endian
-binary blobs (one per quantity, n rows each), regression and mixture states
-as one ``to_dict`` map per series. Version 1 files, whose payload holds
+binary blobs (one per quantity, n rows each), the counts at thresholds of a
+stream kept in columns as blobs too (``threshold_columns``; a stream kept as
+objects writes one map per series, ``threshold_counts``), regression and
+mixture states as one ``to_dict`` map per series. Version 1 files, whose payload holds
 ``"series": [engine.series_state(...), ...]`` (one map per series) in place of
 ``"blocks"``, are still read.
 

@@ -31,6 +31,7 @@ from sigmad.estimators import (
     Mixture,
     MomentsColumns,
     Regression,
+    ThresholdColumns,
     blob,
     from_blob,
 )
@@ -59,6 +60,9 @@ class StreamColumns(NamedTuple):
     threshold_counts: list | None = None
     extras: list | None = None            # engine.extra_state per series (transform or
     #                                       regression streams)
+    # a stream in columns: (field, ThresholdColumns) per field with thresholds, in place
+    # of threshold_counts (blobs, not a map per series)
+    threshold_columns: list | None = None
 
     @property
     def n(self) -> int:
@@ -84,7 +88,9 @@ def collect(st: StreamState) -> StreamColumns:
             st.name, list(st.fields), list(st.kinds), list(cfg.outlier_sigmas),
             list(store.labels[:n]), store.observations[:n].copy(), store.version[:n].copy(),
             store.last_update[:n].copy(), store.outliers[:n].copy(), store.moments.copy(n),
-            None, None, store.threshold_counts(), None)
+            None, None, None, None,
+            [(st.fields[i], lv.copy(n)) for (i, _), lv in zip(st.threshold_at, store.levels,
+                                                              strict=True)] or None)
     series = list(st.series.values())
     n = len(series)
     width = len(cfg.outlier_sigmas)
@@ -117,6 +123,8 @@ def pack(c: StreamColumns) -> dict:
         "regression": c.regression, "mixture": c.mixture,
         "threshold_counts": c.threshold_counts,
         **({} if c.extras is None else {"extras": c.extras}),
+        **({} if c.threshold_columns is None else {"threshold_columns": [
+            {"field": f, **tc.to_dict()} for f, tc in c.threshold_columns]}),
     }
 
 
@@ -170,7 +178,41 @@ def unpack(d: object) -> StreamColumns:
         name, _strings(d, "fields"), _strings(d, "kinds"), thresholds, labels,
         from_blob(d, "observations", _LE_I8, (n,)), from_blob(d, "version", _LE_I8, (n,)),
         from_blob(d, "last_update", _LE_F8, (n,)),
-        from_blob(d, "outliers", _LE_I8, (n, len(thresholds))), moments, *per_series)
+        from_blob(d, "outliers", _LE_I8, (n, len(thresholds))), moments, *per_series,
+        _threshold_columns(d.get("threshold_columns"), n))
+
+
+def _threshold_columns(v: object, n: int) -> list | None:
+    """The (field, ThresholdColumns) pairs of a block (``pack``), checked for shape; their
+    rows' values are checked per series when restored (``ThresholdColumns.bad_rows``)."""
+    if v is None:
+        return None
+    if not isinstance(v, list) or not all(isinstance(e, dict) and isinstance(
+            e.get("field"), str) for e in v):
+        raise IncompatibleError("threshold_columns", type(v).__name__,
+                                'must be a list of maps, each with a "field"')
+    out = []
+    for e in v:
+        tc = ThresholdColumns.from_dict(e)
+        if tc.n != n:
+            raise IncompatibleError(f"threshold_columns.{e['field']}.n", tc.n,
+                                    f"must equal the series count {n}")
+        out.append((e["field"], tc))
+    return out
+
+
+def threshold_counts(c: StreamColumns) -> list:
+    """Per series, its counts at thresholds as ``engine.thresholds_state`` saves them
+    (one map per field), from either form of the block; [None] * n when it has none
+    (a checkpoint from before thresholds existed). O(n k) Python."""
+    if c.threshold_columns is None:
+        return c.threshold_counts or [None] * c.n
+    m = c.moments
+    clocks = [t if h else None for t, h in zip(m.clock.tolist(), m.has_clock.tolist(),
+                                               strict=True)]
+    counts = m.count.tolist()
+    return [[{"field": f, "state": tc.state(i, clocks[i], counts[i]).to_dict()}
+             for f, tc in c.threshold_columns] for i in range(c.n)]
 
 
 def check_stream(st: StreamState, c: StreamColumns) -> None:
@@ -214,7 +256,7 @@ def restore(st: StreamState, c: StreamColumns) -> tuple[list[Series], list[tuple
     outliers = c.outliers.tolist() if keep_outliers else None
     regs = c.regression or [None] * c.n
     mixes = c.mixture or [None] * c.n
-    counts = c.threshold_counts or [None] * c.n
+    counts = threshold_counts(c)
     # a checkpoint from before the stream had a transform: fresh transform states
     extra = c.extras or [{}] * c.n
     levels = bool(st.threshold_at)
@@ -248,6 +290,7 @@ def states(c: StreamColumns) -> list[dict]:
     O(n d**2)."""
     out = []
     moments = c.moments.states()
+    counts = threshold_counts(c) if c.threshold_columns is not None else c.threshold_counts
     for i in range(c.n):
         out.append(d := {
             "stream": c.stream, "labels": list(c.labels[i]), "fields": c.fields,
@@ -258,6 +301,6 @@ def states(c: StreamColumns) -> list[dict]:
             "regression": None if c.regression is None else c.regression[i],
             "mixture": None if c.mixture is None else c.mixture[i],
             **({} if c.extras is None else c.extras[i])})
-        if c.threshold_counts is not None:
-            d["threshold_counts"] = c.threshold_counts[i]
+        if counts is not None:
+            d["threshold_counts"] = counts[i]
     return out
