@@ -20,7 +20,7 @@ from typing import NamedTuple
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife
+from .forgetting import LOG2_RANGE, HalfLife
 from .moments import Moments, _normal_scores
 from .validation import check_saved
 
@@ -394,15 +394,23 @@ def _powers_of_two(g: np.ndarray) -> np.ndarray:
     return np.array([2.0 ** v for v in g.tolist()]) if g.size else np.ones(0)
 
 
+def aging(W: np.ndarray, g: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The factor 2**g by which each state's stored sums age (``forgetting.scale_step``
+    with the scale kept), and ``ok`` False where the aging would move the scale (the
+    aged weight sum ``W`` would fall below 2**-100): those are left to the objects.
+    Shared by every estimator folded in columns. O(n)."""
+    aged = g != 0.0
+    ok = ok & (~aged | (np.frexp(W)[1] + g > -LOG2_RANGE))
+    f = np.ones(g.shape[0])
+    f[aged] = _powers_of_two(g[aged])
+    return f, ok
+
+
 def _aged(W: np.ndarray, W2: np.ndarray, scatter: np.ndarray, g: np.ndarray,
           ok: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """W, W2 and the scatter of each state aged by 2**g (``Moments._age``), and ``ok``
-    False where the aging would move the scale (``scale_step`` keeps it while the aged
-    sum stays above 2**-100): those are left to ``Moments``. O(n d**2)."""
-    aged = g != 0.0
-    ok = ok & (~aged | (np.frexp(W)[1] + g > -100))
-    f = np.ones(g.shape[0])
-    f[aged] = _powers_of_two(g[aged])
+    as ``aging`` gives it. O(n d**2)."""
+    f, ok = aging(W, g, ok)
     return W * f, W2 * (f * f), scatter * f[:, None, None], ok
 
 

@@ -18,13 +18,12 @@ from typing import NamedTuple
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import LOG2_RANGE, HalfLife
-from .moments_columns import _powers_of_two, blob, from_blob
-from .thresholds import Thresholds, _check_bounds
+from .forgetting import HalfLife
+from .moments_columns import aging, blob, from_blob
+from .thresholds import Thresholds, _check_bounds, _upper
 
 __all__ = ["ThresholdColumns", "fold_counts", "normal_exceedance_rows"]
 
-_SQRT2 = math.sqrt(2.0)
 _ARRAYS = ("cumulative", "value_sum", "W", "above", "E")
 _LE_F8 = np.dtype("<f8")
 _LE_I8 = np.dtype("<i8")
@@ -197,10 +196,7 @@ def fold_counts(cols: ThresholdColumns, x: np.ndarray, weights: np.ndarray | Non
     ok = cols.E == 0
     W, above = cols.W, cols.above
     if g is not None:
-        aged = g != 0.0
-        ok &= ~aged | (W == 0.0) | (np.frexp(W)[1] + g > -LOG2_RANGE)
-        f = np.ones(g.shape[0])
-        f[aged] = _powers_of_two(g[aged])
+        f, ok = aging(W, g, ok)
         W, above = W * f, above * f[:, None]
     cumulative = cols.cumulative.copy()
     cumulative[:, :-1] += counted
@@ -214,14 +210,5 @@ def normal_exceedance_rows(bounds: Sequence[float], means: Sequence[float],
                            variances: Sequence[float]) -> list[tuple[float, ...]]:
     """``thresholds.normal_exceedance`` for many normal models (one per mean and
     variance; a negative variance is NaN), as tuples, to the same bits. O(n k)."""
-    out = []
-    for m, var in zip(means, variances, strict=True):
-        sd = math.sqrt(var) if var >= 0.0 else math.nan
-        if sd > 0.0:
-            s = sd * _SQRT2
-            out.append(tuple(1.0 * 0.5 * math.erfc((b - m) / s) for b in bounds))
-        elif sd == 0.0:
-            out.append(tuple(1.0 if b < m else 0.0 for b in bounds))
-        else:
-            out.append((math.nan,) * len(bounds))
-    return out
+    return [tuple(_upper(bounds, (1.0,), (m,), (math.sqrt(var) if var >= 0.0 else math.nan,)))
+            for m, var in zip(means, variances, strict=True)]

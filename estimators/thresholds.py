@@ -266,7 +266,7 @@ def normal_exceedance(bounds: object, mean: float, sd: float) -> np.ndarray:
     >>> normal_exceedance([0.0, 1.959963984540054], 0.0, 1.0).round(6).tolist()
     [0.5, 0.025]
     """
-    return _upper(bounds, (1.0,), (mean,), (sd,))
+    return np.array(_upper(bounds, (1.0,), (mean,), (sd,)))
 
 
 def mixture_exceedance(bounds: object, weights: np.ndarray, means: np.ndarray,
@@ -301,10 +301,10 @@ def mixture_exceedance(bounds: object, weights: np.ndarray, means: np.ndarray,
     if log:
         b = [math.log(v) if v > 0.0 else -math.inf for v in b]
     w, m, sd = (np.asarray(a, dtype=np.float64).tolist() for a in (weights, means, sds))
-    return _upper(b, w, m, sd)
+    return np.array(_upper(b, w, m, sd))
 
 
-def _upper(bounds: object, weights, means, sds) -> np.ndarray:
+def _upper(bounds: object, weights, means, sds) -> list[float]:
     """sum_k w_k P(N(m_k, s_k**2) > b) per bound, with ``math.erfc`` on plain floats:
     for the few bounds and components of a read-out, ten times cheaper than arrays.
     s_k = 0 is a point mass; a NaN parameter gives NaN. O(k K)."""
@@ -320,4 +320,4 @@ def _upper(bounds: object, weights, means, sds) -> np.ndarray:
             else:
                 total = math.nan
         out.append(total)
-    return np.array(out)
+    return out

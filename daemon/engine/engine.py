@@ -509,8 +509,7 @@ def restore_thresholds(st: StreamState, saved: list | None,
     kept = []
     for (i, bounds), t in zip(st.threshold_at, st.new_thresholds(), strict=True):
         o = old.pop(st.fields[i], None)
-        same = o is not None and o.half_life == st.cfg.half_life \
-            and tuple(o.bounds.tolist()) == bounds
+        same = _resumes(st, o, bounds)
         if exact and not same:
             raise IncompatibleError(f"threshold_counts.{st.fields[i]}",
                                     None if o is None else o.bounds.tolist(),
@@ -520,6 +519,14 @@ def restore_thresholds(st: StreamState, saved: list | None,
         raise IncompatibleError("threshold_counts", sorted(old),
                                 "names fields without thresholds in this stream")
     return kept or ()
+
+
+def _resumes(st: StreamState, saved: Thresholds | ThresholdColumns | None,
+             bounds: tuple[float, ...]) -> bool:
+    """Whether saved counts at ``bounds`` resume (counters go on) rather than restart:
+    their bounds and half-life are the stream's now. O(k)."""
+    return saved is not None and saved.half_life == st.cfg.half_life \
+        and tuple(saved.bounds.tolist()) == bounds
 
 
 def _saved_levels(st: StreamState, saved: list, n: int) -> tuple[list[ThresholdColumns],
@@ -534,7 +541,7 @@ def _saved_levels(st: StreamState, saved: list, n: int) -> tuple[list[ThresholdC
     for i, bounds in st.threshold_at:
         field = st.fields[i]
         tc = by_field.get(field)
-        if tc is None or tc.half_life != hl or tuple(tc.bounds.tolist()) != bounds:
+        if not _resumes(st, tc, bounds):
             levels.append(ThresholdColumns.zeros(n, bounds, hl))
             continue
         for r in np.flatnonzero(tc.bad_rows()).tolist():
@@ -1498,27 +1505,24 @@ class Engine:
         if st.threshold_at:
             if c.threshold_columns is not None:
                 levels, bad = _saved_levels(st, c.threshold_columns, c.n)
-                dropped = {i for i, _ in bad}
-                good = [i for i in range(c.n) if i not in dropped] if bad else []
             else:   # one map per series (a stream kept as objects wrote it)
-                per, good = [], []
+                per = []
                 for i, saved in enumerate(c.threshold_counts or [None] * c.n):
                     try:
                         per.append(restore_thresholds(st, saved))
-                        good.append(i)
                     except IncompatibleError as exc:
                         bad.append((i, str(exc)))
+                        per.append(st.new_thresholds())   # a place holder, dropped below
                 hl = st.cfg.half_life
                 levels = [ThresholdColumns.of([p[j] for p in per], b, hl)
                           for j, (_, b) in enumerate(st.threshold_at)]
             if bad:
-                kept = np.array(good, np.int64)
-                labels = [labels[i] for i in good]
+                kept = np.delete(kept, [i for i, _ in bad])
+                labels = [labels[i] for i in kept.tolist()]
                 moments, outliers = moments.take(kept), outliers[kept]
                 observations, version = observations[kept], version[kept]
                 last_update = last_update[kept]
-                if c.threshold_columns is not None:
-                    levels = [lv.take(kept) for lv in levels]
+                levels = [lv.take(kept) for lv in levels]
         refused = st.store.adopt_columns(labels, moments, observations, version,
                                          last_update, outliers, levels)
         st.store.freeze()
