@@ -16,7 +16,7 @@ from .errors import (
     TimeError,
     WeightError,
 )
-from .forgetting import HalfLife, sums_at
+from .forgetting import HalfLife, batch_aging, sums_at
 from .legs import Joined, Legs
 from .mixture import Mixture
 from .model_tail import nominal_rate, outlier_counts
@@ -71,6 +71,7 @@ __all__ = [
     "TimeError",
     "Volatility",
     "WeightError",
+    "batch_aging",
     "blob",
     "check_batch",
     "clean_batch",

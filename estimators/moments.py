@@ -11,6 +11,7 @@ import numpy as np
 
 from .errors import IncompatibleError
 from .forgetting import (
+    BatchAging,
     HalfLife,
     age_to,
     batch_exponent,
@@ -141,12 +142,14 @@ class Moments:
         b = check_batch(x, self.dim, weights, times)
         self._fold(b.x, b.weights, b.times)
 
-    def _fold(self, x: np.ndarray, w: np.ndarray | None, t: np.ndarray | None) -> None:
-        """Fold in rows already checked (the daemon's path)."""
+    def _fold(self, x: np.ndarray, w: np.ndarray | None, t: np.ndarray | None,
+              aging: BatchAging | None = None) -> None:
+        """Fold in rows already checked (the daemon's path; ``aging``: as
+        ``forgetting.take_batch`` takes it)."""
         n = x.shape[0]
         if n == 0:
             return
-        v = take_batch(self, n, t, w)
+        v = take_batch(self, n, t, w, aging)
         if n == 1:                # one row is its own mean, with no scatter
             wv = 1.0 if v is None else float(v[0])
             if wv > 0.0:

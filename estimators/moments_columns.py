@@ -379,13 +379,14 @@ class Folded(NamedTuple):
     the fold (``fold_rows``; None from ``fold_groups``), and the forgetting they
     applied, for estimators that share it (``threshold_columns.fold_counts``): each
     state's aging 2**g (None: none) and each row's weight times its own decay (None:
-    the weights as given)."""
+    the weights as given), and the factor 2**g itself (None: no aging)."""
 
     columns: MomentsColumns
     ok: np.ndarray
     distance: np.ndarray | None
     aging: np.ndarray | None = None
     decayed: np.ndarray | None = None
+    factor: np.ndarray | None = None
 
 
 def _powers_of_two(g: np.ndarray) -> np.ndarray:
@@ -394,24 +395,30 @@ def _powers_of_two(g: np.ndarray) -> np.ndarray:
     return np.array([2.0 ** v for v in g.tolist()]) if g.size else np.ones(0)
 
 
-def aging(W: np.ndarray, g: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def aging(W: np.ndarray, g: np.ndarray, ok: np.ndarray,
+          factor: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """The factor 2**g by which each state's stored sums age (``forgetting.scale_step``
     with the scale kept), and ``ok`` False where the aging would move the scale (the
     aged weight sum ``W`` would fall below 2**-100): those are left to the objects.
-    Shared by every estimator folded in columns. O(n)."""
+    Shared by every estimator folded in columns; ``factor``, when given, is the
+    factor another estimator of the same states already computed from the same g
+    (``Folded.factor``: one Python float power per state, not one per estimator).
+    O(n)."""
     aged = g != 0.0
     ok = ok & (~aged | (np.frexp(W)[1] + g > -LOG2_RANGE))
+    if factor is not None:
+        return factor, ok
     f = np.ones(g.shape[0])
     f[aged] = _powers_of_two(g[aged])
     return f, ok
 
 
 def _aged(W: np.ndarray, W2: np.ndarray, scatter: np.ndarray, g: np.ndarray,
-          ok: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """W, W2 and the scatter of each state aged by 2**g (``Moments._age``), and ``ok``
-    as ``aging`` gives it. O(n d**2)."""
+          ok: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """W, W2 and the scatter of each state aged by 2**g (``Moments._age``), ``ok`` as
+    ``aging`` gives it, and the factor. O(n d**2)."""
     f, ok = aging(W, g, ok)
-    return W * f, W2 * (f * f), scatter * f[:, None, None], ok
+    return W * f, W2 * (f * f), scatter * f[:, None, None], ok, f
 
 
 def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
@@ -477,7 +484,7 @@ def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
     else:
         dist = np.full(n, np.nan)
     clock, has_clock = cols.clock, cols.has_clock
-    g = None
+    g = factor = None
     v = weights
     if hl is None:
         if times is not None:
@@ -496,7 +503,7 @@ def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
         v = rf if weights is None else weights * rf
         clock, has_clock = new_clock, np.ones(n, bool)
     if g is not None:
-        W, W2, scatter, ok = _aged(W, W2, scatter, g, ok)
+        W, W2, scatter, ok, factor = _aged(W, W2, scatter, g, ok)
     wb = np.ones(n) if v is None else v
     ok &= (wb >= 2.0 ** -100) & (wb <= 2.0 ** 100)
     total = W + wb
@@ -518,7 +525,7 @@ def fold_rows(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
     ok &= (total >= 2.0 ** -100) & (total <= 2.0 ** 100)
     out = MomentsColumns(dim, hl, has_clock, clock, cols.count + 1, total, W2, mean, scatter,
                          cols.E, lo)
-    return Folded(out, ok, dist, g, v)
+    return Folded(out, ok, dist, g, v, factor)
 
 
 def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
@@ -582,7 +589,7 @@ def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
     clock, has_clock = cols.clock, cols.has_clock
     ok = cols.E == 0
     v = weights
-    g = None
+    g = factor = None
     if hl is None:
         if times is not None:
             with np.errstate(invalid="ignore"):
@@ -606,7 +613,7 @@ def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
         v = rf if weights is None else weights * rf
         clock, has_clock = new_clock, np.ones(n, bool)
     if g is not None:
-        W, W2, scatter, ok = _aged(W, W2, scatter, g, ok)
+        W, W2, scatter, ok, factor = _aged(W, W2, scatter, g, ok)
     base = x[starts]
     xc = x - base[group]
     if v is None:
@@ -648,7 +655,7 @@ def fold_groups(cols: MomentsColumns, x: np.ndarray, weights: np.ndarray | None,
         np.where(keep[:, None, None], scatter, new_scatter), cols.E,
         np.where(keep[:, None], lo, new_lo))
     ok &= keep | ((total >= 2.0 ** -100) & (total <= 2.0 ** 100))
-    return Folded(out, ok, None, g, v)
+    return Folded(out, ok, None, g, v, factor)
 
 
 def mahalanobis_rows(cols: MomentsColumns, x: np.ndarray,

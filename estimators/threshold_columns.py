@@ -150,7 +150,8 @@ class ThresholdColumns(NamedTuple):
 
 def fold_counts(cols: ThresholdColumns, x: np.ndarray, weights: np.ndarray | None,
                 decayed: np.ndarray | None, g: np.ndarray | None,
-                starts: np.ndarray | None = None) -> tuple[ThresholdColumns, np.ndarray]:
+                starts: np.ndarray | None = None,
+                factor: np.ndarray | None = None) -> tuple[ThresholdColumns, np.ndarray]:
     """Fold checked values into each of n states at once, as ``Thresholds._fold`` does.
 
     Parameters
@@ -168,6 +169,8 @@ def fold_counts(cols: ThresholdColumns, x: np.ndarray, weights: np.ndarray | Non
         Each state's aging, 2**g, before the rows join (None: no aging).
     starts : ndarray (n,) or None
         Where each state's rows begin in ``x`` (None: one row per state, m = n).
+    factor : ndarray (n,) or None
+        2**g as the moments' fold computed it (``Folded.factor``; None: computed here).
 
     Returns
     -------
@@ -180,29 +183,30 @@ def fold_counts(cols: ThresholdColumns, x: np.ndarray, weights: np.ndarray | Non
     Per state: the counters add sum_i w_i [x_i <= b_j], sum_i w_i and sum_i w_i x_i;
     the decayed sums age by 2**g, then add sum_i v_i and sum_i v_i [x_i > b_j].
     With one row per state the same IEEE operations as the object's, so the bits
-    agree; with several, segment sums (another order of additions). O(m k).
+    agree; with several, segment sums (another order of additions). The comparisons
+    and products run bound by bound over all rows (k rows of m): numpy's loops over
+    a short last axis of k cost several times more per element. O(m k).
     """
-    b = cols.bounds
-    le = x[:, None] <= b                      # (m, k)
+    le = np.greater_equal.outer(cols.bounds, x)   # (k, m): x_i <= b_j
     w = np.ones(x.shape[0]) if weights is None else weights
     v = w if decayed is None else decayed
-    counted = le * w[:, None]
-    below = counted if decayed is None else le * v[:, None]
+    counted = le * w
+    below = counted if decayed is None else le * v
     total, vx = w, w * x
     if starts is not None:
-        counted, total, vx = (np.add.reduceat(a, starts) for a in (counted, w, vx))
-        below = counted if decayed is None else np.add.reduceat(below, starts)
+        counted, total, vx = (np.add.reduceat(a, starts, axis=-1) for a in (counted, w, vx))
+        below = counted if decayed is None else np.add.reduceat(below, starts, axis=1)
         v = total if decayed is None else np.add.reduceat(v, starts)
     ok = cols.E == 0
     W, above = cols.W, cols.above
     if g is not None:
-        f, ok = aging(W, g, ok)
+        f, ok = aging(W, g, ok, factor)
         W, above = W * f, above * f[:, None]
     cumulative = cols.cumulative.copy()
-    cumulative[:, :-1] += counted
+    cumulative[:, :-1] += counted.T
     cumulative[:, -1] += total
     out = cols._replace(cumulative=cumulative, value_sum=cols.value_sum + vx, W=W + v,
-                        above=above + (v[:, None] - below))
+                        above=above + (v - below).T)
     return out, ok
 
 

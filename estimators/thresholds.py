@@ -20,13 +20,28 @@ import math
 import numpy as np
 
 from .errors import IncompatibleError
-from .forgetting import HalfLife, age_to, copy_state, ldexp, merge_clocks, scale_step, take_batch
+from .forgetting import (
+    BatchAging,
+    HalfLife,
+    age_to,
+    copy_state,
+    ldexp,
+    merge_clocks,
+    scale_step,
+    take_batch,
+)
 from .validation import check_batch, check_saved, saved_exponent
 
 __all__ = ["Thresholds", "mixture_exceedance", "normal_exceedance"]
 
 _SQRT2 = math.sqrt(2.0)
-_BLOCK = 16384   # rows per block of comparisons: k x 16384 converted floats in cache
+_CELLS = 5 * 32768  # float64 cells per block of comparisons (1.3 MB)
+
+
+def _block_rows(k: int) -> int:
+    """Rows per block of ``_block_sums`` for k bounds: its (k + 2) x rows matrix holds
+    at most ``_CELLS`` floats (the memory of a fold is bounded, whatever the batch)."""
+    return max(1024, _CELLS // (k + 2))
 
 
 def _check_bounds(bounds: object) -> np.ndarray:
@@ -45,22 +60,27 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray,
     """For each weight vector u: (sum_i u_i [x_i <= b_j] for each bound b_j (k,),
     sum_i u_i, sum_i u_i x_i).
 
-    A (k, block) mask times the block of each u: k comparisons and a product a row
-    beat a binary search (numpy's searchsorted is a branchy 10 ns a row, bincount
-    2 ns); each block's values, weights and mask are read once and stay in cache,
-    and the mask is converted to floats once for two products. O(n k)."""
-    sums = [[0.0, 0.0, 0.0] for _ in weights]
-    for i in range(0, x.shape[0], _BLOCK):
-        xb = x[i:i + _BLOCK]
-        le = np.greater_equal.outer(bounds, xb)
-        if len(weights) > 1:
-            le = le.astype(np.float64)
+    Block by block, one matrix of k + 2 rows: the k comparisons written as 0.0 and
+    1.0, a row of ones and the values; one matrix-vector product per weight vector
+    then gives all k + 2 sums. That beats a binary search (numpy's searchsorted is a
+    branchy 10 ns a row, bincount 2 ns) and separate products, sum and dot (measured:
+    3.8 against 4.7 ns a row for one weight vector, 5.2 against 7.3 for two, on
+    131,000 rows and three bounds). O(n k)."""
+    k = bounds.size
+    n = x.shape[0]
+    rows = _block_rows(k)
+    a = np.empty((k + 2, min(n, rows)))
+    a[k] = 1.0
+    column = bounds[:, None]
+    sums = [np.zeros(k + 2) for _ in weights]
+    for i in range(0, n, rows):
+        xb = x[i:i + rows]
+        part = a[:, :xb.shape[0]]
+        np.greater_equal(column, xb, out=part[:k], casting="unsafe")
+        part[k + 1] = xb
         for s, u in zip(sums, weights, strict=True):
-            ub = u[i:i + _BLOCK]
-            s[0] = s[0] + le @ ub
-            s[1] += float(ub.sum())
-            s[2] += float(ub @ xb)
-    return [tuple(s) for s in sums]
+            s += part @ u[i:i + rows]
+    return [(s[:k], float(s[k]), float(s[k + 1])) for s in sums]
 
 
 class Thresholds:
@@ -118,12 +138,14 @@ class Thresholds:
         b = check_batch(x, 1, weights, times)
         self._fold(b.x[:, 0], b.weights, b.times)
 
-    def _fold(self, x: np.ndarray, w: np.ndarray | None, t: np.ndarray | None) -> None:
-        """Fold in checked values (n,) (the daemon's path)."""
+    def _fold(self, x: np.ndarray, w: np.ndarray | None, t: np.ndarray | None,
+              aging: BatchAging | None = None) -> None:
+        """Fold in checked values (n,) (the daemon's path; ``aging``: as
+        ``forgetting.take_batch`` takes it)."""
         n = x.shape[0]
         if n == 0:
             return
-        v = take_batch(self, n, t, w)
+        v = take_batch(self, n, t, w, aging)
         self._rebase(0)     # new rows weigh about 1: the old sums join them in plain units
         if w is None:       # unit weights: a popcount per bound
             counted = (np.array([np.count_nonzero(x <= b) for b in self.bounds.tolist()],

@@ -59,6 +59,15 @@ def _times(rng, hl, ms, m):
     return np.sort(rng.uniform(start, start + 40.0, m))
 
 
+def _same_with_the_moments_factor(new, cols, x, w, res, starts=None):
+    """The factor 2**g the moments' fold hands on (``Folded.factor``) gives the bits
+    fold_counts computes for itself, and there is one exactly when there is aging."""
+    assert (res.factor is None) == (res.aging is None)
+    again, ok = fold_counts(cols, x, w, res.decayed, res.aging, starts, res.factor)
+    for name in ("cumulative", "value_sum", "W", "above", "E"):
+        np.testing.assert_array_equal(getattr(again, name), getattr(new, name))
+
+
 @_each_kind
 def test_one_row_per_state_is_the_objects_bit_for_bit(hl, weighted):
     rng = np.random.default_rng(3)
@@ -71,6 +80,7 @@ def test_one_row_per_state_is_the_objects_bit_for_bit(hl, weighted):
     res = fold_rows(MomentsColumns.of(ms, 1, hl), x[:, None], w, t)
     new, ok = fold_counts(cols, x, w, res.decayed, res.aging)
     assert ok.all() and res.ok.all()
+    _same_with_the_moments_factor(new, cols, x, w, res)
     for i, th in enumerate(ts):
         th._fold(x[i:i + 1], None if w is None else w[i:i + 1],
                  None if t is None else t[i:i + 1])
@@ -94,9 +104,10 @@ def test_several_rows_per_state_agree_to_rounding(hl, weighted):
     if hl is not None and not hl.by_count:
         t = np.concatenate([np.sort(rng.uniform(60.0, 90.0, c)) for c in counts])
     res = fold_groups(MomentsColumns.of(ms, 1, hl), x[:, None], w, t, counts)
-    new, ok = fold_counts(ThresholdColumns.of(ts, BOUNDS, hl), x, w, res.decayed,
-                          res.aging, starts)
+    cols = ThresholdColumns.of(ts, BOUNDS, hl)
+    new, ok = fold_counts(cols, x, w, res.decayed, res.aging, starts)
     assert ok.all()
+    _same_with_the_moments_factor(new, cols, x, w, res, starts)
     for i, th in enumerate(ts):
         p = slice(starts[i], starts[i] + counts[i])
         th._fold(x[p], None if w is None else w[p], None if t is None else t[p])

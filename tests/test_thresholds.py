@@ -14,7 +14,14 @@ import msgpack
 import numpy as np
 import pytest
 from conftest import need_module
-from sigmad.estimators import EstimatorError, HalfLife, IncompatibleError, Mixture
+from sigmad.estimators import (
+    EstimatorError,
+    HalfLife,
+    IncompatibleError,
+    Mixture,
+    Moments,
+    batch_aging,
+)
 from sigmad.estimators.model_tail import (
     chi2_survival,
     erfc,
@@ -23,8 +30,8 @@ from sigmad.estimators.model_tail import (
     tail_probability,
 )
 from sigmad.estimators.thresholds import (
-    _BLOCK,
     Thresholds,
+    _block_rows,
     mixture_exceedance,
     normal_exceedance,
 )
@@ -90,14 +97,56 @@ def test_observed_share_equals_explicit_decayed_weights_by_count():
 
 
 
+def test_many_bounds_over_several_blocks_equal_numpy_exact_counts():
+    # 32 bounds (the most a field may have) make the blocks shorter; the counts over
+    # three of them and a part; reference: numpy's exact weighted sums per bound
+    bounds = np.linspace(60.0, 600.0, 32)
+    n = 3 * _block_rows(32) + 55
+    x, w, _ = sample(n, seed=11)
+    x[::97] = bounds[np.arange(x[::97].size) % 32]   # values on the bounds count as <=
+    t = Thresholds(bounds)
+    t.update(x, weights=w)
+    np.testing.assert_allclose(t.cumulative[:-1], [w[x <= b].sum() for b in bounds],
+                               rtol=1e-12)
+    assert t.total == pytest.approx(float(w.sum()), rel=1e-12)
+    t1 = Thresholds(bounds)
+    t1.update(x)
+    assert t1.cumulative.tolist() == [float(np.count_nonzero(x <= b)) for b in bounds] + [n]
+
+
+@pytest.mark.parametrize("weighted", [False, True], ids=["unit", "weighted"])
+@pytest.mark.parametrize("forgetting", [None, "seconds", "observations"])
+def test_one_aging_shared_with_the_moments_gives_the_same_bits(weighted, forgetting):
+    # the daemon computes a batch's aging once for a series' moments and thresholds
+    # (forgetting.batch_aging); each estimator folding on its own is the reference
+    x, w, times = sample(400, seed=12)
+    w = w if weighted else None
+    h = HalfLife(90.0, forgetting) if forgetting else None
+    t = times if forgetting == "seconds" else None
+    pairs = [(Moments(1, h), Thresholds(BOUNDS, h)) for _ in range(2)]
+    for i in range(0, 400, 100):
+        rows = slice(i, i + 100)
+        xs, ws, ts = x[rows], None if w is None else w[rows], None if t is None else t[rows]
+        alone, shared = pairs
+        alone[0]._fold(xs[:, None], ws, ts)
+        alone[1]._fold(xs, ws, ts)
+        aging = batch_aging(h, shared[0].clock, 100, ts, ws)
+        shared[0]._fold(xs[:, None], ws, ts, aging)
+        shared[1]._fold(xs, ws, ts, aging)
+    (m0, t0), (m1, t1) = pairs
+    assert m1.to_dict() == m0.to_dict() and t1.to_dict() == t0.to_dict()
+    assert t1.clock == t0.clock == m0.clock and t1.count == t0.count == 400
+
+
 @pytest.mark.parametrize("weighted", [False, True], ids=["unit", "weighted"])
 @pytest.mark.parametrize("forgetting", [None, "seconds", "observations"])
 def test_a_batch_of_several_blocks_equals_explicit_numpy_sums(weighted, forgetting):
     # one batch longer than two blocks of comparisons, with values on the bounds at the
     # block edges; reference: numpy's exact counts and explicit numpy sums of w * 2**(-age/h)
-    n = 2 * _BLOCK + 777
+    block = _block_rows(len(BOUNDS))
+    n = 2 * block + 777
     x, w, times = sample(n, seed=7)
-    for i in (0, _BLOCK - 1, _BLOCK, 2 * _BLOCK, n - 1):
+    for i in (0, block - 1, block, 2 * block, n - 1):
         x[i] = BOUNDS[i % len(BOUNDS)]
     w = w if weighted else None
     h = HalfLife(200.0, forgetting) if forgetting else None

@@ -29,6 +29,7 @@ from sigmad.daemon.engine.snapshot import SeriesBlock
 from sigmad.estimators import (
     MomentsColumns,
     ThresholdColumns,
+    batch_aging,
     fold_counts,
     fold_groups,
     fold_rows,
@@ -407,7 +408,8 @@ class ColumnStore:
         decayed = None if res.decayed is w else res.decayed
         levels = []
         for (i, _), lv in zip(self.st.threshold_at, self.levels, strict=True):
-            new, fine = fold_counts(lv.take(ids), x[:, i], w, decayed, res.aging, starts)
+            new, fine = fold_counts(lv.take(ids), x[:, i], w, decayed, res.aging, starts,
+                                    res.factor)
             levels.append(new)
             ok = ok & fine
         return levels, ok
@@ -453,11 +455,14 @@ class ColumnStore:
             dist = m.mahalanobis(x, cfg.correction)
             for j, k in enumerate(cfg.outlier_sigmas):
                 self.outliers[r, j] += int(np.count_nonzero(dist > k))
-        ths = [lv.state(r, m.clock, m.count) for lv in self.levels]
-        m._fold(x, w, t)
+        aging, ths = None, []
+        if self.levels:   # the series' estimators share its clock: age the rows once
+            aging = batch_aging(m.half_life, m.clock, x.shape[0], t, w)
+            ths = [lv.state(r, m.clock, m.count) for lv in self.levels]
+        m._fold(x, w, t, aging)
         self.moments.set_state(r, m)
         for (i, _), lv, th in zip(st.threshold_at, self.levels, ths, strict=True):
-            th._fold(x[:, i], w, t)
+            th._fold(x[:, i], w, t, aging)
             lv.set_state(r, th)
         self.observations[r] += x.shape[0]
         self.version[r] += 1
