@@ -46,6 +46,32 @@ def _stack(arrays: list[np.ndarray], shape: tuple[int, ...]) -> np.ndarray:
     return np.concatenate(arrays).astype(np.float64, copy=False).reshape(shape)
 
 
+def take_rows(a: np.ndarray, idx: np.ndarray | slice) -> np.ndarray:
+    """``a[idx]`` for the rows ``idx`` of ``a`` (an index array: a copy; a slice: a
+    view). ``ndarray.take`` for an index array: numpy's fancy indexing of rows of a
+    few elements costs about ten times as much (21 against 2.3 us for 1,000 rows of
+    2 x 2 here). O(len(idx) row)."""
+    if isinstance(idx, slice) or a.ndim == 1 or idx.dtype == bool:
+        return a[idx]
+    return a.take(idx, axis=0)
+
+
+def put_rows(a: np.ndarray, idx: np.ndarray | slice, values: np.ndarray) -> None:
+    """``a[idx] = values`` for the rows ``idx`` of ``a``, in place, the same bytes where
+    numpy's row assignment puts them. Rows of more than one element of a C-contiguous
+    array are written each as one opaque item of their bytes: numpy's own row
+    assignment costs more there (36 against 22 us for 1,000 rows of four floats
+    here; for rows of one element it is the faster, and is kept). O(len(idx) row)."""
+    if isinstance(idx, slice) or a.ndim == 1 or a.strides[0] <= a.itemsize \
+            or idx.dtype == bool or not idx.shape[0] or not a.flags.c_contiguous \
+            or values.shape != (idx.shape[0], *a.shape[1:]):
+        a[idx] = values
+        return
+    item = np.dtype((np.void, a.strides[0]))
+    rows = np.ascontiguousarray(values, dtype=a.dtype).reshape(idx.shape[0], -1)
+    a.reshape(a.shape[0], -1).view(item)[:, 0][idx] = rows.view(item)[:, 0]
+
+
 def blob(a: np.ndarray, dtype: np.dtype) -> bytes:
     """The bytes of ``a`` as ``dtype`` (little-endian for saved forms), C order."""
     return np.ascontiguousarray(a, dtype=dtype).tobytes()
@@ -174,15 +200,13 @@ class MomentsColumns(NamedTuple):
 
     def take(self, idx: np.ndarray | slice) -> MomentsColumns:
         """The rows ``idx`` (an index array: copies; a slice: views). O(len(idx) d**2)."""
-        return self._replace(has_clock=self.has_clock[idx], clock=self.clock[idx],
-                             count=self.count[idx], W=self.W[idx], W2=self.W2[idx],
-                             mean=self.mean[idx], scatter=self.scatter[idx], E=self.E[idx],
-                             lo=self.lo[idx])
+        return self._replace(**{name: take_rows(getattr(self, name), idx)
+                                for name in _ARRAYS})
 
     def put(self, idx: np.ndarray | slice, other: MomentsColumns) -> None:
         """Overwrite rows ``idx`` with the rows of ``other`` (in place). O(len(idx) d**2)."""
         for name in _ARRAYS:
-            getattr(self, name)[idx] = getattr(other, name)
+            put_rows(getattr(self, name), idx, getattr(other, name))
 
     def copy(self, n: int | None = None) -> MomentsColumns:
         """A copy of the first ``n`` rows (all: None), sharing no memory. O(n d**2)."""

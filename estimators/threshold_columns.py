@@ -19,7 +19,7 @@ import numpy as np
 
 from .errors import IncompatibleError
 from .forgetting import HalfLife
-from .moments_columns import aging, blob, from_blob
+from .moments_columns import aging, blob, from_blob, put_rows, take_rows
 from .thresholds import Thresholds, _check_bounds, _upper
 
 __all__ = ["ThresholdColumns", "fold_counts", "normal_exceedance_rows"]
@@ -65,12 +65,13 @@ class ThresholdColumns(NamedTuple):
 
     def take(self, idx: np.ndarray | slice) -> ThresholdColumns:
         """The rows ``idx`` (an index array: copies; a slice: views). O(len(idx) k)."""
-        return self._replace(**{name: getattr(self, name)[idx] for name in _ARRAYS})
+        return self._replace(**{name: take_rows(getattr(self, name), idx)
+                                for name in _ARRAYS})
 
     def put(self, idx: np.ndarray | slice, other: ThresholdColumns) -> None:
         """Overwrite rows ``idx`` with the rows of ``other`` (in place). O(len(idx) k)."""
         for name in _ARRAYS:
-            getattr(self, name)[idx] = getattr(other, name)
+            put_rows(getattr(self, name), idx, getattr(other, name))
 
     def copy(self, n: int | None = None) -> ThresholdColumns:
         """A copy of the first ``n`` rows (all: None), sharing no memory. O(n k)."""

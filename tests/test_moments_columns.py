@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from conftest import need_module
 from sigmad.estimators import HalfLife, IncompatibleError, Moments
-from sigmad.estimators.moments_columns import MomentsColumns
+from sigmad.estimators.moments_columns import MomentsColumns, put_rows, take_rows
 
 HL = HalfLife(50.0)
 
@@ -172,3 +172,32 @@ def test_the_saved_form_is_little_endian_blobs():
     # reference: IEEE 754 binary64 of 1.5, little-endian (common practice: struct.pack("<d"))
     assert d["mean"] == bytes.fromhex("000000000000f83f")
     assert d["count"] == (2).to_bytes(8, "little")
+
+
+@pytest.mark.parametrize("shape", [(30,), (30, 1), (30, 4), (30, 2, 2), (30, 3, 0)])
+@pytest.mark.parametrize("which", ["sorted", "repeated", "empty", "mask", "slice"])
+def test_rows_taken_and_put_are_numpys_fancy_indexing_byte_for_byte(shape, which):
+    # reference: numpy's own a[idx] and a[idx] = values; compared through tobytes so
+    # that NaN payloads and -0.0 count, with a repeated row (the last write wins)
+    rng = np.random.default_rng(2)
+    a = rng.normal(size=shape)
+    a.reshape(-1)[:min(3, a.size)] = [np.nan, -0.0, np.inf][:min(3, a.size)]
+    idx = {"sorted": np.array([0, 3, 4, 17, 29]), "repeated": np.array([5, 2, 5, 9]),
+           "empty": np.array([], np.int64), "mask": rng.random(30) < 0.4,
+           "slice": slice(4, 11)}[which]
+    want = a[idx]
+    assert take_rows(a, idx).tobytes() == want.tobytes()
+    assert take_rows(a, idx).shape == want.shape
+    values = rng.normal(size=want.shape)
+    ours, theirs = a.copy(), a.copy()
+    put_rows(ours, idx, values)
+    theirs[idx] = values
+    assert ours.tobytes() == theirs.tobytes()
+
+
+def test_rows_put_into_a_non_contiguous_array_fall_back_to_numpy():
+    # a strided view (every other row): the opaque-row write needs C order
+    base = np.zeros((20, 3))
+    view = base[::2]
+    put_rows(view, np.array([1, 4]), np.ones((2, 3)))
+    assert base[[2, 8]].tolist() == [[1.0] * 3] * 2 and base.sum() == 6.0
