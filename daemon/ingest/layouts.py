@@ -268,8 +268,10 @@ def _decode(raw: np.ndarray, code: np.ndarray) -> np.ndarray:
         r = raw[sel]
         if c == F8:
             out[sel] = r.view(np.float64)
-        elif c == F4:
-            out[sel] = (r >> np.uint64(32)).astype(np.uint32).view(np.float32)
+        elif c == F4:   # a signalling NaN sent as float32 warns as it widens; the
+            # screening rejects it as not finite, named, like any other NaN
+            with np.errstate(invalid="ignore"):
+                out[sel] = (r >> np.uint64(32)).astype(np.uint32).view(np.float32)
         elif c in _UNSIGNED:
             out[sel] = r >> np.uint64(64 - 8 * _WIDTH[c])
         elif c in _SIGNED_VIEW:
