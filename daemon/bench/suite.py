@@ -674,7 +674,7 @@ def run(quick: bool = False, out=sys.stderr) -> list[Row]:
             ("binary batches", lambda: bench_batches(10_000)),
             ("joined legs", lambda: bench_legs(100_000)),
             ("mixture", lambda: bench_mixture(2000)),
-            ("thresholds", lambda: bench_thresholds(200_000, 2000, pairs=11)),
+            ("thresholds", lambda: bench_thresholds(200_000, 2000, pairs=21)),
             ("scrape", lambda: bench_scrape(10_000)),
             ("many series", lambda: bench_scaling((1_000, 10_000, 100_000), 300_000)),
             ("memory", lambda: bench_memory(10_000, 50_000, 100_000, (2_000, 10_000))),
