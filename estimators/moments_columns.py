@@ -211,7 +211,9 @@ class MomentsColumns(NamedTuple):
     def copy(self, n: int | None = None) -> MomentsColumns:
         """A copy of the first ``n`` rows (all: None), sharing no memory. O(n d**2)."""
         part = slice(None) if n is None else slice(0, n)
-        return self._replace(**{name: getattr(self, name)[part].copy() for name in _ARRAYS})
+        # the fields after dim and half-life are the arrays (_ARRAYS), in order: built
+        # directly, without _replace's keywords (the freeze copies them every flush)
+        return MomentsColumns(self.dim, self.half_life, *[a[part].copy() for a in self[2:]])
 
     def resized(self, n: int) -> MomentsColumns:
         """The first min(n, self.n) rows in new arrays of n rows, the rest empty states

@@ -76,7 +76,9 @@ class ThresholdColumns(NamedTuple):
     def copy(self, n: int | None = None) -> ThresholdColumns:
         """A copy of the first ``n`` rows (all: None), sharing no memory. O(n k)."""
         part = slice(None) if n is None else slice(0, n)
-        return self._replace(**{name: getattr(self, name)[part].copy() for name in _ARRAYS})
+        # the fields after the bounds and half-life are the arrays (_ARRAYS), in order
+        return ThresholdColumns(self.bounds, self.half_life,
+                                *[a[part].copy() for a in self[2:]])
 
     def resized(self, n: int) -> ThresholdColumns:
         """The first min(n, self.n) rows in new arrays of n rows, the rest empty. O(n k)."""

@@ -201,3 +201,23 @@ def test_rows_put_into_a_non_contiguous_array_fall_back_to_numpy():
     view = base[::2]
     put_rows(view, np.array([1, 4]), np.ones((2, 3)))
     assert base[[2, 8]].tolist() == [[1.0] * 3] * 2 and base.sum() == 6.0
+
+
+def test_the_arrays_follow_the_shared_fields_in_the_order_copy_relies_on():
+    # copy() builds each kind positionally: its arrays must be the fields after the
+    # first two, in _ARRAYS order; a copy shares no memory and equals the original
+    from sigmad.estimators import ThresholdColumns
+    from sigmad.estimators import moments_columns as mc
+    from sigmad.estimators import threshold_columns as tc
+
+    assert MomentsColumns._fields[2:] == mc._ARRAYS
+    assert ThresholdColumns._fields[2:] == tc._ARRAYS
+    m = MomentsColumns.of(_states(2, 10)[0], 2, HL)
+    t = ThresholdColumns.zeros(10, [1.0, 2.0], HL)
+    for cols in (m, t):
+        for n in (None, 4):
+            got = cols.copy(n)
+            assert got[:2] == cols[:2]
+            for name in got._fields[2:]:
+                a, b = getattr(got, name), getattr(cols, name)[:n]
+                assert a.tobytes() == b.tobytes() and not np.shares_memory(a, b)
