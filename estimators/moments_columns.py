@@ -198,10 +198,12 @@ class MomentsColumns(NamedTuple):
                    np.zeros(n), np.zeros(n), np.zeros((n, dim)), np.zeros((n, dim, dim)),
                    np.zeros(n, np.int64), np.zeros((n, dim)))
 
+    # take and copy build the tuple by position: the fields after dim and half-life are
+    # the arrays (_ARRAYS), in order (cheaper than _replace's keywords every flush)
     def take(self, idx: np.ndarray | slice) -> MomentsColumns:
         """The rows ``idx`` (an index array: copies; a slice: views). O(len(idx) d**2)."""
-        return self._replace(**{name: take_rows(getattr(self, name), idx)
-                                for name in _ARRAYS})
+        return MomentsColumns(self.dim, self.half_life,
+                              *[take_rows(a, idx) for a in self[2:]])
 
     def put(self, idx: np.ndarray | slice, other: MomentsColumns) -> None:
         """Overwrite rows ``idx`` with the rows of ``other`` (in place). O(len(idx) d**2)."""
@@ -211,8 +213,6 @@ class MomentsColumns(NamedTuple):
     def copy(self, n: int | None = None) -> MomentsColumns:
         """A copy of the first ``n`` rows (all: None), sharing no memory. O(n d**2)."""
         part = slice(None) if n is None else slice(0, n)
-        # the fields after dim and half-life are the arrays (_ARRAYS), in order: built
-        # directly, without _replace's keywords (the freeze copies them every flush)
         return MomentsColumns(self.dim, self.half_life, *[a[part].copy() for a in self[2:]])
 
     def resized(self, n: int) -> MomentsColumns:

@@ -63,10 +63,12 @@ class ThresholdColumns(NamedTuple):
             out.set_state(i, t)
         return out
 
+    # take and copy build the tuple by position: the fields after the bounds and
+    # half-life are the arrays (_ARRAYS), in order
     def take(self, idx: np.ndarray | slice) -> ThresholdColumns:
         """The rows ``idx`` (an index array: copies; a slice: views). O(len(idx) k)."""
-        return self._replace(**{name: take_rows(getattr(self, name), idx)
-                                for name in _ARRAYS})
+        return ThresholdColumns(self.bounds, self.half_life,
+                                *[take_rows(a, idx) for a in self[2:]])
 
     def put(self, idx: np.ndarray | slice, other: ThresholdColumns) -> None:
         """Overwrite rows ``idx`` with the rows of ``other`` (in place). O(len(idx) k)."""
@@ -76,7 +78,6 @@ class ThresholdColumns(NamedTuple):
     def copy(self, n: int | None = None) -> ThresholdColumns:
         """A copy of the first ``n`` rows (all: None), sharing no memory. O(n k)."""
         part = slice(None) if n is None else slice(0, n)
-        # the fields after the bounds and half-life are the arrays (_ARRAYS), in order
         return ThresholdColumns(self.bounds, self.half_life,
                                 *[a[part].copy() for a in self[2:]])
 

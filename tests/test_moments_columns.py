@@ -203,9 +203,10 @@ def test_rows_put_into_a_non_contiguous_array_fall_back_to_numpy():
     assert base[[2, 8]].tolist() == [[1.0] * 3] * 2 and base.sum() == 6.0
 
 
-def test_the_arrays_follow_the_shared_fields_in_the_order_copy_relies_on():
-    # copy() builds each kind positionally: its arrays must be the fields after the
-    # first two, in _ARRAYS order; a copy shares no memory and equals the original
+def test_the_arrays_follow_the_shared_fields_in_the_order_take_and_copy_rely_on():
+    # take() and copy() build each kind by position: its arrays must be the fields
+    # after the first two, in _ARRAYS order; a copy shares no memory and equals the
+    # original, and take() gives numpy's rows
     from sigmad.estimators import ThresholdColumns
     from sigmad.estimators import moments_columns as mc
     from sigmad.estimators import threshold_columns as tc
@@ -221,3 +222,7 @@ def test_the_arrays_follow_the_shared_fields_in_the_order_copy_relies_on():
             for name in got._fields[2:]:
                 a, b = getattr(got, name), getattr(cols, name)[:n]
                 assert a.tobytes() == b.tobytes() and not np.shares_memory(a, b)
+        rows = np.array([7, 1, 1])
+        got = cols.take(rows)
+        for name in got._fields[2:]:
+            assert getattr(got, name).tobytes() == getattr(cols, name)[rows].tobytes()

@@ -429,15 +429,12 @@ class ColumnStore:
                     for j, k in enumerate(cfg.outlier_sigmas):
                         hits = np.add.reduceat(dist > k, starts) if dist.shape[0] else dist
                         self.outliers[ids[warm], j] += hits[warm]
-        if ok.all():   # the common case: every state folded here, no copy of them
-            self.moments.put(good, new)
-            for lv, folded in zip(self.levels, levels, strict=True):
-                lv.put(good, folded)
-        else:
+        if not ok.all():   # else (the common case) the folded states go in as they are
             at = np.flatnonzero(ok)
-            self.moments.put(good, new.take(at))
-            for lv, folded in zip(self.levels, levels, strict=True):
-                lv.put(good, folded.take(at))
+            new, levels = new.take(at), [folded.take(at) for folded in levels]
+        self.moments.put(good, new)
+        for lv, folded in zip(self.levels, levels, strict=True):
+            lv.put(good, folded)
         self.observations[good] += counts[ok]
         self.version[good] += 1
         self.last_update[good] = now
