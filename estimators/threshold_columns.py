@@ -20,7 +20,7 @@ import numpy as np
 from .errors import IncompatibleError
 from .forgetting import HalfLife
 from .moments_columns import aging, blob, from_blob, put_rows, take_rows
-from .thresholds import Thresholds, _check_bounds, _upper
+from .thresholds import Thresholds, _check_bounds, _saved_order, _upper
 
 __all__ = ["ThresholdColumns", "fold_counts", "normal_exceedance_rows"]
 
@@ -128,19 +128,21 @@ class ThresholdColumns(NamedTuple):
             raise IncompatibleError("half_life", d.get("half_life"), f"malformed: {exc}") \
                 from None
         k = bounds.size
-        return cls(bounds, half_life, from_blob(d, "cumulative", _LE_F8, (n, k + 1)),
+        cum = from_blob(d, "cumulative", _LE_F8, (n, k + 1))
+        fixed, ok = _saved_order(cum)   # out of order in the last bits: put in order
+        return cls(bounds, half_life, np.where(ok[:, None], fixed, cum),
                    from_blob(d, "value_sum", _LE_F8, (n,)), from_blob(d, "W", _LE_F8, (n,)),
                    from_blob(d, "above", _LE_F8, (n, k)),
                    from_blob(d, "scale_exponent", _LE_I8, (n,)))
 
     def bad_rows(self) -> np.ndarray:
         """Rows ``Thresholds.from_dict`` would refuse (n,): a count, sum or decayed sum
-        not finite, a count below 0 or below the one at a lower bound, a scale exponent
-        beyond +-2**40. O(n k)."""
+        not finite, a count below 0 or below the one at a lower bound by more than
+        rounding (``_saved_order``), a scale exponent beyond +-2**40. O(n k)."""
         cum = self.cumulative
         ok = np.isfinite(cum).all(axis=1) & np.isfinite(self.above).all(axis=1) \
             & np.isfinite(self.W) & np.isfinite(self.value_sum) & (cum >= 0.0).all(axis=1) \
-            & (np.diff(cum, axis=1) >= 0.0).all(axis=1) & (self.E >= -(1 << 40)) \
+            & _saved_order(cum)[1] & (self.E >= -(1 << 40)) \
             & (self.E <= 1 << 40)
         return ~ok
 

@@ -89,6 +89,26 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray,
     return [(s[:k], float(s[k])) for s in sums]
 
 
+def _cumulative(below: np.ndarray, total: float) -> np.ndarray:
+    """A batch's weights at or below each bound made non-decreasing and at most its
+    total. Sums of the same rows by different kernels (matrix rows of another
+    position, a product against a pairwise sum) can differ in the last bit, and a
+    histogram must stay cumulative: a state that is not would be refused on restore.
+    Each sum moves by at most its rounding. O(k)."""
+    return np.minimum.accumulate(np.minimum(below, total)[::-1])[::-1]
+
+
+def _saved_order(cum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Saved counts (..., k + 1) made non-decreasing along the last axis, and which
+    were within rounding of it: no count above a later one by more than 1e-9 of the
+    total. States saved before ``_cumulative`` kept every batch in order could be out
+    of it in the last bits; a larger disorder is damage. O(n k)."""
+    fixed = np.minimum.accumulate(cum[..., ::-1], axis=-1)[..., ::-1]
+    with np.errstate(invalid="ignore"):     # not finite: refused on that ground
+        ok = (cum - fixed <= 1e-9 * np.abs(cum[..., -1:])).all(axis=-1)
+    return fixed, ok
+
+
 class Thresholds:
     """Exact weighted counts at fixed bounds, and decayed shares above them.
 
@@ -164,11 +184,13 @@ class Thresholds:
                 (below, total), decayed = _block_sums(self.bounds, x, w)[0], None
             else:
                 (below, total), decayed = _block_sums(self.bounds, x, w, v)
+        below = _cumulative(below, total)
         self._cumulative[:-1] += below
         self._cumulative[-1] += total
         self.value_sum += value_sum
         if decayed is not None:
             below, total = decayed
+            below = _cumulative(below, total)
         self.W += total
         self._above += total - below
 
@@ -268,10 +290,10 @@ class Thresholds:
                                     f"must hold {k + 1} counts and {k} decayed sums")
         if not (np.isfinite(cum).all() and np.isfinite(above).all()
                 and math.isfinite(new.W) and math.isfinite(new.value_sum)
-                and new.count >= 0 and (cum >= 0.0).all() and (np.diff(cum) >= 0.0).all()):
+                and new.count >= 0 and (cum >= 0.0).all() and _saved_order(cum)[1]):
             raise IncompatibleError("thresholds", "counts", "must be finite, >= 0 and "
                                     "cumulative")
-        new._cumulative, new._above = cum, above
+        new._cumulative, new._above = _saved_order(cum)[0], above
         return new
 
     def __repr__(self) -> str:

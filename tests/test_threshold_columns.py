@@ -145,6 +145,23 @@ def test_take_put_resize_and_states_round_trip():
             ts[i].to_dict()
 
 
+def test_saved_rows_out_of_order_in_the_last_bits_restore_and_real_disorder_is_bad():
+    # as Thresholds.from_dict: a count a few ulps above a later one (saved before each
+    # batch's counts were kept in order) is put in order; a larger one is a bad row
+    rng = np.random.default_rng(4)
+    _, ts = _states(rng, 3, None)
+    d = ThresholdColumns.of(ts, BOUNDS, None).to_dict()
+    cols = ThresholdColumns.from_dict(d)
+    cum = cols.cumulative.copy()
+    cum[0, 2] = np.nextafter(cum[0, 3], np.inf)          # last bit
+    cum[1, 0] = cum[1, 1] * (1 + 1e-6)                   # damage
+    d = cols._replace(cumulative=cum).to_dict()
+    again = ThresholdColumns.from_dict(d)
+    assert again.bad_rows().tolist() == [False, True, False]
+    assert again.cumulative[0].tolist() == cum[0, :2].tolist() + [cum[0, 3]] * 2
+    assert again.cumulative[2].tolist() == cols.cumulative[2].tolist()
+
+
 def test_normal_exceedance_rows_is_normal_exceedance():
     means = [10.0, 0.0, 5.0, math.nan, 3.0]
     variances = [4.0, 0.0, -1.0, 1.0, 1e-300]
