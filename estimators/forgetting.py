@@ -173,6 +173,21 @@ class BatchAging(NamedTuple):
     decayed: np.ndarray | None
 
 
+class BatchSums(NamedTuple):
+    """A batch's sums as one estimator of a series computed them, for the others to
+    take instead of computing them again: the rows' own weights summed (undecayed, in
+    plain units; the row count for unit weights), the batch's first row, and the
+    weighted sums of each field's distance from it."""
+
+    weight: float
+    base: np.ndarray
+    about: np.ndarray
+
+    def field(self, i: int) -> tuple[float, float]:
+        """(sum_i w_i, sum_i w_i x_i) of field i. O(1)."""
+        return self.weight, float(self.about[i] + self.base[i] * self.weight)
+
+
 def batch_aging(half_life: HalfLife | None, clock: float | None, n: int,
                 times: np.ndarray | None, weights: np.ndarray | None) -> BatchAging:
     """``advance``, with the rows' effective weights: what every estimator of one

@@ -12,6 +12,7 @@ import numpy as np
 from .errors import IncompatibleError
 from .forgetting import (
     BatchAging,
+    BatchSums,
     HalfLife,
     age_to,
     batch_exponent,
@@ -143,12 +144,15 @@ class Moments:
         self._fold(b.x, b.weights, b.times)
 
     def _fold(self, x: np.ndarray, w: np.ndarray | None, t: np.ndarray | None,
-              aging: BatchAging | None = None) -> None:
+              aging: BatchAging | None = None) -> BatchSums | None:
         """Fold in rows already checked (the daemon's path; ``aging``: as
-        ``forgetting.take_batch`` takes it)."""
+        ``forgetting.take_batch`` takes it). Returns the batch's sums when they are of
+        the rows' own weights (no decay within the batch, no rescaling) and it had
+        more than one row: what the series' thresholds count (``Thresholds._fold``'s
+        ``sums``); else None."""
         n = x.shape[0]
         if n == 0:
-            return
+            return None
         v = take_batch(self, n, t, w, aging)
         if n == 1:                # one row is its own mean, with no scatter
             wv = 1.0 if v is None else float(v[0])
@@ -156,14 +160,15 @@ class Moments:
                 eb = 0 if 2.0 ** -100 <= wv <= 2.0 ** 100 else rescale_exponent(wv)
                 wv = math.ldexp(wv, -eb) if eb else wv
                 self._combine(wv, wv * wv, x[0], None, None, eb)
-            return
+            return None
         # shifted by the first row (Chan, Golub & LeVeque): constant data is exactly
         # constant, and an offset costs no digits of the batch mean
         xc = x - x[0]
         eb = 0
         if v is None:
             wb, w2b = float(n), float(n)
-            shift = xc.mean(axis=0)
+            about = xc.sum(axis=0)
+            shift = about / n     # the bits of xc.mean(axis=0): its sum over n
             xc -= shift
             cb = xc.T @ xc
         else:
@@ -172,12 +177,14 @@ class Moments:
                 v = np.ldexp(v, -eb)
             wb = float(v.sum())
             if not wb > 0.0:      # every row has decayed to nothing
-                return
+                return None
             w2b = float(v @ v)
-            shift = (v @ xc) / wb
+            about = v @ xc
+            shift = about / wb
             xc -= shift
             cb = (xc.T * v) @ xc
         self._combine(wb, w2b, x[0], shift, cb, eb)
+        return BatchSums(wb, x[0], about) if v is w and not eb else None
 
     def _combine(self, wb: float, w2b: float, base: np.ndarray, shift: np.ndarray | None,
                  cb: np.ndarray | None, eb: int) -> None:

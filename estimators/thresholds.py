@@ -56,10 +56,10 @@ def _check_bounds(bounds: object) -> np.ndarray:
     return b
 
 
-def _block_sums(bounds: np.ndarray, x: np.ndarray,
-                *weights: np.ndarray) -> list[tuple[np.ndarray, float]]:
+def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray,
+                total: bool = True) -> list[tuple[np.ndarray, float | None]]:
     """For each weight vector u: (sum_i u_i [x_i <= b_j] for each bound b_j (k,),
-    sum_i u_i).
+    sum_i u_i, or None without ``total``).
 
     Block by block, one matrix of k + 1 rows: the k comparisons written as 0.0 and
     1.0, then a row of ones; one matrix-vector product per weight vector then gives
@@ -73,11 +73,11 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray,
     k = bounds.size
     n = x.shape[0]
     rows = _block_rows(k)
-    a = np.empty((k + 1, min(n, rows)))
-    a[k] = 1.0
+    a = np.empty((k + total, min(n, rows)))
+    a[k:] = 1.0
     below = np.empty((k, min(n, rows)), dtype=bool)
     column = bounds[:, None]
-    sums = [np.zeros(k + 1) for _ in weights]
+    sums = [np.zeros(k + total) for _ in weights]
     for i in range(0, n, rows):
         xb = x[i:i + rows]
         m = xb.shape[0]
@@ -86,7 +86,7 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray,
         part[:k] = mask.view(np.uint8)
         for s, u in zip(sums, weights, strict=True):
             s += part @ u[i:i + rows]
-    return [(s[:k], float(s[k])) for s in sums]
+    return [(s[:k], float(s[k]) if total else None) for s in sums]
 
 
 def _cumulative(below: np.ndarray, total: float) -> np.ndarray:
@@ -165,25 +165,31 @@ class Thresholds:
         self._fold(b.x[:, 0], b.weights, b.times)
 
     def _fold(self, x: np.ndarray, w: np.ndarray | None, t: np.ndarray | None,
-              aging: BatchAging | None = None) -> None:
+              aging: BatchAging | None = None,
+              sums: tuple[float, float] | None = None) -> None:
         """Fold in checked values (n,) (the daemon's path; ``aging``: as
-        ``forgetting.take_batch`` takes it)."""
+        ``forgetting.take_batch`` takes it; ``sums``: (sum_i w_i, sum_i w_i x_i) of
+        these rows' own weights as the series' moments computed them,
+        ``BatchSums.field``: not computed again)."""
         n = x.shape[0]
         if n == 0:
             return
         v = take_batch(self, n, t, w, aging)
         self._rebase(0)     # new rows weigh about 1: the old sums join them in plain units
-        if w is None:       # unit weights: a popcount per bound
-            below = np.array([np.count_nonzero(x <= b) for b in self.bounds.tolist()],
-                             dtype=np.float64)
-            total, value_sum = float(n), float(x.sum())
+        counted = sums      # the counters' total and sum of values, when given
+        if w is None:       # unit weights: a popcount per bound, one scratch for all
+            mask = np.empty(n, dtype=bool)
+            below = np.array([np.count_nonzero(np.less_equal(x, b, out=mask))
+                              for b in self.bounds.tolist()], dtype=np.float64)
+            counted = counted or (float(n), float(x.sum()))
             decayed = None if v is None else _block_sums(self.bounds, x, v)[0]
+        elif v is w:        # no decay within the batch: one product serves both
+            below, total = _block_sums(self.bounds, x, w, total=counted is None)[0]
+            counted, decayed = counted or (total, float(w @ x)), None
         else:
-            value_sum = float(w @ x)
-            if v is w:      # no decay within the batch: one product serves both
-                (below, total), decayed = _block_sums(self.bounds, x, w)[0], None
-            else:
-                (below, total), decayed = _block_sums(self.bounds, x, w, v)
+            (below, total), decayed = _block_sums(self.bounds, x, w, v)
+            counted = counted or (total, float(w @ x))
+        total, value_sum = counted
         below = _cumulative(below, total)
         self._cumulative[:-1] += below
         self._cumulative[-1] += total

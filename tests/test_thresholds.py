@@ -138,7 +138,7 @@ def test_one_aging_shared_with_the_moments_gives_the_same_bits(weighted, forgett
     assert t1.clock == t0.clock == m0.clock and t1.count == t0.count == 400
 
 
-@pytest.mark.parametrize("shared", [False], ids=["alone"])
+@pytest.mark.parametrize("shared", [False, True], ids=["alone", "moments' sums"])
 @pytest.mark.parametrize("k", [1, 2, 3, 4, 5, 6, 8])
 def test_counts_stay_cumulative_when_bounds_hold_the_same_rows(k, shared):
     # every row at or below every bound: the counts at the bounds and the total are
@@ -162,6 +162,56 @@ def test_counts_stay_cumulative_when_bounds_hold_the_same_rows(k, shared):
         total += math.fsum(w)
     np.testing.assert_allclose(t.cumulative, [total] * (k + 1), rtol=1e-12)
     assert Thresholds.from_dict(t.to_dict()).to_dict() == t.to_dict()
+
+
+def test_the_moments_give_their_batch_sums_only_of_the_rows_own_weights():
+    # reference: numpy's sums of the rows' weights and of weights times values
+    x, w, times = sample(300, seed=21)
+    s = Moments(1)._fold(x[:, None], w, None)
+    assert s.weight == pytest.approx(float(w.sum()), rel=1e-13)
+    assert s.field(0) == pytest.approx((float(w.sum()), float(w @ x)), rel=1e-13)
+    unit = Moments(1)._fold(x[:, None], None, None)
+    assert unit.field(0) == pytest.approx((300.0, math.fsum(x)), rel=1e-13)
+    # rows that decay within the batch, weights rescaled, a single row: no sums
+    assert Moments(1, HalfLife(50.0, "observations"))._fold(x[:, None], w, None) is None
+    assert Moments(1, HalfLife(50.0, "seconds"))._fold(x[:, None], w, times) is None
+    assert Moments(1)._fold(x[:, None], w * 2.0 ** 120, None) is None
+    assert Moments(1)._fold(x[:1, None], w[:1], None) is None
+    # every row at the state's clock (one arrival): factors of 1, the own weights
+    same = np.full(300, 7.0)
+    assert Moments(1, HalfLife(50.0, "seconds"))._fold(x[:, None], w, same) is not None
+
+
+@pytest.mark.parametrize("weighted", [False, True], ids=["unit", "weighted"])
+@pytest.mark.parametrize("forgetting", [None, "seconds", "one arrival", "observations"])
+def test_thresholds_taking_the_moments_batch_sums_equal_explicit_numpy_sums(weighted,
+                                                                            forgetting):
+    # the daemon hands a series' thresholds its moments' batch sums (when they are of
+    # the rows' own weights); reference: numpy's exact weighted sums and explicit numpy
+    # sums of w * 2**(-age/h) (DESIGN.md's forgetting rule)
+    x, w, times = sample(2000, seed=22)
+    w = w if weighted else None
+    h = HalfLife(300.0, "observations" if forgetting == "observations" else "seconds") \
+        if forgetting else None
+    if forgetting == "one arrival":
+        times = np.repeat(np.arange(4) * 60.0, 500)
+    t = None if forgetting in (None, "observations") else times
+    m, th = Moments(1, h), Thresholds(BOUNDS, h)
+    for rows in np.array_split(np.arange(2000), 4):
+        ws, ts = None if w is None else w[rows], None if t is None else t[rows]
+        aging = batch_aging(h, m.clock, rows.size, ts, ws)
+        sums = m._fold(x[rows, None], ws, ts, aging)
+        th._fold(x[rows], ws, ts, aging, None if sums is None else sums.field(0))
+    u = np.ones(2000) if w is None else w
+    np.testing.assert_allclose(th.cumulative, [u[x <= b].sum() for b in BOUNDS]
+                               + [u.sum()], rtol=1e-12)
+    assert th.value_sum == pytest.approx(float(u @ x), rel=1e-12)
+    age = {None: np.zeros(2000), "seconds": times[-1] - times,
+           "one arrival": times[-1] - times,
+           "observations": np.arange(1999, -1, -1.0)}[forgetting]
+    f = u * 2.0 ** (-age / 300.0)
+    np.testing.assert_allclose(th.observed_share, [f[x > b].sum() / f.sum() for b in BOUNDS],
+                               rtol=1e-10)
 
 
 @pytest.mark.parametrize("weighted", [False, True], ids=["unit", "weighted"])

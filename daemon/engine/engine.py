@@ -1322,13 +1322,13 @@ class Engine:
                 for i, threshold in enumerate(st.cfg.outlier_sigmas):
                     series.outliers[i] += int(np.count_nonzero(dist > threshold))
         # rows are checked: the estimators' unchecked fold paths
-        m._fold(x, w, t)
+        sums = m._fold(x, w, t)
         if series.regression is not None:
             self._fold_regression(series, x[:, st.reg_xy], w, t)
         if series.mixture is not None:
             series.mixture._fold(x, w, t)
         for (i, _), th in zip(st.threshold_at, series.thresholds, strict=True):
-            th._fold(x[:, i], w, t)
+            th._fold(x[:, i], w, t, None, None if sums is None else sums.field(i))
         series.observations += n
         series.version += 1
         series.last_update = now

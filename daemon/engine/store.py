@@ -461,10 +461,10 @@ class ColumnStore:
         if self.levels:   # the series' estimators share its clock: age the rows once
             aging = batch_aging(m.half_life, m.clock, x.shape[0], t, w)
             ths = [lv.state(r, m.clock, m.count) for lv in self.levels]
-        m._fold(x, w, t, aging)
+        sums = m._fold(x, w, t, aging)   # the batch's sums, for the thresholds to share
         self.moments.set_state(r, m)
         for (i, _), lv, th in zip(st.threshold_at, self.levels, ths, strict=True):
-            th._fold(x[:, i], w, t, aging)
+            th._fold(x[:, i], w, t, aging, None if sums is None else sums.field(i))
             lv.set_state(r, th)
         self.observations[r] += x.shape[0]
         self.version[r] += 1
