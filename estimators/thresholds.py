@@ -39,9 +39,9 @@ _CELLS = 4 * 32768  # float64 cells per block of comparisons (1 MB)
 
 
 def _block_rows(k: int) -> int:
-    """Rows per block of ``_block_sums`` for k bounds: its (k + 1) x rows matrix holds
-    at most ``_CELLS`` floats, its k x rows scratch of comparisons an eighth of that
-    (the memory of a fold is bounded, whatever the batch)."""
+    """Rows per block of ``_block_sums`` for k bounds: its (k + 1) x rows matrix at most
+    holds ``_CELLS`` floats, its k x rows scratch of comparisons an eighth of that (the
+    memory of a fold is bounded, whatever the batch)."""
     return max(1024, _CELLS // (k + 1))
 
 
@@ -61,9 +61,9 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray,
     """For each weight vector u: (sum_i u_i [x_i <= b_j] for each bound b_j (k,),
     sum_i u_i, or None without ``total``).
 
-    Block by block, one matrix of k + 1 rows: the k comparisons written as 0.0 and
-    1.0, then a row of ones; one matrix-vector product per weight vector then gives
-    all k + 1 sums. The comparisons go to a bool scratch first and are widened from
+    Block by block, one matrix of k rows, the comparisons written as 0.0 and 1.0, and
+    with ``total`` a row of ones; one matrix-vector product per weight vector then
+    gives every sum. The comparisons go to a bool scratch first and are widened from
     its uint8 view: numpy's comparison writing floats itself (a buffered cast) costs
     more. That beats a binary search (numpy's searchsorted is a branchy 10 ns a row,
     bincount 2 ns) and separate sums (measured on 125,000 rows, three bounds, one
