@@ -19,6 +19,23 @@ from .errors import IncompatibleError
 TRANSFORMS: tuple[str, ...] = ("log_return", "difference")
 
 
+_TINY, _HUGE = float(np.finfo(np.float64).tiny), float(np.finfo(np.float64).max)
+
+
+def _log_ratio(cur: np.ndarray, prev: np.ndarray) -> np.ndarray:
+    """log(cur / prev) of positive prices. The log of the ratio keeps a small return's
+    digits; where the ratio leaves float64's normal range (prices 1e-308 and 1e15
+    apart: it underflows to 0, whose log is -inf), the difference of the logs, which
+    is finite for any positive finite prices. O(n)."""
+    with np.errstate(over="ignore", under="ignore", divide="ignore"):
+        ratio = cur / prev
+        out = np.log(ratio)
+    far = ~((ratio >= _TINY) & (ratio <= _HUGE))
+    if far.any():
+        out[far] = np.log(cur[far]) - np.log(prev[far])
+    return out
+
+
 class Stepped(NamedTuple):
     """What :meth:`Returns.apply` makes of a batch.
 
@@ -130,7 +147,7 @@ class Returns:
             cur_x, cur_t = x, t
         out = cur_x.copy()
         if self._log.any():
-            out[:, self._log] = np.log(cur_x[:, self._log] / prev_x[:, self._log])
+            out[:, self._log] = _log_ratio(cur_x[:, self._log], prev_x[:, self._log])
         if self._diff.any():
             out[:, self._diff] = cur_x[:, self._diff] - prev_x[:, self._diff]
         self.last = x[-1].copy()

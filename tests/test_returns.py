@@ -74,6 +74,20 @@ def test_non_positive_price_under_log_return_is_counted_not_taken() -> None:
     np.testing.assert_allclose(step.values, [[math.log(1.01), 4.0]], rtol=1e-14)
 
 
+def test_log_returns_of_prices_whose_ratio_leaves_float64_are_finite() -> None:
+    # found by the hostile-input fuzz: prices 4.5e15 then 1.1e-308 have a ratio that
+    # underflows to 0 (log -inf), and 1e-300 then 1e100 one that overflows; both are
+    # positive prices within max_abs_value. Reference: math.log of each price
+    r = Returns(["log_return"])
+    prices = [4503599627370496.0, 1.1125369292536007e-308, 1e100, 1e-300, 5e-324, 1.0]
+    step = r.apply([[p] for p in prices], times=np.arange(6.0))
+    want = [math.log(b) - math.log(a) for a, b in zip(prices, prices[1:])]
+    np.testing.assert_allclose(step.values[:, 0], want, rtol=1e-15)
+    # a small return keeps its digits: the log of the ratio, not a difference of logs
+    small = Returns(["log_return"]).apply([[100.0], [100.0 * (1 + 1e-12)]], times=[0.0, 1.0])
+    assert small.values[0, 0] == pytest.approx(math.log1p(1e-12), rel=1e-4)
+
+
 def test_returns_state_round_trips() -> None:
     r = Returns(["log_return", "difference"])
     r.apply([[100.0, 5.0], [101.0, 6.0]], times=[1.0, 2.0])

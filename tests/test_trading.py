@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 from datetime import UTC
 
+import msgpack
 import numpy as np
 import pytest
 from conftest import need_module
@@ -480,6 +481,26 @@ fields = ["v"]
 transform = { v = "log_return" }
 volatility_unit = "1h"
 """
+
+
+def test_a_leg_whose_price_falls_from_1e15_to_1e_308_keeps_the_pair_finite():
+    # the fuzz below found it: the log return's price ratio underflowed to 0 and the
+    # pair's moments and regression took -inf and NaN; reference: math.log of each price
+    from test_hostile import NOW, finite_everywhere
+
+    e = _engine(HOSTILE)
+    e.ingest(b"lg.a", encode({"x": [10.0, 11.0]}, time=[NOW - 2, NOW - 1]), NOW)
+    e.ingest(b"lg.b", encode({"y": [5.0, 6.0]}, time=[NOW - 1.5, NOW - 0.5]), NOW)
+    e.flush(NOW)
+    e.ingest(b"lg.a", msgpack.packb({"values": {"x": [4503599627370496.0,
+                                                      1.1125369292536007e-308]}}), NOW)
+    e.flush(NOW)
+    state = e.export_state()
+    assert finite_everywhere(state)
+    pair = next(d for d in state if d["stream"] == "pair")
+    assert pair["observations"] == 4      # the row was taken; its x is the log return
+    assert pair["spread"][0] == pytest.approx(math.log(1.1125369292536007e-308)
+                                              - math.log(4503599627370496.0), rel=1e-14)
 
 
 @pytest.mark.slow
