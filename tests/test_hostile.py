@@ -58,10 +58,17 @@ topic = "m"
 fields = ["v"]
 mixture = { components = 2, warmup = 8 }
 half_life = "50 obs"
+
+[[stream]]
+name = "lvl"
+topic = "t.{k}"
+fields = ["v", "z"]
+thresholds = { v = [0.0, 1.0, 1e3, 1e90], z = [-5.0] }
+half_life = "30s"
 """
 
 NOW = 1.7e9
-TOPICS = [b"a.x", b"a.y", b"p.z", b"m", b"nowhere", b"a", b"\xff\xfe", b""]
+TOPICS = [b"a.x", b"a.y", b"p.z", b"m", b"t.q", b"nowhere", b"a", b"\xff\xfe", b""]
 
 
 def engine() -> Engine:
@@ -116,6 +123,8 @@ def test_fuzzed_messages_never_escape_and_rejections_change_nothing(batch):
     # a little real history first, so a bad message has state to spoil
     e.ingest(b"a.x", encode({"v": [1.0, 2.0, 4.0]}), NOW)
     e.ingest(b"p.z", encode({"x": [1.0, 2.0, 3.0], "y": [2.0, 4.1, 5.9]}), NOW)
+    e.ingest(b"t.q", encode({"v": [0.5, 2.0, 5e3], "z": [-9.0, 0.0, 1.0]},
+                            weight=[1.0, 2.0, 0.5]), NOW)
     e.flush(NOW)
     for topic, body in batch:
         before = state(e)
