@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 from sigmad.daemon.config.load import parse_config
 from sigmad.daemon.engine.engine import Engine
-from sigmad.daemon.engine.store import GROUP_ROWS, ColumnStore
+from sigmad.daemon.engine.store import ColumnStore, group_rows
 from sigmad.daemon.ingest.wire import encode
 
 BASE = """
@@ -185,10 +185,10 @@ def test_quiet_series_live_in_columns_not_objects(monkeypatch):
     assert bulk.snapshot.series[("s", (("k", "k7"),))].mean == (7.0,)
 
 
-@pytest.mark.parametrize("busy", [50, GROUP_ROWS + 18], ids=["grouped", "own"])
+@pytest.mark.parametrize("busy", [50, group_rows(2) + 18], ids=["grouped", "own"])
 def test_thresholds_on_one_field_of_two_and_a_busy_series(busy, monkeypatch):
     # counts at thresholds of the second field only; one series sends batches of
-    # ``busy`` rows beside quiet ones: up to GROUP_ROWS folded with the others by
+    # ``busy`` rows beside quiet ones: up to group_rows(2) folded with the others by
     # segment sums, more as a Moments of its own
     bulk, single = _engines('["a", "b"]', 'half_life = "5s"\nthresholds = { b = [4.0] }',
                             monkeypatch)

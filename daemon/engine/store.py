@@ -15,7 +15,7 @@ row (negative), so rejected input leaves no series behind. At the flush, series
 with one row fold together by ``fold_rows`` (bit for bit what a ``Moments`` would
 do), series with a few rows by ``fold_groups`` (the same formulas and outlier
 semantics, equal to rounding); a flush of one busy series, a series with more
-than ``GROUP_ROWS`` rows, and a state outside those two's common case fold as a
+than ``group_rows(d)`` rows, and a state outside those two's common case fold as a
 ``Moments`` of its own, exactly as an object series would.
 """
 
@@ -37,12 +37,22 @@ from sigmad.estimators import (
     screen_rows,
 )
 
-#: Series with more rows than this in one flush fold as a ``Moments`` of their own: its
-#: matrix products beat segment sums per row, and its Python per series (60 - 110 us
-#: here, more with thresholds) is amortised. Measured on 1,000 series: the same cost
-#: near 800 rows each without thresholds, 1,500 with three (segment sums 80 - 120 ns a
-#: row, a series of its own 40 - 60 ns a row plus its Python)
+#: A series of one field with more rows than this in one flush folds as a ``Moments``
+#: of its own (``group_rows``): its matrix products beat segment sums per row, and its
+#: Python per series (60 - 110 us here, more with thresholds) is amortised. Measured
+#: on 1,000 series: the same cost near 800 rows each without thresholds, 1,500 with
+#: three (segment sums 80 - 120 ns a row, a series of its own 40 - 60 ns a row plus
+#: its Python)
 GROUP_ROWS = 1024
+
+
+def group_rows(d: int) -> int:
+    """The most rows a series of d fields folds by segment sums in one flush: those keep
+    a d x d product per row, so the cut-off falls as 1,024 / d, and not below 32.
+    Measured on 500 weighted series, the two paths cost the same near 700 rows at
+    d = 2, 350 at d = 4 and 110 at d = 8. O(1)."""
+    return max(32, GROUP_ROWS // d)
+
 #: A flush whose rows are all of one series, more than this, folds it as a ``Moments``
 #: of its own with no gathers (a stream of one busy series)
 ONE_SERIES_ROWS = 32
@@ -374,7 +384,7 @@ class ColumnStore:
                         np.arange(idx.shape[0]), np.ones(idx.shape[0], np.int64), now)
         if not once.all():
             order, starts, counts = _groups(R, np.flatnonzero(~once))
-            big = counts > GROUP_ROWS   # a large batch: Moments' BLAS products beat sums
+            big = counts > group_rows(self.dim)   # Moments' BLAS products beat sums
             for k in np.flatnonzero(big).tolist():
                 by_one.append((int(R[order[starts[k]]]), order[starts[k]:starts[k] + counts[k]]))
             if not big.all():
