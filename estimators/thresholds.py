@@ -73,10 +73,13 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray,
     k = bounds.size
     n = x.shape[0]
     rows = _block_rows(k)
+    column = bounds[:, None]
     a = np.empty((k + total, min(n, rows)))
     a[k:] = 1.0
-    below = np.empty((k, min(n, rows)), dtype=bool)
-    column = bounds[:, None]
+    if n <= rows:       # one block: no scratch, no running sums (a flush's usual batch)
+        a[:k] = np.greater_equal(column, x).view(np.uint8)
+        return [(s[:k], float(s[k]) if total else None) for s in [a @ u for u in weights]]
+    below = np.empty((k, rows), dtype=bool)
     sums = [np.zeros(k + total) for _ in weights]
     for i in range(0, n, rows):
         xb = x[i:i + rows]
@@ -95,7 +98,10 @@ def _cumulative(below: np.ndarray, total: float) -> np.ndarray:
     position, a product against a pairwise sum) can differ in the last bit, and a
     histogram must stay cumulative: a state that is not would be refused on restore.
     Each sum moves by at most its rounding. O(k)."""
-    return np.minimum.accumulate(np.minimum(below, total)[::-1])[::-1]
+    out, low = below.tolist(), total    # a few numbers: plain floats beat array calls
+    for j in range(len(out) - 1, -1, -1):
+        low = out[j] = min(out[j], low)
+    return np.array(out)
 
 
 def _saved_order(cum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -190,7 +196,8 @@ class Thresholds:
             (below, total), decayed = _block_sums(self.bounds, x, w, v)
             counted = counted or (total, float(w @ x))
         total, value_sum = counted
-        below = _cumulative(below, total)
+        if w is not None:   # popcounts are whole numbers, exact and in order already
+            below = _cumulative(below, total)
         self._cumulative[:-1] += below
         self._cumulative[-1] += total
         self.value_sum += value_sum
