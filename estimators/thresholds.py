@@ -92,24 +92,21 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray,
     return [(s[:k], float(s[k]) if total else None) for s in sums]
 
 
-def _cumulative(below: np.ndarray, total: float) -> np.ndarray:
-    """A batch's weights at or below each bound made non-decreasing and at most its
-    total. Sums of the same rows by different kernels (matrix rows of another
-    position, a product against a pairwise sum) can differ in the last bit, and a
-    histogram must stay cumulative: a state that is not would be refused on restore.
-    Each sum moves by at most its rounding. O(k)."""
-    out, low = below.tolist(), total    # a few numbers: plain floats beat array calls
-    for j in range(len(out) - 1, -1, -1):
-        low = out[j] = min(out[j], low)
-    return np.array(out)
+def _in_order(cum: np.ndarray) -> np.ndarray:
+    """Counts (..., k + 1), the total last, made non-decreasing along the last axis:
+    each the least of itself and every later one. Sums of the same rows by different
+    kernels (matrix rows of another position, a product against a pairwise sum) can
+    differ in the last bit, and a histogram must stay cumulative: a state that is not
+    would be refused on restore. O(n k)."""
+    return np.minimum.accumulate(cum[..., ::-1], axis=-1)[..., ::-1]
 
 
 def _saved_order(cum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Saved counts (..., k + 1) made non-decreasing along the last axis, and which
-    were within rounding of it: no count above a later one by more than 1e-9 of the
-    total. States saved before ``_cumulative`` kept every batch in order could be out
-    of it in the last bits; a larger disorder is damage. O(n k)."""
-    fixed = np.minimum.accumulate(cum[..., ::-1], axis=-1)[..., ::-1]
+    """Saved counts (..., k + 1) put in order (``_in_order``), and which were within
+    rounding of it: no count above a later one by more than 1e-9 of the total. States
+    saved before each batch's counts were kept in order could be out of it in the
+    last bits; a larger disorder is damage. O(n k)."""
+    fixed = _in_order(cum)
     with np.errstate(invalid="ignore"):     # not finite: refused on that ground
         ok = (cum - fixed <= 1e-9 * np.abs(cum[..., -1:])).all(axis=-1)
     return fixed, ok
@@ -196,16 +193,15 @@ class Thresholds:
             (below, total), decayed = _block_sums(self.bounds, x, w, v)
             counted = counted or (total, float(w @ x))
         total, value_sum = counted
+        counts = np.append(below, total)
         if w is not None:   # popcounts are whole numbers, exact and in order already
-            below = _cumulative(below, total)
-        self._cumulative[:-1] += below
-        self._cumulative[-1] += total
+            counts = _in_order(counts)
+        self._cumulative += counts
         self.value_sum += value_sum
         if decayed is not None:
-            below, total = decayed
-            below = _cumulative(below, total)
-        self.W += total
-        self._above += total - below
+            counts = _in_order(np.append(*decayed))
+        self.W += float(counts[-1])
+        self._above += counts[-1] - counts[:-1]
 
     def _age(self, g: float) -> None:
         """Multiply the decayed sums by 2**g (``forgetting.take_batch``'s protocol): the

@@ -53,6 +53,7 @@ def group_rows(d: int) -> int:
     d = 2, 350 at d = 4 and 110 at d = 8. O(1)."""
     return max(32, GROUP_ROWS // d)
 
+
 #: A flush whose rows are all of one series, more than this, folds it as a ``Moments``
 #: of its own with no gathers (a stream of one busy series)
 ONE_SERIES_ROWS = 32
