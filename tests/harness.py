@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import os
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -12,14 +11,9 @@ import urllib.request
 from pathlib import Path
 
 from prometheus_client.parser import text_string_to_metric_families
+from sigmad.daemon.bench.ports import free_port  # noqa: F401 (every test takes ports here)
 
 ROOT = Path(__file__).resolve().parent.parent
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def scrape(port: int, path: str = "/metrics", timeout: float = 5.0) -> str:

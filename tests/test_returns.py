@@ -81,7 +81,7 @@ def test_log_returns_of_prices_whose_ratio_leaves_float64_are_finite() -> None:
     r = Returns(["log_return"])
     prices = [4503599627370496.0, 1.1125369292536007e-308, 1e100, 1e-300, 5e-324, 1.0]
     step = r.apply([[p] for p in prices], times=np.arange(6.0))
-    want = [math.log(b) - math.log(a) for a, b in zip(prices, prices[1:])]
+    want = [math.log(b) - math.log(a) for a, b in zip(prices[:-1], prices[1:], strict=True)]
     np.testing.assert_allclose(step.values[:, 0], want, rtol=1e-15)
     # a small return keeps its digits: the log of the ratio, not a difference of logs
     small = Returns(["log_return"]).apply([[100.0], [100.0 * (1 + 1e-12)]], times=[0.0, 1.0])

@@ -19,6 +19,7 @@ import threading
 import time
 from pathlib import Path
 
+from sigmad.daemon.bench.ports import free_port
 from sigmad.daemon.config.load import parse_config
 
 _TOPIC = "bench/a/reading"
@@ -49,9 +50,7 @@ class _Broker:
     """mosquitto on a free loopback port, queueing without limit for offline sessions."""
 
     def __init__(self, binary: str, tmp: Path) -> None:
-        with socket.socket() as s:
-            s.bind(("127.0.0.1", 0))
-            self.port = s.getsockname()[1]
+        self.port = free_port()
         conf = tmp / "mosquitto.conf"
         conf.write_text(f"listener {self.port} 127.0.0.1\nallow_anonymous true\n"
                         "persistence false\nmax_queued_messages 0\nmax_inflight_messages 0\n")

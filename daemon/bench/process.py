@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import zmq
+from sigmad.daemon.bench.ports import free_port
 
 _CONFIG = """
 [daemon]
@@ -45,13 +46,6 @@ KINDS = {
     "mixture": (("v",), "mixture = { components = 2 }"),
     "three-threshold": (("v",), "thresholds = [100.0, 300.0, 1000.0]"),
 }
-
-
-def free_port() -> int:
-    import socket
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def rss_of(pid: int) -> int:

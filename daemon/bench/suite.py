@@ -35,6 +35,7 @@ import msgpack
 import msgspec
 import numpy as np
 import zmq
+from sigmad.daemon.bench.ports import free_port
 from sigmad.daemon.config.load import parse_config
 
 
@@ -53,13 +54,6 @@ class Row:
         shown = math.isfinite(self.ratio) and (self.met is not None or self.ratio != 0.0)
         ratio = f"{self.ratio:.2f}" if shown else "-"
         return [self.what, self.ours, self.reference, ratio, self.target, verdict]
-
-
-def _free_port() -> int:
-    import socket
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def _producer(endpoint: str, frames: list[tuple[bytes, bytes]], done, leave) -> None:
@@ -139,7 +133,7 @@ def _daemon_rate(config_text: str, frames: list[tuple[bytes, bytes]], rows: int,
     process's CPU, which other load on the machine disturbs less)."""
     from sigmad.daemon.app import Daemon
 
-    port = _free_port()
+    port = free_port()
     config = parse_config(config_text.replace("PORT", str(port)), "<bench>")
     daemon = Daemon(config)
     feed = _Feed(f"tcp://127.0.0.1:{port}", frames)
@@ -434,7 +428,7 @@ def bench_scaling(sizes: tuple[int, ...], messages: int, repeat: int = 2) -> lis
         scrape = math.inf
         for _ in range(repeat):
             bare = max(bare, _bare_rate(frames, msgpack.unpackb))
-            port = _free_port()
+            port = free_port()
             daemon = Daemon(parse_config(_SCALAR.replace("PORT", str(port)), "<bench>"))
             feed = _Feed(f"tcp://127.0.0.1:{port}", frames)
             t0 = time.perf_counter()
