@@ -57,9 +57,9 @@ def _check_bounds(bounds: object) -> np.ndarray:
 
 
 def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray,
-                total: bool = True) -> list[tuple[np.ndarray, float | None]]:
-    """For each weight vector u: (sum_i u_i [x_i <= b_j] for each bound b_j (k,),
-    sum_i u_i, or None without ``total``).
+                total: bool = True) -> list[np.ndarray]:
+    """For each weight vector u, its sums (k + 1,): sum_i u_i [x_i <= b_j] for each
+    bound b_j, then sum_i u_i (with ``total``; else 0.0, for the caller to fill in).
 
     Block by block, one matrix of k rows, the comparisons written as 0.0 and 1.0, and
     with ``total`` a row of ones; one matrix-vector product per weight vector then
@@ -74,22 +74,26 @@ def _block_sums(bounds: np.ndarray, x: np.ndarray, *weights: np.ndarray,
     n = x.shape[0]
     rows = _block_rows(k)
     column = bounds[:, None]
-    a = np.empty((k + total, min(n, rows)))
-    a[k:] = 1.0
+    m = k + total                  # rows of the matrix, and of each sum it gives
+    a = np.empty((m, min(n, rows)))
+    if total:
+        a[k] = 1.0
+    sums = [np.zeros(k + 1) for _ in weights]
     if n <= rows:       # one block: no scratch, no running sums (a flush's usual batch)
         a[:k] = np.greater_equal(column, x).view(np.uint8)
-        return [(s[:k], float(s[k]) if total else None) for s in [a @ u for u in weights]]
+        for s, u in zip(sums, weights, strict=True):
+            np.matmul(a, u, out=s[:m])
+        return sums
     below = np.empty((k, rows), dtype=bool)
-    sums = [np.zeros(k + total) for _ in weights]
     for i in range(0, n, rows):
         xb = x[i:i + rows]
-        m = xb.shape[0]
-        part, mask = a[:, :m], below[:, :m]
+        nb = xb.shape[0]
+        part, mask = a[:, :nb], below[:, :nb]
         np.greater_equal(column, xb, out=mask)
         part[:k] = mask.view(np.uint8)
         for s, u in zip(sums, weights, strict=True):
-            s += part @ u[i:i + rows]
-    return [(s[:k], float(s[k]) if total else None) for s in sums]
+            s[:m] += part @ u[i:i + rows]
+    return sums
 
 
 def _in_order(cum: np.ndarray) -> np.ndarray:
@@ -179,27 +183,29 @@ class Thresholds:
             return
         v = take_batch(self, n, t, w, aging)
         self._rebase(0)     # new rows weigh about 1: the old sums join them in plain units
-        counted = sums      # the counters' total and sum of values, when given
+        k = self.bounds.size
+        decayed = None      # the decayed sums, when they are not the counts themselves
         if w is None:       # unit weights: a popcount per bound, one scratch for all
             mask = np.empty(n, dtype=bool)
-            below = np.array([np.count_nonzero(np.less_equal(x, b, out=mask))
-                              for b in self.bounds.tolist()], dtype=np.float64)
-            counted = counted or (float(n), float(x.sum()))
-            decayed = None if v is None else _block_sums(self.bounds, x, v)[0]
+            counts = np.empty(k + 1)
+            for j, b in enumerate(self.bounds.tolist()):
+                counts[j] = np.count_nonzero(np.less_equal(x, b, out=mask))
+            total, value_sum = sums or (float(n), float(x.sum()))
+            if v is not None:
+                decayed = _block_sums(self.bounds, x, v)[0]
         elif v is w:        # no decay within the batch: one product serves both
-            below, total = _block_sums(self.bounds, x, w, total=counted is None)[0]
-            counted, decayed = counted or (total, float(w @ x)), None
+            counts = _block_sums(self.bounds, x, w, total=sums is None)[0]
+            total, value_sum = sums or (float(counts[k]), float(w @ x))
         else:
-            (below, total), decayed = _block_sums(self.bounds, x, w, v)
-            counted = counted or (total, float(w @ x))
-        total, value_sum = counted
-        counts = np.append(below, total)
+            counts, decayed = _block_sums(self.bounds, x, w, v)
+            total, value_sum = sums or (float(counts[k]), float(w @ x))
+        counts[k] = total
         if w is not None:   # popcounts are whole numbers, exact and in order already
             counts = _in_order(counts)
         self._cumulative += counts
         self.value_sum += value_sum
         if decayed is not None:
-            counts = _in_order(np.append(*decayed))
+            counts = _in_order(decayed)
         self.W += float(counts[-1])
         self._above += counts[-1] - counts[:-1]
 
