@@ -1,9 +1,10 @@
 """The tests' and the bench's port source: a port handed out is free, new, and out of
 the way of outgoing connections.
 
-A CI run failed when one test's daemon was given the same port for its PULL and its SUB
-source: asking the kernel for port 0 twice gave one port twice (121 repeats in 2,000
-calls on this machine), and the second bind found it taken.
+A CI run failed when one test's daemon found the port of its second source taken. Its
+ports came from asking the kernel for port 0, which can give one port twice (121
+repeats in 2,000 calls on this machine) or a port that an outgoing connection takes
+next (both come from the ephemeral range).
 """
 
 from __future__ import annotations

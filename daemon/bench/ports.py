@@ -4,8 +4,8 @@ Asking the kernel for port 0 and closing the socket at once is a race twice over
 the kernel may hand the same port to the next such call (about one in 17 calls gave a
 port already given, measured over 2,000 calls), and any outgoing connection on the
 machine takes its local port from the same ephemeral range. Either way a daemon told
-to bind that port later finds it in use (a CI run failed so: its PULL and SUB sources
-were given one port). Here a port comes from below the ephemeral range, where no
+to bind that port later finds it in use (a CI run failed so: a daemon's second source
+found its port taken). Here a port comes from below the ephemeral range, where no
 outgoing connection lands, is never handed out twice by one process, and is held by
 nobody at the moment it is handed out.
 """
